@@ -1,0 +1,92 @@
+"""propcalc: mean-field signal propagation for deep random networks.
+
+Conventions used everywhere in propcalc
+---------------------------------------
+* ``z ~ N(0, 1)``; ``q`` is a pre-activation variance and ``c`` the
+  correlation between two inputs' pre-activations.
+* Fan-in scaling: ``W_ij ~ N(0, sigma_w2 / fan_in)``, ``b_i ~ N(0, sigma_b2)``.
+  Variances carry the ``2`` suffix; a "gain" g multiplies the standard
+  deviation: ``std = g / sqrt(fan_in)``, ``sigma_w2 = g^2``.
+* Variance map ``V(q) = sigma_w2 E[phi(sqrt(q) z)^2] + sigma_b2`` and
+  correlation map ``C(c)`` (Poole et al. 2016); ``chi_1 = sigma_w2
+  E[phi'(sqrt(q*) z)^2]`` and the depth scales ``xi_q``, ``xi_c``
+  (Schoenholz et al. 2017).
+* Phases: ordered (chi_1 < 1), chaotic (chi_1 > 1), edge of chaos (chi_1 = 1).
+* Trainable depth: about ``6 xi_c`` layers, an empirical rule of
+  Schoenholz et al. 2017.
+
+These are infinite-width, random-initialisation predictions: check them on
+your own model before relying on them.
+"""
+
+from __future__ import annotations
+
+from .activations import Activation, ActivationProperties, builtin_names
+from .criticality import (
+    CriticalPoint,
+    FixedPoint,
+    Propagation,
+    VarianceFixedPoints,
+    edge_of_chaos,
+    edge_of_chaos_at_bias,
+    edge_of_chaos_line,
+    propagation,
+    variance_fixed_points,
+)
+from .errors import (
+    ComputationError,
+    FormulaError,
+    InvalidParameterError,
+    PropcalcError,
+    UnknownActivationError,
+)
+from .formula import activation
+from .jsonable import jsonable
+from .maps import (
+    chi_1,
+    correlation_map,
+    correlation_map_slope,
+    variance_map,
+    variance_map_slope,
+)
+from .quadrature import QuadratureRule, bivariate_expectation, gaussian_expectation
+from .recommend import Gains, InitPlan, Layer, LayerInit, gains, recommend
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "Activation",
+    "ActivationProperties",
+    "ComputationError",
+    "CriticalPoint",
+    "FixedPoint",
+    "FormulaError",
+    "Gains",
+    "InitPlan",
+    "InvalidParameterError",
+    "Layer",
+    "LayerInit",
+    "Propagation",
+    "PropcalcError",
+    "QuadratureRule",
+    "UnknownActivationError",
+    "VarianceFixedPoints",
+    "activation",
+    "bivariate_expectation",
+    "builtin_names",
+    "chi_1",
+    "correlation_map",
+    "correlation_map_slope",
+    "edge_of_chaos",
+    "edge_of_chaos_at_bias",
+    "edge_of_chaos_line",
+    "gains",
+    "gaussian_expectation",
+    "jsonable",
+    "propagation",
+    "recommend",
+    "variance_fixed_points",
+    "variance_map",
+    "variance_map_slope",
+    "__version__",
+]

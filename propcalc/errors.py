@@ -1,0 +1,118 @@
+"""Exceptions raised by propcalc.
+
+One base class, :class:`PropcalcError`; narrow subclasses also inherit the
+builtin they resemble, so ``except ValueError`` keeps working for callers who
+do not know this package.
+
+Messages name the field, the constraint and the value received, e.g.
+``"sigma_w2 must be > 0, got -1.0"``.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+__all__ = [
+    "PropcalcError",
+    "InvalidParameterError",
+    "UnknownActivationError",
+    "FormulaError",
+    "ComputationError",
+    "check_finite",
+    "check_positive",
+    "check_nonnegative",
+    "check_int",
+]
+
+
+class PropcalcError(Exception):
+    """Base class of every error raised on purpose by propcalc."""
+
+
+class InvalidParameterError(PropcalcError, ValueError):
+    """A parameter is outside its allowed range.
+
+    Attributes
+    ----------
+    field : str
+        Name of the parameter, as the caller spelled it.
+    constraint : str
+        The rule that was broken, in words (``"> 0"``, ``"finite"``...).
+    value : Any
+        The value received.
+    """
+
+    def __init__(self, field: str, constraint: str, value: Any, hint: str = "") -> None:
+        self.field = field
+        self.constraint = constraint
+        self.value = value
+        msg = f"{field} must be {constraint}, got {value!r}"
+        if hint:
+            msg += f"; {hint}"
+        super().__init__(msg)
+
+
+class UnknownActivationError(PropcalcError, ValueError):
+    """The activation name is neither a built-in nor a valid formula."""
+
+
+class FormulaError(PropcalcError, ValueError):
+    """A typed formula was refused.
+
+    Attributes
+    ----------
+    column : int or None
+        1-based column of the offending token, when known.
+    """
+
+    def __init__(self, message: str, column: int | None = None) -> None:
+        self.column = column
+        super().__init__(message)
+
+
+class ComputationError(PropcalcError, ArithmeticError):
+    """A numerical computation could not produce a trustworthy number."""
+
+
+def check_finite(field: str, value: Any) -> float:
+    """Return ``value`` as a float, or raise if it is not a finite real number."""
+    if isinstance(value, bool):
+        raise InvalidParameterError(field, "a finite real number", value)
+    try:
+        out = float(value)
+    except (TypeError, ValueError):
+        raise InvalidParameterError(field, "a finite real number", value) from None
+    if not math.isfinite(out):
+        raise InvalidParameterError(field, "a finite real number", value)
+    return out
+
+
+def check_positive(field: str, value: Any) -> float:
+    """Return ``value`` as a float, or raise unless it is finite and > 0."""
+    out = check_finite(field, value)
+    if out <= 0.0:
+        raise InvalidParameterError(field, "> 0", value)
+    return out
+
+
+def check_nonnegative(field: str, value: Any) -> float:
+    """Return ``value`` as a float, or raise unless it is finite and >= 0."""
+    out = check_finite(field, value)
+    if out < 0.0:
+        raise InvalidParameterError(field, ">= 0", value)
+    return out
+
+
+def check_int(field: str, value: Any, minimum: int = 1, maximum: int | None = None) -> int:
+    """Return ``value`` as an int, or raise unless it is an integer in range."""
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise InvalidParameterError(field, f"an integer >= {minimum}", value)
+    if isinstance(value, float) and (not math.isfinite(value) or value != int(value)):
+        raise InvalidParameterError(field, f"an integer >= {minimum}", value)
+    out = int(value)
+    if out < minimum:
+        raise InvalidParameterError(field, f"an integer >= {minimum}", value)
+    if maximum is not None and out > maximum:
+        raise InvalidParameterError(field, f"an integer <= {maximum}", value)
+    return out

@@ -1,0 +1,331 @@
+"""The mean-field maps of a deep random network and their slopes.
+
+For a layer ``h' = W phi(h) + b`` with ``W_ij ~ N(0, sigma_w2 / fan_in)`` and
+``b_i ~ N(0, sigma_b2)``, at infinite width:
+
+* variance (length) map, Poole et al. 2016, eq. (3):
+  ``V(q) = sigma_w2 E[phi(sqrt(q) z)^2] + sigma_b2``;
+* correlation map, Poole et al. 2016, eq. (5), for two inputs whose
+  pre-activations both have variance q and correlation c:
+  ``C(c) = (sigma_w2 E[phi(u1) phi(u2)] + sigma_b2) / V(q)``, with
+  ``u1 = sqrt(q) z1``, ``u2 = sqrt(q) (c z1 + sqrt(1 - c^2) z2)``
+  (at the fixed point ``V(q*) = q*``, the denominator of the paper);
+* its slope, by Price's theorem,
+  ``C'(c) = sigma_w2 q E[phi'(u1) phi'(u2)] / V(q)``; at ``c = 1`` and
+  ``q = q*`` this is ``chi_1 = sigma_w2 E[phi'(sqrt(q*) z)^2]``
+  (Schoenholz et al. 2017, eq. (8));
+* the slope of the variance map by Stein's identity,
+  ``V'(q) = sigma_w2 E[(z^2 - 1) phi(sqrt(q) z)^2] / (2 q)``, which needs no
+  second derivative and holds for discontinuous phi too.
+
+A jump J of phi at b puts ``J delta(x - b)`` into phi': then ``chi_1`` is
+infinite and ``C'(c)`` picks up the conditional and bivariate densities at the
+jumps (the step function's map has infinite slope at c = 1).
+
+For ``|c| >= 1/2`` the pair expectation is computed in the difference form
+``E[f(u1) f(u2)] = E[f^2] - E[(f(u1) - f(u2))^2] / 2`` (exchangeable pair), so
+the error of the 2-D rule is scaled by the small difference near ``c = +-1``.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+from .activations import Activation
+from .errors import InvalidParameterError, check_nonnegative, check_positive
+from .quadrature import DEFAULT_RULE, QuadratureRule, bivariate_expectation, gaussian_expectation
+
+__all__ = [
+    "second_moment",
+    "first_moment",
+    "derivative_second_moment",
+    "variance_map",
+    "variance_map_slope",
+    "correlation_map",
+    "correlation_map_slope",
+    "correlation_map_and_slope",
+    "pair_expectation",
+    "derivative_pair_expectation",
+    "chi_1",
+    "variance_growth_rate",
+    "variance_collapse_rate",
+]
+
+Array = np.ndarray
+
+
+def _q_array(q: Any, field: str = "q") -> Array:
+    arr = np.asarray(q, dtype=float)
+    if not np.all(np.isfinite(arr)) or np.any(arr < 0):
+        bad = arr[~(np.isfinite(arr) & (arr >= 0))].ravel()[0]
+        raise InvalidParameterError(field, "finite and >= 0", float(bad))
+    return arr
+
+
+def _c_array(c: Any) -> Array:
+    arr = np.asarray(c, dtype=float)
+    ok = np.isfinite(arr) & (arr >= -1.0) & (arr <= 1.0)
+    if not np.all(ok):
+        raise InvalidParameterError("c", "in [-1, 1]", float(arr[~ok].ravel()[0]))
+    return arr
+
+
+def first_moment(act: Activation, q: Any, rule: QuadratureRule = DEFAULT_RULE) -> Array:
+    """E[phi(sqrt(q) z)], vectorised over q."""
+    return gaussian_expectation(act.value, _q_array(q), act.breakpoints, rule=rule,
+                                what=f"{act.label}(x)")
+
+
+def second_moment(act: Activation, q: Any, rule: QuadratureRule = DEFAULT_RULE) -> Array:
+    """E[phi(sqrt(q) z)^2], vectorised over q."""
+    return gaussian_expectation(lambda x: act.value(x) ** 2, _q_array(q), act.breakpoints,
+                                rule=rule, what=f"{act.label}(x)^2")
+
+
+def derivative_second_moment(act: Activation, q: Any, rule: QuadratureRule = DEFAULT_RULE) -> Array:
+    """E[phi'(sqrt(q) z)^2] (infinite where phi jumps), vectorised over q."""
+    qa = _q_array(q)
+    out = gaussian_expectation(lambda x: act.derivative(x) ** 2, qa, act.breakpoints,
+                               rule=rule, what=f"derivative of {act.label}, squared,")
+    if act.has_jumps:
+        out = np.full_like(out, math.inf)
+    return out
+
+
+def variance_map(act: Activation, q: Any, sigma_w2: float, sigma_b2: float,
+                 rule: QuadratureRule = DEFAULT_RULE) -> Array:
+    """Length map V(q) = sigma_w2 E[phi(sqrt(q) z)^2] + sigma_b2 (Poole et al. 2016, eq. 3).
+
+    Parameters
+    ----------
+    act : Activation
+    q : array_like
+        Pre-activation variances, >= 0.
+    sigma_w2 : float
+        Weight variance times fan-in, > 0.
+    sigma_b2 : float
+        Bias variance, >= 0.
+
+    Returns
+    -------
+    ndarray
+        V(q), the shape of q.
+    """
+    sw = check_positive("sigma_w2", sigma_w2)
+    sb = check_nonnegative("sigma_b2", sigma_b2)
+    return sw * second_moment(act, q, rule) + sb
+
+
+def variance_map_slope(act: Activation, q: Any, sigma_w2: float,
+                       rule: QuadratureRule = DEFAULT_RULE) -> Array:
+    """V'(q) = sigma_w2 E[(z^2 - 1) phi(sqrt(q) z)^2] / (2 q) (Stein's identity).
+
+    At q = 0 the limit ``sigma_w2 (phi'(0-)^2 + phi'(0+)^2) / 2`` is returned
+    when phi(0) = 0 (the rate of collapse towards zero variance).
+    """
+    sw = check_positive("sigma_w2", sigma_w2)
+    qa = _q_array(q)
+    safe = np.where(qa > 0, qa, 1.0)
+    z2m1 = np.sqrt(safe)
+    # E[(z^2 - 1) f(sqrt(q) z)] with z = x / sqrt(q), written in x
+    val = gaussian_expectation(
+        lambda x: ((x / z2m1[..., None]) ** 2 - 1.0) * act.value(x) ** 2,
+        safe, act.breakpoints, rule=rule, what=f"{act.label}(x)^2")
+    out = sw * val / (2.0 * safe)
+    if np.any(qa == 0):
+        out = np.where(qa == 0, variance_collapse_rate(act, sw), out)
+    return out
+
+
+def variance_collapse_rate(act: Activation, sigma_w2: float) -> float:
+    """lim V(q)/q as q -> 0 with sigma_b2 = 0 and phi(0) = 0: the rate towards q = 0.
+
+    ``sigma_w2 (phi'(0-)^2 + phi'(0+)^2) / 2``; ``inf`` if phi(0) != 0.
+    """
+    phi0 = float(act.value(np.array([0.0]))[0])
+    if phi0 != 0.0:
+        return math.inf
+    h = 1e-12
+    dl, dr = act.derivative(np.array([-h, h]))
+    return float(sigma_w2 * (dl * dl + dr * dr) / 2.0)
+
+
+def variance_growth_rate(act: Activation, sigma_w2: float, q_large: float = 1e12,
+                         rule: QuadratureRule = DEFAULT_RULE) -> float:
+    """lim V(q)/q as q -> infinity: the per-layer growth factor of an exploding variance.
+
+    Estimated at ``q_large`` (for ReLU it is exactly sigma_w2 / 2).
+    """
+    sw = check_positive("sigma_w2", sigma_w2)
+    return float(sw * second_moment(act, q_large, rule) / q_large)
+
+
+def chi_1(act: Activation, q: Any, sigma_w2: float, rule: QuadratureRule = DEFAULT_RULE) -> Array:
+    """chi_1 = sigma_w2 E[phi'(sqrt(q) z)^2] (Schoenholz et al. 2017, eq. 8).
+
+    The mean squared singular value of one layer's input-output Jacobian at
+    variance q: gradients grow like chi_1^L. Infinite if phi jumps.
+    """
+    sw = check_positive("sigma_w2", sigma_w2)
+    return sw * derivative_second_moment(act, q, rule)
+
+
+# -------------------------------------------------------------------------------------
+# pair expectations
+# -------------------------------------------------------------------------------------
+def _pair(fs: tuple[Any, ...], c: Array, q: float, bps: tuple[float, ...],
+          rule: QuadratureRule, what: str) -> tuple[Array, ...]:
+    """E[f(u1) f(u2)] for each f, equal variances, on shared nodes.
+
+    For |c| >= 1/2 the exact difference form of an exchangeable pair is used:
+    ``E[f(u1) f(u2)] = E[f^2] - E[(f(u1) - f(u2))^2] / 2``; for c <= -1/2 the
+    same with ``u2 -> -u2`` and ``g(x) = f(-x)``.
+    """
+    n = len(fs)
+    out = [np.empty_like(c) for _ in fs]
+    mid = np.abs(c) < 0.5
+    if np.any(mid):
+        res = bivariate_expectation(lambda a, b: tuple(f(a) * f(b) for f in fs), c[mid], q, q,
+                                    bps, bps, rule=rule, what=what, n_integrands=n)
+        for o, r in zip(out, res if n > 1 else (res,)):
+            o[mid] = r
+    hi = c >= 0.5
+    if np.any(hi):
+        res = bivariate_expectation(lambda a, b: tuple((f(a) - f(b)) ** 2 for f in fs), c[hi],
+                                    q, q, bps, bps, rule=rule, what=what, n_integrands=n)
+        for o, f, r in zip(out, fs, res if n > 1 else (res,)):
+            ff = float(gaussian_expectation(lambda x: f(x) ** 2, q, bps, rule=rule, what=what))
+            o[hi] = ff - 0.5 * r
+    lo = c <= -0.5
+    if np.any(lo):
+        both = tuple(bps) + tuple(-b for b in bps)
+
+        def diff(a: Array, b: Array) -> tuple[Array, ...]:
+            return tuple((f(a) - f(b)) * (f(-a) - f(-b)) for f in fs)
+
+        res = bivariate_expectation(diff, -c[lo], q, q, both, both, rule=rule, what=what,
+                                    n_integrands=n)
+        for o, f, r in zip(out, fs, res if n > 1 else (res,)):
+            fg = float(gaussian_expectation(lambda x: f(x) * f(-x), q, both, rule=rule,
+                                            what=what))
+            o[lo] = fg - 0.5 * r
+    return tuple(out)
+
+
+def pair_expectation(act: Activation, c: Any, q: float,
+                     rule: QuadratureRule = DEFAULT_RULE) -> Array:
+    """E[phi(u1) phi(u2)] for pre-activations of variance q and correlation c."""
+    ca = _c_array(c)
+    qf = float(_q_array(q))
+    if qf == 0.0:
+        return np.full_like(ca, float(act.value(np.array([0.0]))[0]) ** 2)
+    return _pair((act.value,), ca, qf, act.breakpoints, rule,
+                 f"{act.label}(u1) {act.label}(u2)")[0]
+
+
+def derivative_pair_expectation(act: Activation, c: Any, q: float,
+                                rule: QuadratureRule = DEFAULT_RULE) -> Array:
+    """E[phi'(u1) phi'(u2)], including the Dirac masses of phi' at jumps of phi.
+
+    With ``phi' = r + sum_k J_k delta(x - b_k)``:
+    ``E[r r] + 2 sum_k J_k p(b_k) E[r(u2) | u1 = b_k] + sum_kl J_k J_l p(b_k, b_l)``,
+    p the Gaussian densities (Price's theorem applied to the distributional
+    derivative). Infinite at c = +-1 when phi jumps.
+    """
+    ca = _c_array(c)
+    qf = float(_q_array(q))
+    if qf == 0.0:
+        d0 = float(act.derivative(np.array([0.0]))[0])
+        return np.full_like(ca, d0 * d0)
+    out = _pair((act.derivative,), ca, qf, act.breakpoints, rule,
+                f"derivative of {act.label} at (u1, u2)")[0]
+    return out + _jump_terms(act, ca, qf, rule)
+
+
+def _jump_terms(act: Activation, ca: Array, qf: float, rule: QuadratureRule) -> Array:
+    """The Dirac-mass part of E[phi'(u1) phi'(u2)] for a phi with jumps (else 0)."""
+    out = np.zeros_like(ca)
+    if not act.has_jumps:
+        return out
+    jumps = [(b, j) for b, j in zip(act.breakpoints, act.jumps) if j != 0.0]
+    s2 = 1.0 - ca * ca
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for b, j in jumps:
+            p_b = math.exp(-b * b / (2 * qf)) / math.sqrt(2 * math.pi * qf)
+            cond = gaussian_expectation(act.derivative, qf * s2, act.breakpoints, mean=ca * b,
+                                        rule=rule, check_tails=False)
+            out = out + 2.0 * j * p_b * cond
+            for b2, j2 in jumps:
+                quad_form = (b * b - 2 * ca * b * b2 + b2 * b2) / (2 * qf * s2)
+                dens = np.exp(-quad_form) / (2 * math.pi * qf * np.sqrt(s2))
+                out = out + j * j2 * np.where(s2 > 0, dens, math.inf)
+    return out
+
+
+def correlation_map(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
+                    q: float, rule: QuadratureRule = DEFAULT_RULE) -> Array:
+    """Correlation map C(c) (Poole et al. 2016, eq. 5).
+
+    ``C(c) = (sigma_w2 E[phi(u1) phi(u2)] + sigma_b2) / V(q)`` for two inputs
+    whose pre-activations have variance q and correlation c.
+
+    Parameters
+    ----------
+    act : Activation
+    c : array_like
+        Correlations in [-1, 1].
+    sigma_w2, sigma_b2 : float
+    q : float
+        Common pre-activation variance of the two inputs; pass
+        ``propagation(...).q_star`` for the map at the fixed point.
+
+    Returns
+    -------
+    ndarray
+        C(c), the shape of c.
+    """
+    sw = check_positive("sigma_w2", sigma_w2)
+    sb = check_nonnegative("sigma_b2", sigma_b2)
+    qf = float(_q_array(q))
+    vq = float(variance_map(act, qf, sw, sb, rule))
+    if vq == 0.0:
+        return np.ones_like(_c_array(c))
+    return (sw * pair_expectation(act, c, qf, rule) + sb) / vq
+
+
+def correlation_map_and_slope(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
+                               q: float, rule: QuadratureRule = DEFAULT_RULE) -> tuple[Array, Array]:
+    """C(c) and C'(c) together, on shared quadrature nodes (about the cost of one).
+
+    See :func:`correlation_map` and :func:`correlation_map_slope`.
+    """
+    sw = check_positive("sigma_w2", sigma_w2)
+    sb = check_nonnegative("sigma_b2", sigma_b2)
+    ca = _c_array(c)
+    qf = float(_q_array(q))
+    vq = float(variance_map(act, qf, sw, sb, rule))
+    if qf == 0.0 or vq == 0.0:
+        return (correlation_map(act, ca, sw, sb, qf, rule),
+                correlation_map_slope(act, ca, sw, sb, qf, rule))
+    e_val, e_der = _pair((act.value, act.derivative), ca, qf, act.breakpoints, rule,
+                         f"{act.label} at (u1, u2)")
+    e_der = e_der + _jump_terms(act, ca, qf, rule)
+    return (sw * e_val + sb) / vq, sw * qf * e_der / vq
+
+
+def correlation_map_slope(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
+                          q: float, rule: QuadratureRule = DEFAULT_RULE) -> Array:
+    """C'(c) = sigma_w2 q E[phi'(u1) phi'(u2)] / V(q) (Price's theorem).
+
+    At c = 1 and q = q* this equals chi_1; infinite there for a jumping phi.
+    """
+    sw = check_positive("sigma_w2", sigma_w2)
+    sb = check_nonnegative("sigma_b2", sigma_b2)
+    qf = float(_q_array(q))
+    vq = float(variance_map(act, qf, sw, sb, rule))
+    if vq == 0.0:
+        return np.full_like(_c_array(c), variance_collapse_rate(act, sw))
+    return sw * qf * derivative_pair_expectation(act, c, qf, rule) / vq

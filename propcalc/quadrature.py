@@ -1,0 +1,359 @@
+"""Gaussian expectations in one and two dimensions by composite quadrature.
+
+The rule
+--------
+For ``x = mean + sqrt(q) z`` with ``z ~ N(0, 1)`` we integrate
+``E[f(x)] = int f(mean + sqrt(q) z) phi(z) dz`` over ``z in [-z_max, z_max]``
+(the Gaussian mass outside ``|z| > 10`` is 1.5e-23) with Gauss-Legendre rules
+on panels. The panel edges are
+
+* a uniform grid of width ``panel_width`` (resolves the Gaussian weight);
+* the breakpoints of ``f`` mapped to z, ``(b - mean) / sqrt(q)``, so that each
+  panel sees a smooth piece: kinks and jumps cost no accuracy;
+* a geometric grading ``z0 +- 2^-k`` towards ``z0 = -mean / sqrt(q)``, the
+  point where the argument crosses 0. Activations change on the scale
+  ``|x| ~ 1``, which in z is ``1 / sqrt(q)``: the grading keeps the rule exact
+  to rounding for tanh-like functions up to ``q ~ 1e8``.
+
+Each panel carries ``n_per_panel`` Gauss-Legendre nodes, so the rule is exact
+for polynomials of degree ``<= 2 n_per_panel - 1`` on every smooth piece
+(times the Gaussian weight, which is itself resolved to rounding by the
+panels). The panel structure has a fixed size per call, so everything is
+vectorised over means and variances (panels that fall outside the range get
+zero width and weight).
+
+The 2-D expectation ``E[g(u1, u2)]`` for a correlated pair
+``u1 = sqrt(q1) z1``, ``u2 = sqrt(q2) (c z1 + sqrt(1 - c^2) z2)`` uses this rule
+on ``z1`` (split at the breakpoints of the first argument) and, per outer node,
+on ``z2`` with mean ``sqrt(q2) c z1`` and variance ``q2 (1 - c^2)`` (split where
+``u2`` crosses a breakpoint of the second argument).
+
+Nodes and weights of the reference rules come from
+:func:`numpy.polynomial.legendre.leggauss` and
+:func:`numpy.polynomial.hermite_e.hermegauss` and are cached.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from functools import lru_cache
+from typing import Any
+
+import numpy as np
+from numpy.polynomial import hermite_e, legendre
+
+from .errors import ComputationError
+
+__all__ = [
+    "QuadratureRule",
+    "DEFAULT_RULE",
+    "legendre_rule",
+    "hermite_rule",
+    "gaussian_expectation",
+    "bivariate_expectation",
+    "rule_nodes",
+]
+
+Array = np.ndarray
+_INV_SQRT_2PI = 1.0 / math.sqrt(2.0 * math.pi)
+
+
+@lru_cache(maxsize=64)
+def legendre_rule(n_nodes: int) -> tuple[Array, Array]:
+    """Gauss-Legendre nodes and weights on [-1, 1] (cached, read-only).
+
+    Exact for polynomials of degree <= 2 n_nodes - 1.
+    """
+    x, w = legendre.leggauss(int(n_nodes))
+    x.setflags(write=False)
+    w.setflags(write=False)
+    return x, w
+
+
+@lru_cache(maxsize=64)
+def hermite_rule(n_nodes: int) -> tuple[Array, Array]:
+    """Probabilists' Gauss-Hermite rule normalised to the N(0, 1) density.
+
+    ``sum(w * f(x))`` approximates ``E[f(z)]``; exact for polynomials of degree
+    <= 2 n_nodes - 1. Kept for comparison: it does not split at breakpoints
+    and converges slowly for kinked or steep integrands.
+    """
+    x, w = hermite_e.hermegauss(int(n_nodes))
+    w = w / math.sqrt(2.0 * math.pi)
+    x.setflags(write=False)
+    w.setflags(write=False)
+    return x, w
+
+
+@dataclass(frozen=True)
+class QuadratureRule:
+    """Parameters of the composite Gaussian rule.
+
+    Attributes
+    ----------
+    n_per_panel : int
+        Gauss-Legendre nodes per panel.
+    panel_width : float
+        Width of the uniform z-panels.
+    z_max : float
+        Truncation of the z range; the neglected Gaussian mass is
+        ``2 Phi(-z_max)`` (1.5e-23 for 10).
+    """
+
+    n_per_panel: int = 16
+    panel_width: float = 2.0
+    z_max: float = 10.0
+
+    @property
+    def uniform_edges(self) -> Array:
+        n = int(round(2 * self.z_max / self.panel_width))
+        return np.linspace(-self.z_max, self.z_max, n + 1)
+
+
+DEFAULT_RULE = QuadratureRule()
+
+
+def _grading_levels(sqrt_q_max: float) -> int:
+    if not math.isfinite(sqrt_q_max) or sqrt_q_max <= 0.5:
+        return 0
+    return int(math.ceil(math.log2(2.0 * sqrt_q_max)))
+
+
+def _node_count(sqrt_q: float, n_extra: int, rule: QuadratureRule) -> int:
+    n_edges = rule.uniform_edges.size + 1 + 2 * _grading_levels(sqrt_q) + n_extra
+    return (n_edges - 1) * rule.n_per_panel
+
+
+@lru_cache(maxsize=256)
+def _scalar_nodes(mean: float, q: float, breakpoints: tuple[float, ...],
+                  rule: QuadratureRule) -> tuple[Array, Array]:
+    x, w = _rule_nodes(mean, q, breakpoints, rule, None)
+    x.setflags(write=False)
+    w.setflags(write=False)
+    return x, w
+
+
+def rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float] = (),
+               rule: QuadratureRule = DEFAULT_RULE,
+               extra_edges: Array | None = None) -> tuple[Array, Array]:
+    """Nodes ``x`` and weights ``w`` with ``sum(w * f(x), -1) ~ E[f(mean + sqrt(q) z)]``.
+
+    Parameters
+    ----------
+    mean, q : array_like
+        Broadcast together to a shape S; ``q >= 0`` (``q = 0`` puts every node
+        at ``mean``, so the result is ``f(mean)``).
+    breakpoints : sequence of float
+        Points in x where f is not smooth; the rule splits there.
+    rule : QuadratureRule
+    extra_edges : ndarray, optional
+        More panel edges in z units, of shape S + (k,).
+
+    Returns
+    -------
+    x, w : ndarray of shape S + (N,)
+        Scalar (mean, q) without extra edges are cached (read-only arrays).
+    """
+    if extra_edges is None and np.ndim(mean) == 0 and np.ndim(q) == 0:
+        return _scalar_nodes(float(mean), float(q), tuple(float(b) for b in breakpoints), rule)
+    return _rule_nodes(mean, q, breakpoints, rule, extra_edges)
+
+
+def _rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float],
+                rule: QuadratureRule, extra_edges: Array | None) -> tuple[Array, Array]:
+    mean, q = np.broadcast_arrays(np.asarray(mean, dtype=float), np.asarray(q, dtype=float))
+    sq = np.sqrt(q)
+    L = rule.z_max
+    with np.errstate(divide="ignore", invalid="ignore"):
+        inv = np.where(sq > 0, 1.0 / np.where(sq > 0, sq, 1.0), np.inf)
+        center = np.where(sq > 0, -mean * inv, np.where(mean > 0, -np.inf, np.inf))
+        center = np.where((sq == 0) & (mean == 0), 0.0, center)
+    n_levels = _grading_levels(float(np.max(sq)) if sq.size else 0.0)
+    pieces = [np.broadcast_to(rule.uniform_edges, sq.shape + rule.uniform_edges.shape)]
+    offsets = [0.0] + [s * 2.0**-k for k in range(1, n_levels + 1) for s in (-1.0, 1.0)]
+    pieces.append(center[..., None] + np.asarray(offsets))
+    if len(breakpoints):
+        b = np.asarray(breakpoints, dtype=float)
+        with np.errstate(invalid="ignore"):
+            bz = (b - mean[..., None]) * inv[..., None]
+        bz = np.where(np.isnan(bz), 0.0, bz)  # q = 0 and mean == b: irrelevant, any value
+        pieces.append(bz)
+    if extra_edges is not None:
+        pieces.append(np.broadcast_to(extra_edges, sq.shape + extra_edges.shape[-1:]))
+    edges = np.clip(np.concatenate(pieces, axis=-1), -L, L)
+    edges.sort(axis=-1)
+    a, bb = edges[..., :-1], edges[..., 1:]
+    t, wt = legendre_rule(rule.n_per_panel)
+    half = 0.5 * (bb - a)
+    z = (0.5 * (a + bb))[..., None] + half[..., None] * t
+    w = half[..., None] * wt * (_INV_SQRT_2PI * np.exp(-0.5 * z * z))
+    shape = sq.shape + (z.shape[-2] * z.shape[-1],)
+    z = z.reshape(shape)
+    w = w.reshape(shape)
+    x = mean[..., None] + sq[..., None] * z
+    return x, w
+
+
+def _check_finite(values: Array, x: Array, what: str) -> None:
+    bad = ~np.isfinite(values)
+    if np.any(bad):
+        where = float(np.ravel(x)[np.flatnonzero(np.ravel(bad))[0]])
+        raise ComputationError(
+            f"{what} is not finite at x = {where:.6g}, a point the Gaussian integral reaches")
+
+
+def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequence[float] = (),
+                         *, mean: Any = 0.0, rule: QuadratureRule = DEFAULT_RULE,
+                         check_tails: bool = True, what: str = "the integrand") -> Array:
+    """E[fn(mean + sqrt(q) z)] for z ~ N(0, 1), vectorised over ``q`` and ``mean``.
+
+    Parameters
+    ----------
+    fn : callable
+        Vectorised function of x.
+    q : array_like
+        Variances, >= 0.
+    breakpoints : sequence of float
+        Kinks or jumps of ``fn`` in x; the integral is split there.
+    mean : array_like, optional
+        Means (broadcast with q).
+    rule : QuadratureRule, optional
+    check_tails : bool
+        Raise if the integrand is not negligible at the truncation ``|z| = z_max``
+        (an integrand growing like exp(x^2 / (2 q)) or faster).
+
+    Returns
+    -------
+    ndarray
+        Shape of ``broadcast(q, mean)``.
+
+    Raises
+    ------
+    ComputationError
+        If ``fn`` is not finite at a node, or (with ``check_tails``) the
+        truncated tails are not negligible.
+
+    Notes
+    -----
+    Exact for polynomials of degree <= 2 n_per_panel - 1 on every smooth piece;
+    tested to 1e-13 relative against mpmath for the built-in activations.
+    """
+    x, w = rule_nodes(mean, q, breakpoints, rule)
+    with np.errstate(over="ignore", invalid="ignore"):
+        f = np.asarray(fn(x), dtype=float)
+    _check_finite(f, x, what)
+    out = np.sum(w * f, axis=-1)
+    if check_tails:
+        mean_b, q_b = np.broadcast_arrays(np.asarray(mean, float), np.asarray(q, float))
+        L = rule.z_max
+        ends = np.stack([mean_b - np.sqrt(q_b) * L, mean_b + np.sqrt(q_b) * L], axis=-1)
+        with np.errstate(over="ignore", invalid="ignore"):
+            fe = np.abs(np.asarray(fn(ends), dtype=float))
+        _check_finite(fe, ends, what)
+        # density at the cut times a generous panel width versus the total
+        tail = fe.max(axis=-1) * (_INV_SQRT_2PI * math.exp(-0.5 * L * L)) * 10.0
+        scale = np.sum(np.abs(w * f), axis=-1)
+        if np.any(tail > 1e-13 * scale + 1e-300):
+            i = int(np.argmax(tail - 1e-13 * scale))
+            xe = float(np.ravel(ends.reshape(-1, 2)[i])[int(np.argmax(fe.reshape(-1, 2)[i]))])
+            raise ComputationError(
+                f"{what} grows too fast: it is still significant at x = {xe:.6g} "
+                f"({L:g} standard deviations out), so the Gaussian expectation "
+                "cannot be trusted")
+    return out
+
+
+def bivariate_expectation(fn: Callable[[Array, Array], Array], c: Any, q1: float = 1.0,
+                          q2: float | None = None, breakpoints1: Sequence[float] = (),
+                          breakpoints2: Sequence[float] | None = None, *,
+                          rule: QuadratureRule = DEFAULT_RULE, chunk_elements: int = 1 << 21,
+                          what: str = "the integrand", n_integrands: int = 1) -> Any:
+    """E[fn(u1, u2)] for a centred Gaussian pair with variances q1, q2 and correlation c.
+
+    ``u1 = sqrt(q1) z1`` and ``u2 = sqrt(q2) (c z1 + sqrt(1 - c^2) z2)``; the
+    outer rule splits at ``breakpoints1`` (of the first argument), the inner
+    rule, per outer node, where ``u2`` crosses ``breakpoints2``.
+
+    Parameters
+    ----------
+    fn : callable
+        Vectorised g(u1, u2) with broadcasting; with ``n_integrands > 1`` it
+        returns a tuple of that many arrays, all integrated on the same nodes.
+    c : array_like
+        Correlations in [-1, 1]; the result has the shape of ``c``.
+    q1, q2 : float
+        Variances (q2 defaults to q1), > 0.
+    breakpoints1, breakpoints2 : sequence of float
+        Kinks or jumps of g in its first and second argument (the second
+        defaults to the first).
+    chunk_elements : int
+        Memory bound: correlations are processed in chunks of about this many
+        nodes.
+
+    n_integrands : int
+        Number of arrays ``fn`` returns.
+
+    Returns
+    -------
+    ndarray or tuple of ndarray
+    """
+    c = np.asarray(c, dtype=float)
+    q2 = q1 if q2 is None else q2
+    bps2 = tuple(breakpoints1 if breakpoints2 is None else breakpoints2)
+    sq1, sq2 = math.sqrt(q1), math.sqrt(q2)
+    flat = np.clip(c.ravel(), -1.0, 1.0)
+    n_out = n_integrands
+    out = np.empty((n_out,) + flat.shape, dtype=float)
+    s_all = np.sqrt(np.maximum(0.0, 1.0 - flat * flat))
+    # Near |c| = 1 the inner expectation E[g(u1, u2) | z1] changes over a width
+    # s / |c| in z1 where the inner mean crosses a breakpoint of the second
+    # argument (z1 = b / (c sqrt(q2))): grade the outer panels there, 2^k (s/|c|).
+    with np.errstate(divide="ignore"):
+        ratio = np.where(s_all > 0, np.abs(flat) / np.where(s_all > 0, s_all, 1.0), np.inf)
+    levels = np.zeros(flat.shape, dtype=int)
+    if bps2:
+        levels = np.clip(np.ceil(np.log2(np.maximum(ratio, 1.0))), 0, 40).astype(int)
+    for level in np.unique(levels):
+        idx = np.flatnonzero(levels == level)
+        _bivariate_group(fn, flat, idx, int(level), sq1, sq2, tuple(breakpoints1), bps2, rule,
+                         chunk_elements, what, out)
+    if n_integrands == 1:
+        return out[0].reshape(c.shape)
+    return tuple(o.reshape(c.shape) for o in out)
+
+
+def _bivariate_group(fn: Callable[[Array, Array], Array], flat: Array, idx: Array, level: int,
+                     sq1: float, sq2: float, bps1: tuple[float, ...], bps2: tuple[float, ...],
+                     rule: QuadratureRule, chunk_elements: int, what: str, out: Array) -> None:
+    q1, q2 = sq1 * sq1, sq2 * sq2
+    n_outer = _node_count(sq1, len(bps1) + 2 * level * len(bps2), rule)
+    n_inner = _node_count(sq2, len(bps2), rule)
+    step = max(1, int(chunk_elements // max(1, n_outer * n_inner)))
+    for start in range(0, idx.size, step):
+        sel = idx[start:start + step]
+        cc = flat[sel]
+        extra = None
+        if level > 0:
+            s = np.sqrt(np.maximum(0.0, 1.0 - cc * cc))
+            width = np.where(s > 0, s / np.maximum(np.abs(cc), 1e-300), 0.0)
+            with np.errstate(divide="ignore"):
+                centers = np.asarray(bps2)[None, :] / (np.where(cc == 0, np.inf, cc)[:, None] * sq2)
+            offs = np.concatenate([sgn * 2.0 ** np.arange(level) for sgn in (-1.0, 1.0)])
+            extra = (centers[:, :, None] + width[:, None, None] * offs).reshape(cc.size, -1)
+        x1, w1 = rule_nodes(np.zeros(cc.size), np.full(cc.size, q1), bps1, rule, extra)
+        z1 = x1 / sq1
+        s2 = np.maximum(0.0, 1.0 - cc * cc)
+        mean2 = sq2 * cc[:, None] * z1
+        var2 = np.broadcast_to((q2 * s2)[:, None], mean2.shape)
+        x2, w2 = rule_nodes(mean2, var2, bps2, rule)
+        with np.errstate(over="ignore", invalid="ignore"):
+            gs = fn(x1[:, :, None], x2)
+        for k, g in enumerate(gs if isinstance(gs, tuple) else (gs,)):
+            g = np.broadcast_to(np.asarray(g, dtype=float), x2.shape)
+            if not np.all(np.isfinite(g)):
+                bad = tuple(np.argwhere(~np.isfinite(g))[0])
+                raise ComputationError(
+                    f"{what} is not finite at (u1, u2) = ({x1[bad[:2]]:.6g}, {x2[bad]:.6g})")
+            out[k, sel] = np.einsum("ij,ijk,ijk->i", w1, w2, g)
