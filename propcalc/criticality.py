@@ -29,7 +29,7 @@ import numpy as np
 from scipy import optimize
 
 from .activations import Activation
-from .errors import InvalidParameterError, check_int, check_nonnegative, check_positive
+from .errors import ComputationError, InvalidParameterError, check_int, check_nonnegative, check_positive
 from .maps import (
     chi_1 as chi_1_map,
     correlation_map_and_slope,
@@ -362,34 +362,65 @@ class Propagation:
 
 def _correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
                              rule: QuadratureRule) -> tuple[float, float]:
-    """(c*, C'(c*)) in the chaotic phase: Newton from c = 0 on C(c) - c.
+    """(c*, C'(c*)) in the chaotic phase: the root of g(c) = C(c) - c in [0, 1).
 
-    C is convex on [0, 1] with C(0) >= 0 and C'(1) > 1, so the root in [0, 1)
-    is unique and Newton's iterates from 0 increase monotonically to it.
+    C is convex on [0, 1] with C(0) >= 0 and C'(1) > 1, so the root is unique
+    and g > 0 to its left. Each step solves the cubic Hermite interpolant of g
+    between the current left point (c, g, g') and (1, 0, chi_1 - 1), which is
+    known from 1-D quadrature; a step that does not land left of the root is
+    replaced by Newton's step, which for a convex g never overshoots. About
+    four 2-D evaluations reach full precision.
     """
-    c = 0.0
-    val, slope = (float(v) for v in correlation_map_and_slope(act, c, sw, sb, q, rule))
-    if abs(val) <= 1e-15:
-        return 0.0, slope
-    for _ in range(60):
-        g, dg = val - c, slope - 1.0
-        if dg >= 0.0:  # cannot happen for a convex map; fall back to bracketing
-            break
-        step = -g / dg
-        c_new = min(c + step, 1.0 - 1e-15)
-        val, slope = (float(v) for v in correlation_map_and_slope(act, c_new, sw, sb, q, rule))
-        if abs(c_new - c) <= 1e-14 * max(1.0, abs(c_new)):
-            return c_new, slope
-        c = c_new
-    # safeguard: Brent on a bracket [0, 1 - eps]
-    def gfun(x: float) -> float:
-        return float(correlation_map_and_slope(act, x, sw, sb, q, rule)[0]) - x
+    def both(x: float) -> tuple[float, float]:
+        v, d = correlation_map_and_slope(act, x, sw, sb, q, rule)
+        return float(v) - x, float(d)
 
-    hi = 1.0 - 1e-2
-    while gfun(hi) >= 0.0 and hi < 1.0 - 1e-13:
-        hi = 1.0 - (1.0 - hi) * 1e-2
-    root = optimize.brentq(gfun, 0.0, hi, xtol=1e-15, rtol=4e-15)
-    return root, float(correlation_map_and_slope(act, root, sw, sb, q, rule)[1])
+    g, slope = both(0.0)
+    if abs(g) <= 1e-15:
+        return 0.0, slope
+    c = 0.0
+    c1 = float(chi_1_map(act, q, sw, rule)) * q / float(variance_map(act, q, sw, sb, rule))
+    hi = 1.0  # a point known to be right of the root once found (g < 0)
+    for _ in range(60):
+        dg = slope - 1.0
+        newton = c - g / dg if dg < 0 else None
+        cand = _cubic_root(c, g, dg, c1 - 1.0)
+        step = cand if cand is not None and c < cand < hi else newton
+        if step is None or not (c < step < hi):
+            step = 0.5 * (c + hi)
+        g_new, s_new = both(step)
+        if abs(g_new) <= 4e-15 or abs(step - c) <= 1e-15:  # rounding floor of C
+            return step, s_new
+        if g_new > 0:
+            c, g, slope = step, g_new, s_new
+        else:
+            hi = step
+            # Newton from the left point, now with a bracket
+            if newton is not None and c < newton < hi:
+                g_n, s_n = both(newton)
+                if abs(g_n) <= 4e-15:
+                    return newton, s_n
+                if g_n > 0:
+                    c, g, slope = newton, g_n, s_n
+                else:
+                    hi = newton
+        if hi - c <= 1e-15:
+            return c, slope
+    raise ComputationError(f"the correlation fixed point of {act.label} did not converge "
+                           f"(bracket [{c:.17g}, {hi:.17g}])")
+
+
+def _cubic_root(a: float, ga: float, da: float, d1: float) -> float | None:
+    """Smallest root in (a, 1) of the cubic Hermite interpolant of g with g(1) = 0, g'(1) = d1."""
+    h = 1.0 - a
+    if h <= 0 or not (math.isfinite(ga) and math.isfinite(da) and math.isfinite(d1)):
+        return None
+    # on t in [0, 1]: p(t) = h00 ga + h10 h da + h11 h d1 (the value at t = 1 is 0)
+    m0, m1 = h * da, h * d1
+    coeffs = np.array([2 * ga + m0 + m1, -3 * ga - 2 * m0 - m1, m0, ga])
+    roots = np.roots(coeffs) if abs(coeffs[0]) > 1e-300 else np.roots(coeffs[1:])
+    real = sorted(float(r.real) for r in roots if abs(r.imag) < 1e-9 and 1e-12 < r.real < 1 - 1e-12)
+    return a + h * real[0] if real else None
 
 
 def _edge_approach(act: Activation, sw: float, sb: float, q: float, rule: QuadratureRule) -> str:

@@ -187,13 +187,20 @@ def _rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float],
     a, bb = edges[..., :-1], edges[..., 1:]
     t, wt = legendre_rule(rule.n_per_panel)
     half = 0.5 * (bb - a)
-    z = (0.5 * (a + bb))[..., None] + half[..., None] * t
-    w = half[..., None] * wt * (_INV_SQRT_2PI * np.exp(-0.5 * z * z))
+    # few passes over the big arrays, in place: this is the hot loop of the 2-D rule
+    z = half[..., None] * t
+    z += (0.5 * (a + bb))[..., None]
+    w = np.square(z)
+    w *= -0.5
+    np.exp(w, out=w)
+    w *= wt * _INV_SQRT_2PI
+    w *= half[..., None]
     shape = sq.shape + (z.shape[-2] * z.shape[-1],)
     z = z.reshape(shape)
     w = w.reshape(shape)
-    x = mean[..., None] + sq[..., None] * z
-    return x, w
+    z *= sq[..., None]
+    z += mean[..., None]
+    return z, w
 
 
 def _check_finite(values: Array, x: Array, what: str) -> None:
