@@ -238,14 +238,19 @@ def variance_fixed_points(act: Activation, sigma_w2: float, sigma_b2: float, q_i
     # drop a spurious root right next to q = 0 when q = 0 itself is the fixed point
     if zero_is_fixed:
         points = [points[0]] + [p for p in points[1:] if p.q > 10 * q_lo]
+    g_start = gap(q_start)
+    # a tangential fixed point (chi_q = 1) gives no sign change: catch it at the start value
+    if abs(g_start) <= 1e-13 * q_start and not any(abs(p.q - q_start) <= 1e-9 * q_start
+                                                   for p in points):
+        points.append(_fixed_point(act, q_start, sw, rule))
     points.sort(key=lambda p: p.q)
     pts = tuple(points)
 
     above = [p for p in pts if p.q >= q_start * (1 - 1e-12)]
     below = [p for p in pts if p.q <= q_start * (1 + 1e-12)]
-    g_start = gap(q_start)
-    if g_start == 0.0 or (above and abs(above[0].q - q_start) <= 1e-12 * q_start):
-        reached = above[0] if above else below[-1]
+    near = [p for p in pts if abs(p.q - q_start) <= 1e-9 * q_start]
+    if near:
+        reached = near[0]
     elif g_start > 0:
         reached = above[0] if above else None
     else:
@@ -621,7 +626,9 @@ def _line(act: Activation, q: np.ndarray, rule: QuadratureRule) -> tuple[np.ndar
     # Poole et al. 2016 / Schoenholz et al. 2017: chi_1 = 1 and V(q*) = q*
     d2 = derivative_second_moment(act, q, rule)
     with np.errstate(divide="ignore"):
-        sw = np.where(d2 > 0, 1.0 / np.where(d2 > 0, d2, 1.0), np.inf)
+        # E[phi'^2] = 0 (no gradient) or inf (a jump): no critical sigma_w2, marked inf
+        usable = (d2 > 0) & np.isfinite(d2)
+        sw = np.where(usable, 1.0 / np.where(usable, d2, 1.0), np.inf)
     sb = q - sw * second_moment(act, q, rule)
     return sw, sb
 

@@ -35,6 +35,7 @@ __all__ = [
     "DISTRIBUTIONS",
     "TARGETS",
     "TRUNCATION",
+    "ATTRACTION_MARGIN",
     "Gains",
     "Layer",
     "LayerInit",
@@ -361,31 +362,51 @@ def _layer_init(index: int, layer: Layer | None, sw: float, sb: float, distribut
                      values[distribution])
 
 
+#: chi_q at most this at the preferred q* counts as attracting enough (xi_q <= about 20 layers)
+ATTRACTION_MARGIN = 0.95
+
+
 def _pick_stable_edge(act: Activation, q_star: float | None,
                       rule: QuadratureRule) -> tuple[CriticalPoint | None, list[str]]:
+    """The edge-of-chaos point to plan at.
+
+    The preferred q* (1, or the user's) if its fixed point attracts with
+    chi_q <= ATTRACTION_MARGIN (or is neutral, as for ReLU); otherwise the
+    point of the line (q* in [1e-3, 1e3]) closest to it in log q* that
+    attracts that well; failing that, the most strongly attracting point.
+    """
     notes: list[str] = []
-    first = edge_of_chaos(act, 1.0 if q_star is None else q_star, rule)
-    if first.valid and (first.stable or abs((first.chi_q or 0) - 1.0) <= 1e-9):
+    target = 1.0 if q_star is None else q_star
+    first = edge_of_chaos(act, target, rule)
+    if first.valid and first.chi_q is not None and (
+            abs(first.chi_q) <= ATTRACTION_MARGIN or abs(first.chi_q - 1.0) <= 1e-9):
         return first, notes
-    if q_star is not None:
-        notes.append(f"the requested q* = {q_star:g} is not usable: {first.message}")
-    else:
-        notes.append(f"q* = 1 is not usable: {first.message}")
+    notes.append(f"q* = {target:g} is not usable: {first.message}" if not first.stable
+                 else f"q* = {target:g} attracts only weakly (chi_q = {first.chi_q:.4g})")
     grid = np.geomspace(1e-3, 1e3, 121)
     sw_line, sb_line = edge_of_chaos_line_arrays(act, grid, rule)
-    ok = np.isfinite(sw_line) & (sb_line >= 0)
+    ok = np.isfinite(sw_line) & (sw_line > 0) & (sb_line >= 0)
     slopes = np.full(grid.shape, np.inf)
     if np.any(ok):
         slopes[ok] = [float(variance_map_slope(act, q, w, rule))
                       for q, w in zip(grid[ok], sw_line[ok])]
-    good = [edge_of_chaos(act, float(q), rule) for q in grid[ok & (np.abs(slopes) < 1 - 1e-9)]]
-    if not good:
+    attracting = ok & (np.abs(slopes) < 1 - 1e-9)
+    if not np.any(attracting):
+        if first.valid and first.stable:
+            return first, notes
         notes.append("no point of the edge-of-chaos line with q* in [1e-3, 1e3] attracts")
         return None, notes
-    target = 1.0 if q_star is None else q_star
-    best = min(good, key=lambda cp: abs(math.log(cp.q_star / target)))
-    notes.append(f"moved along the edge of chaos to q* = {best.q_star:.4g}, the attracting point "
-                 f"closest to {target:g} (sigma_b2 = {best.sigma_b2:.4g})")
+    strong = attracting & (np.abs(slopes) <= ATTRACTION_MARGIN)
+    if np.any(strong):  # attracting enough: the one closest to the preferred q*
+        k = int(np.argmin(np.where(strong, np.abs(np.log(grid / target)), np.inf)))
+        how = f"the point closest to q* = {target:g} with chi_q <= {ATTRACTION_MARGIN:g}"
+    else:
+        k = int(np.argmin(np.where(attracting, np.abs(slopes), np.inf)))
+        how = "its most strongly attracting point"
+    best = edge_of_chaos(act, float(grid[k]), rule)
+    notes.append(f"moved along the edge of chaos to q* = {best.q_star:.4g}, {how} "
+                 f"(chi_q = {best.chi_q:.4g}, so the variance settles over about "
+                 f"xi_q = {-1.0 / math.log(abs(best.chi_q)):.3g} layers; sigma_b2 = {best.sigma_b2:.4g})")
     return best, notes
 
 
