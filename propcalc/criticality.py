@@ -201,8 +201,8 @@ def variance_fixed_points(act: Activation, sigma_w2: float, sigma_b2: float, q_i
 
     Notes
     -----
-    Roots of ``V(q) - q`` are bracketed on a log grid of 161 points over
-    ``[1e-10, 1e8]`` (extended to cover sigma_b2) and polished by Brent's
+    Roots of ``V(q) - q`` are bracketed on a log grid over
+    ``[1e-10, 1e8]`` (121 points, extended to cover sigma_b2) and polished by Brent's
     method (xtol 1e-14 relative). The flow is read off the sign of
     ``V(q) - q`` at q_start, which is exact when V is non-decreasing (true
     for every built-in; E[phi(sqrt(q) z)^2] increases with q when |phi| grows
@@ -214,7 +214,7 @@ def variance_fixed_points(act: Activation, sigma_w2: float, sigma_b2: float, q_i
     q_start = sw * qi + sb
     q_hi = max(_Q_MAX, 10.0 * (sb + q_start))
     q_lo = min(_Q_MIN, sb / 10.0) if sb > 0 else _Q_MIN
-    grid = np.geomspace(q_lo, q_hi, 161)
+    grid = np.geomspace(q_lo, q_hi, 121)
     g = variance_map(act, grid, sw, sb, rule) - grid
 
     def gap(q: float) -> float:
@@ -446,7 +446,8 @@ def _edge_approach(act: Activation, sw: float, sb: float, q: float, rule: Quadra
                 "Hayou et al. 2019)")
     h = 1e-4
     s1 = float(correlation_map_and_slope(act, 1.0 - h, sw, sb, q, rule)[1])
-    s0 = float(correlation_map_and_slope(act, 1.0, sw, sb, q, rule)[1])
+    # C'(1) = sigma_w2 q E[phi'^2] / V(q): one 1-D integral
+    s0 = float(chi_1_map(act, q, sw, rule)) * q / float(variance_map(act, q, sw, sb, rule))
     curvature = (s0 - s1) / h
     if curvature <= 0 or not math.isfinite(curvature):
         return "1 - c_l decays more slowly than any power law measured here"
