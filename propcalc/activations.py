@@ -220,6 +220,11 @@ def _sech2(x: Array) -> Array:
     return 4.0 * e / (1.0 + e) ** 2
 
 
+def _square_clipped(x: Array) -> Array:
+    """x^2 without overflow (clipped at 1e300, where exp(-x^2) is 0 anyway)."""
+    return np.square(np.minimum(np.abs(x), 1e150))
+
+
 def _sigmoid_prime(x: Array) -> Array:
     return special.expit(x) * special.expit(-x)
 
@@ -251,16 +256,19 @@ def _swish(beta: float) -> tuple[ArrayFn, ArrayFn]:
 
 def _gelu_tanh_value(x: Array) -> Array:
     # Hendrycks & Gimpel 2016: 0.5 x (1 + tanh(sqrt(2/pi) (x + 0.044715 x^3)))
-    # written as x * sigmoid(2 u), which is the same and cannot overflow.
-    u = _SQRT_2_OVER_PI * (x + _GELU_TANH_C * x**3)
+    # written as x * sigmoid(2 u), which is the same and cannot overflow; the cubic
+    # is taken of x clipped to |x| <= 1e50, where sigmoid(2 u) is already 0 or 1.
+    xc = np.clip(x, -1e50, 1e50)
+    u = _SQRT_2_OVER_PI * (xc + _GELU_TANH_C * xc**3)
     return x * special.expit(2.0 * u)
 
 
 def _gelu_tanh_deriv(x: Array) -> Array:
-    u = _SQRT_2_OVER_PI * (x + _GELU_TANH_C * x**3)
-    du = _SQRT_2_OVER_PI * (1.0 + 3.0 * _GELU_TANH_C * x**2)
+    xc = np.clip(x, -1e50, 1e50)
+    u = _SQRT_2_OVER_PI * (xc + _GELU_TANH_C * xc**3)
+    du = _SQRT_2_OVER_PI * (1.0 + 3.0 * _GELU_TANH_C * xc**2)
     s = special.expit(2.0 * u)
-    return s + x * 2.0 * du * s * special.expit(-2.0 * u)
+    return s + xc * 2.0 * du * s * special.expit(-2.0 * u)
 
 
 def _mish_value(x: Array) -> Array:
@@ -333,7 +341,7 @@ def _leaky_relu(slope: float = 0.01) -> Activation:
 def _elu_builtin(alpha: float = 1.0) -> Activation:
     a = check_finite("alpha", alpha)
     if a < 0:
-        raise InvalidParameterError("alpha", ">= 0", alpha)
+        raise InvalidParameterError("params.alpha", ">= 0", alpha)
     v, d = _elu(a)
     return _make("elu", v, d, (0.0,), {"alpha": a})
 
@@ -349,7 +357,7 @@ def _softplus_builtin() -> Activation:
 
 def _gelu() -> Activation:
     return _make("gelu", lambda x: x * special.ndtr(x),
-                 lambda x: special.ndtr(x) + x * _INV_SQRT_2PI * np.exp(-0.5 * np.minimum(x * x, 1e300)))
+                 lambda x: special.ndtr(x) + x * _INV_SQRT_2PI * np.exp(-0.5 * _square_clipped(x)))
 
 
 def _gelu_tanh() -> Activation:
@@ -373,7 +381,7 @@ def _mish() -> Activation:
 
 def _erf() -> Activation:
     return _make("erf", special.erf,
-                 lambda x: (2.0 / math.sqrt(math.pi)) * np.exp(-np.minimum(x * x, 1e300)))
+                 lambda x: (2.0 / math.sqrt(math.pi)) * np.exp(-_square_clipped(x)))
 
 
 def _hard_tanh() -> Activation:
@@ -478,7 +486,8 @@ def _profile(act: Activation) -> ActivationProperties:
     lo, hi = float(np.min(f[finite])), float(np.max(f[finite]))
     probe = act.value(np.array([-1e3, -_TAIL, 1e3, _TAIL]))
     for side_small, side_big in ((probe[0], probe[1]), (probe[2], probe[3])):
-        if abs(side_big) > 10.0 and abs(side_big) > 2.0 * abs(side_small):
+        # still growing (at least like |x|^0.7) between 1e3 and 1e4: unbounded on that side
+        if abs(side_big) > 1e-300 and abs(side_big) > 5.0 * abs(side_small):
             if side_big > 0:
                 hi = math.inf
             else:

@@ -44,7 +44,7 @@ from typing import Any
 import numpy as np
 from numpy.polynomial import hermite_e, legendre
 
-from .errors import ComputationError
+from .errors import ComputationError, InvalidParameterError
 
 __all__ = [
     "QuadratureRule",
@@ -209,6 +209,24 @@ def _rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float],
     return z, w
 
 
+def _validate(values: Array, field: str, lower: float | None = None, upper: float | None = None,
+              strict: bool = False) -> None:
+    """Raise InvalidParameterError naming ``field`` for non-finite or out-of-range entries."""
+    ok = np.isfinite(values)
+    if lower is not None:
+        ok &= (values > lower) if strict else (values >= lower)
+    if upper is not None:
+        ok &= values <= upper
+    if not np.all(ok):
+        bad = float(np.asarray(values)[~ok].ravel()[0])
+        parts = ["finite"]
+        if lower is not None:
+            parts.append(f"{'>' if strict else '>='} {lower:g}")
+        if upper is not None:
+            parts.append(f"<= {upper:g}")
+        raise InvalidParameterError(field, " and ".join(parts), bad)
+
+
 def _check_finite(values: Array, x: Array, what: str) -> None:
     bad = ~np.isfinite(values)
     if np.any(bad):
@@ -254,6 +272,8 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
     tested to 1e-13 relative against mpmath for the built-in activations.
     """
     mean_b, q_b = np.broadcast_arrays(np.asarray(mean, float), np.asarray(q, float))
+    _validate(q_b, "q", lower=0.0)
+    _validate(mean_b, "mean")
     levels = _levels_array(np.sqrt(q_b))
     if levels.size > 8 and levels.min() + 4 <= levels.max():
         # rows far apart in scale need different gradings: do them in groups (cheaper)
@@ -267,6 +287,8 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
     x, w = rule_nodes(mean, q, breakpoints, rule)
     with np.errstate(over="ignore", invalid="ignore"):
         f = np.asarray(fn(x), dtype=float)
+    # zero-width panels (coinciding edges) put weight-0 nodes on breakpoints: ignore them
+    f = np.where(w > 0, f, 0.0)
     _check_finite(f, x, what)
     out = np.sum(w * f, axis=-1)
     if check_tails:
@@ -307,9 +329,10 @@ def bivariate_expectation(fn: Callable[[Array, Array], Array], c: Any, q1: float
         Vectorised g(u1, u2) with broadcasting; with ``n_integrands > 1`` it
         returns a tuple of that many arrays, all integrated on the same nodes.
     c : array_like
-        Correlations in [-1, 1]; the result has the shape of ``c``.
+        Correlations in [-1, 1] (anything else raises InvalidParameterError);
+        the result has the shape of ``c``.
     q1, q2 : float
-        Variances (q2 defaults to q1), > 0.
+        Variances (q2 defaults to q1), finite and > 0.
     breakpoints1, breakpoints2 : sequence of float
         Kinks or jumps of g in its first and second argument (the second
         defaults to the first).
@@ -326,9 +349,12 @@ def bivariate_expectation(fn: Callable[[Array, Array], Array], c: Any, q1: float
     """
     c = np.asarray(c, dtype=float)
     q2 = q1 if q2 is None else q2
+    _validate(c, "c", lower=-1.0, upper=1.0)
+    _validate(np.asarray(q1, dtype=float), "q1", lower=0.0, strict=True)
+    _validate(np.asarray(q2, dtype=float), "q2", lower=0.0, strict=True)
     bps2 = tuple(breakpoints1 if breakpoints2 is None else breakpoints2)
     sq1, sq2 = math.sqrt(q1), math.sqrt(q2)
-    flat = np.clip(c.ravel(), -1.0, 1.0)
+    flat = c.ravel()
     n_out = n_integrands
     out = np.empty((n_out,) + flat.shape, dtype=float)
     s_all = np.sqrt(np.maximum(0.0, 1.0 - flat * flat))
@@ -375,8 +401,9 @@ def _bivariate_group(fn: Callable[[Array, Array], Array], flat: Array, idx: Arra
         x2, w2 = rule_nodes(mean2, var2, bps2, rule)
         with np.errstate(over="ignore", invalid="ignore"):
             gs = fn(x1[:, :, None], x2)
+        live = (w1[:, :, None] * w2) > 0  # weight-0 nodes may sit on breakpoints
         for k, g in enumerate(gs if isinstance(gs, tuple) else (gs,)):
-            g = np.broadcast_to(np.asarray(g, dtype=float), x2.shape)
+            g = np.where(live, np.broadcast_to(np.asarray(g, dtype=float), x2.shape), 0.0)
             if not np.all(np.isfinite(g)):
                 bad = tuple(np.argwhere(~np.isfinite(g))[0])
                 raise ComputationError(
