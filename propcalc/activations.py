@@ -147,6 +147,9 @@ class Activation:
         """Name with its parameters, e.g. ``leaky_relu(slope=0.1)``."""
         if not self.params:
             return self.name
+        if self.formula is not None:
+            return f"{self.name} with " + ", ".join(
+                f"{k}={v:g}" for k, v in sorted(self.params.items()))
         inner = ", ".join(f"{k}={v:g}" for k, v in sorted(self.params.items()))
         return f"{self.name}({inner})"
 
