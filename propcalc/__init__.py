@@ -40,7 +40,7 @@ from .errors import (
     PropcalcError,
     UnknownActivationError,
 )
-from .formula import activation
+from .formula import LIMITS as FORMULA_LIMITS, FormulaLimits, activation, formula_activation
 from .jsonable import jsonable
 from .maps import (
     chi_1,
@@ -60,7 +60,9 @@ __all__ = [
     "ComputationError",
     "CriticalPoint",
     "FixedPoint",
+    "FORMULA_LIMITS",
     "FormulaError",
+    "FormulaLimits",
     "Gains",
     "InitPlan",
     "InvalidParameterError",
@@ -80,6 +82,7 @@ __all__ = [
     "edge_of_chaos",
     "edge_of_chaos_at_bias",
     "edge_of_chaos_line",
+    "formula_activation",
     "gains",
     "gaussian_expectation",
     "jsonable",
