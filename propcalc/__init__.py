@@ -33,6 +33,42 @@ from .criticality import (
     propagation,
     variance_fixed_points,
 )
+from .dropout import DropoutPropagation, DropoutSweep, dropout_propagation, dropout_sweep
+from .maxout import (
+    MaxMoments,
+    MaxoutLayer,
+    MaxoutPropagation,
+    max_moments,
+    maxout_layer,
+    maxout_propagation,
+)
+from .output_layer import (
+    InitialLoss,
+    MaxProbability,
+    OutputLayerScale,
+    initial_loss,
+    max_class_probability,
+    output_layer_for_plan,
+    output_layer_scale,
+)
+from .selfnorm import (
+    AlphaDropout,
+    MeanVarianceFixedPoint,
+    SelfNormalization,
+    alpha_dropout,
+    mean_variance_jacobian,
+    mean_variance_map,
+    self_normalization,
+)
+from .simulate import LayerMeasurement, Simulation, mean_field_trajectory, simulate, simulate_plan
+from .spectrum import (
+    IsometryAdvice,
+    JacobianSpectrum,
+    SampledSpectrum,
+    dynamical_isometry,
+    jacobian_spectrum,
+    sample_jacobian_spectrum,
+)
 from .errors import (
     ComputationError,
     FormulaError,
@@ -55,6 +91,41 @@ from .recommend import Gains, InitPlan, Layer, LayerInit, gains, recommend
 __version__ = "0.1.0"
 
 __all__ = [
+    "DropoutPropagation",
+    "DropoutSweep",
+    "dropout_propagation",
+    "dropout_sweep",
+    "MaxMoments",
+    "MaxoutLayer",
+    "MaxoutPropagation",
+    "max_moments",
+    "maxout_layer",
+    "maxout_propagation",
+    "InitialLoss",
+    "MaxProbability",
+    "OutputLayerScale",
+    "initial_loss",
+    "max_class_probability",
+    "output_layer_for_plan",
+    "output_layer_scale",
+    "AlphaDropout",
+    "MeanVarianceFixedPoint",
+    "SelfNormalization",
+    "alpha_dropout",
+    "mean_variance_jacobian",
+    "mean_variance_map",
+    "self_normalization",
+    "LayerMeasurement",
+    "Simulation",
+    "mean_field_trajectory",
+    "simulate",
+    "simulate_plan",
+    "IsometryAdvice",
+    "JacobianSpectrum",
+    "SampledSpectrum",
+    "dynamical_isometry",
+    "jacobian_spectrum",
+    "sample_jacobian_spectrum",
     "Activation",
     "ActivationProperties",
     "ComputationError",
