@@ -1,3 +1,17 @@
-"""propcalc's JSON HTTP service (import name ``propcalc_api``). Under construction."""
+"""propcalc's JSON HTTP service (import name ``propcalc_api``; the sources live in ``api/``).
 
-__all__: list[str] = []
+>>> from propcalc_api import create_app
+>>> app = create_app()            # nothing is created at import time
+
+Endpoints under ``/v1`` (see ``/openapi.json`` and ``docs/service.md``):
+activation list and profiles, propagation reports, the edge of chaos,
+initialisation plans and sampled maps; ``/health``. Run it locally with
+``propcalc serve``; in production with gunicorn (the command is in
+``docs/service.md``).
+"""
+
+from __future__ import annotations
+
+from ._app import create_app
+
+__all__ = ["create_app"]

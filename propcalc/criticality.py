@@ -213,7 +213,9 @@ def variance_fixed_points(act: Activation, sigma_w2: float, sigma_b2: float, q_i
     qi = check_nonnegative("q_input", q_input)
     q_start = sw * qi + sb
     q_hi = max(_Q_MAX, 10.0 * (sb + q_start))
-    q_lo = min(_Q_MIN, sb / 10.0) if sb > 0 else _Q_MIN
+    # V(q) >= about V(0) near 0, so a grid starting below V(0)/10 sees V(q) - q > 0 there
+    v0 = float(variance_map(act, 0.0, sw, sb, rule))
+    q_lo = max(min(_Q_MIN, v0 / 10.0) if v0 > 0 else _Q_MIN, 1e-300)
     grid = np.geomspace(q_lo, q_hi, 121)
     g = variance_map(act, grid, sw, sb, rule) - grid
 
@@ -240,7 +242,7 @@ def variance_fixed_points(act: Activation, sigma_w2: float, sigma_b2: float, q_i
         points = [points[0]] + [p for p in points[1:] if p.q > 10 * q_lo]
     g_start = gap(q_start)
     # a tangential fixed point (chi_q = 1) gives no sign change: catch it at the start value
-    if abs(g_start) <= 1e-13 * q_start and not any(abs(p.q - q_start) <= 1e-9 * q_start
+    if q_start > 0 and abs(g_start) <= 1e-13 * q_start and not any(abs(p.q - q_start) <= 1e-9 * q_start
                                                    for p in points):
         points.append(_fixed_point(act, q_start, sw, rule))
     points.sort(key=lambda p: p.q)
@@ -256,6 +258,10 @@ def variance_fixed_points(act: Activation, sigma_w2: float, sigma_b2: float, q_i
     else:
         reached = below[-1] if below else None
 
+    if reached is None and g_start <= 0:
+        raise ComputationError(
+            f"the pre-activation variance falls below {q_lo:.3g}, the smallest value resolved "
+            f"here (sigma_w2 = {sw:.3g}, sigma_b2 = {sb:.3g}); rescale the inputs or sigma_w2")
     if reached is None:
         rate = variance_growth_rate(act, sw, rule=rule)
         how = (f"by a factor of about {rate:.6g} per layer" if rate > 1 + 1e-9
@@ -265,6 +271,7 @@ def variance_fixed_points(act: Activation, sigma_w2: float, sigma_b2: float, q_i
             f"no finite fixed point above the input variance {q_start:.6g}: "
             f"the pre-activation variance grows {how}")
     if reached.q == 0.0:
+        rate0 = variance_collapse_rate(act, sw) if rate0 is None else rate0
         return VarianceFixedPoints(
             pts, q_start, reached, "collapse", float(rate0),
             f"the pre-activation variance collapses to 0 (V(q)/q -> {rate0:.6g} as q -> 0"
@@ -439,9 +446,10 @@ def _edge_approach(act: Activation, sw: float, sb: float, q: float, rule: Quadra
     if act.has_jumps:
         return "1 - c_l does not vanish: the step-like map has infinite slope at c = 1"
     kinks = [(b, k) for b, k in zip(act.breakpoints, act.kinks) if k != 0.0]
-    if kinks:
-        dens = sum(k * k * math.exp(-b * b / (2 * q)) / math.sqrt(2 * math.pi * q) for b, k in kinks)
-        a = sw * math.sqrt(q / math.pi) * dens
+    dens = sum(k * k * math.exp(-b * b / (2 * q)) / math.sqrt(2 * math.pi * q) for b, k in kinks)
+    a = sw * math.sqrt(q / math.pi) * dens
+    # kinks far out in the Gaussian tails (a tiny) matter only at absurd depths: smooth law
+    if a > 1e-8:
         return (f"1 - c_l ~ {9.0 / (a * a):.6g} / l^2 (polynomial; kinked activation, "
                 "Hayou et al. 2019)")
     h = 1e-4

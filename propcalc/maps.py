@@ -129,11 +129,10 @@ def variance_map_slope(act: Activation, q: Any, sigma_w2: float,
     sw = check_positive("sigma_w2", sigma_w2)
     qa = _q_array(q)
     safe = np.where(qa > 0, qa, 1.0)
-    z2m1 = np.sqrt(safe)
-    # E[(z^2 - 1) f(sqrt(q) z)] with z = x / sqrt(q), written in x
+    # E[(z^2 - 1) f(sqrt(q) z)]: the rule hands the standard-normal node z along with x
     val = gaussian_expectation(
-        lambda x: ((x / z2m1[..., None]) ** 2 - 1.0) * act.value(x) ** 2,
-        safe, act.breakpoints, rule=rule, what=f"{act.label}(x)^2")
+        lambda x, z: (z * z - 1.0) * act.value(x) ** 2,
+        safe, act.breakpoints, rule=rule, what=f"{act.label}(x)^2", with_z=True)
     out = sw * val / (2.0 * safe)
     if np.any(qa == 0):
         out = np.where(qa == 0, variance_collapse_rate(act, sw), out)

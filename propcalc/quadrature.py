@@ -237,7 +237,8 @@ def _check_finite(values: Array, x: Array, what: str) -> None:
 
 def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequence[float] = (),
                          *, mean: Any = 0.0, rule: QuadratureRule = DEFAULT_RULE,
-                         check_tails: bool = True, what: str = "the integrand") -> Array:
+                         check_tails: bool = True, what: str = "the integrand",
+                         with_z: bool = False) -> Array:
     """E[fn(mean + sqrt(q) z)] for z ~ N(0, 1), vectorised over ``q`` and ``mean``.
 
     Parameters
@@ -254,6 +255,9 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
     check_tails : bool
         Raise if the integrand is not negligible at the truncation ``|z| = z_max``
         (an integrand growing like exp(x^2 / (2 q)) or faster).
+    with_z : bool
+        Call ``fn(x, z)`` with the standard-normal node z as well (for Stein-type
+        weights such as ``z^2 - 1``); requires q > 0.
 
     Returns
     -------
@@ -282,11 +286,15 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
         for b in np.unique(bins):
             sel = bins == b
             out[sel] = gaussian_expectation(fn, q_b[sel], breakpoints, mean=mean_b[sel], rule=rule,
-                                            check_tails=check_tails, what=what)
+                                            check_tails=check_tails, what=what, with_z=with_z)
         return out
     x, w = rule_nodes(mean, q, breakpoints, rule)
     with np.errstate(over="ignore", invalid="ignore"):
-        f = np.asarray(fn(x), dtype=float)
+        if with_z:
+            z = (x - mean_b[..., None]) / np.sqrt(q_b)[..., None]
+            f = np.asarray(fn(x, z), dtype=float)
+        else:
+            f = np.asarray(fn(x), dtype=float)
     # zero-width panels (coinciding edges) put weight-0 nodes on breakpoints: ignore them
     f = np.where(w > 0, f, 0.0)
     _check_finite(f, x, what)
@@ -296,7 +304,8 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
         L = rule.z_max
         ends = np.stack([mean_b - np.sqrt(q_b) * L, mean_b + np.sqrt(q_b) * L], axis=-1)
         with np.errstate(over="ignore", invalid="ignore"):
-            fe = np.abs(np.asarray(fn(ends), dtype=float))
+            fe = np.abs(np.asarray(fn(ends, np.array([-L, L])) if with_z else fn(ends),
+                                   dtype=float))
         _check_finite(fe, ends, what)
         # density at the cut times a generous panel width versus the total
         tail = fe.max(axis=-1) * (_INV_SQRT_2PI * math.exp(-0.5 * L * L)) * 10.0

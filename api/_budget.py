@@ -1,0 +1,177 @@
+"""The per-request work budget: estimate the cost first, refuse what is too large.
+
+Costs are in *work units*, about one millisecond of one core of the machine
+the coefficients were measured on (a shared 2-core server; the estimates sit
+above the slowest built-in activation measured there, so most requests take
+far less than their estimate). A request whose estimate exceeds
+``WORK_BUDGET`` (3000 units by default: about three seconds at most) is
+refused with 422 ``work-budget-exceeded`` before any expensive work starts;
+the problem names the limit and how much smaller the request must be.
+
+The estimates (measured per point, common practice, no source):
+
+==========================  =====================================================
+request                     estimated units
+==========================  =====================================================
+activation list             50 per built-in (once; then cached)
+one activation              50
+propagation report          200
+critical point              5
+edge-of-chaos line          10 + 1 per q* value; 150 at a fixed sigma_b2
+plan                        300 + 0.05 per layer
+variance map                0.5 per q value
+correlation map             k(q) per c value, 3 k(q) more with the slope,
+                            k(q) = 6 * 2 ** (log10(max(q, 1)) / 2); plus 200
+                            when q* must be found first
+==========================  =====================================================
+
+Activations given as formulas cost twice as much (``FORMULA_FACTOR``).
+
+As a second line of defence, :func:`run_guarded` stops a computation
+that runs longer than ``WALL_CLOCK_LIMIT`` seconds (SIGALRM, so only in the
+main thread of a process: gunicorn's sync workers and ``propcalc serve``;
+elsewhere the guard is off and gunicorn's ``--timeout`` is the backstop).
+"""
+
+from __future__ import annotations
+
+import math
+import signal
+import threading
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from typing import Any, TypeVar
+
+from ._fields import format_number
+from ._problems import WorkBudgetExceeded
+
+__all__ = [
+    "FORMULA_FACTOR",
+    "COSTS",
+    "correlation_point_cost",
+    "check_budget",
+    "max_points",
+    "WallClockExceeded",
+    "guard_available",
+    "run_guarded",
+]
+
+T = TypeVar("T")
+
+FORMULA_FACTOR = 2.0
+COSTS = {
+    "activation": 50.0,
+    "propagation": 200.0,
+    "critical_point": 5.0,
+    "edge_base": 10.0,
+    "edge_point": 1.0,
+    "edge_at_bias": 150.0,
+    "plan": 300.0,
+    "plan_layer": 0.05,
+    "variance_point": 0.5,
+    "correlation_base": 6.0,
+    "correlation_slope_factor": 3.0,
+}
+
+
+def correlation_point_cost(q: float, with_slope: bool) -> float:
+    """Estimated units for one c value of the correlation map at variance q."""
+    k = COSTS["correlation_base"] * 2.0 ** (math.log10(max(q, 1.0)) / 2.0)
+    return k * (1.0 + (COSTS["correlation_slope_factor"] if with_slope else 0.0))
+
+
+def max_points(budget: float, fixed: float, per_point: float) -> int:
+    """How many points fit in the budget beside a fixed cost."""
+    return max(0, int((budget - fixed) // per_point))
+
+
+def check_budget(estimate: float, budget: float, what: str, pointer: str | None = None,
+                 advice: str = "") -> None:
+    """Raise :class:`WorkBudgetExceeded` if ``estimate`` > ``budget``.
+
+    Parameters
+    ----------
+    estimate : float
+        Estimated work units of the request.
+    budget : float
+        ``WORK_BUDGET``.
+    what : str
+        The request in words ("a correlation map of 900 points at q = 1").
+    pointer : str, optional
+        The member to shrink.
+    advice : str
+        How to fit ("send at most 480 c values").
+    """
+    if estimate <= budget:
+        return
+    detail = (f"{what} needs an estimated {format_number(round(estimate))} work units "
+              f"(about {estimate / 1000:.1f} s of CPU); the limit is "
+              f"{format_number(budget)} (WORK_BUDGET)")
+    if advice:
+        detail += f": {advice}"
+    entry = f"too much work for one request ({what}){': ' + advice if advice else ''}"
+    raise WorkBudgetExceeded(detail, "WORK_BUDGET", budget, estimate=estimate, pointer=pointer,
+                             entry=entry)
+
+
+class WallClockExceeded(BaseException):
+    """Raised inside a computation by the SIGALRM guard (a BaseException, so that no
+    ``except Exception`` in the engine can swallow it)."""
+
+
+_ALARM = {"armed": False, "installed": False}
+
+
+def _on_alarm(signum: int, frame: Any) -> None:
+    if _ALARM["armed"]:
+        _ALARM["armed"] = False
+        raise WallClockExceeded()
+
+
+@contextmanager
+def _alarm(seconds: float) -> Iterator[None]:
+    if not _ALARM["installed"]:
+        # installed once and kept: when disarmed it does nothing, so a late signal can
+        # never fall through to SIGALRM's default action (terminating the worker)
+        signal.signal(signal.SIGALRM, _on_alarm)
+        _ALARM["installed"] = True
+    _ALARM["armed"] = True
+    signal.setitimer(signal.ITIMER_REAL, seconds)
+    try:
+        yield
+    finally:
+        _ALARM["armed"] = False
+        signal.setitimer(signal.ITIMER_REAL, 0)
+
+
+def guard_available(seconds: float) -> bool:
+    """True if :func:`run_guarded` can arm a timer here (main thread, POSIX, seconds > 0)."""
+    return (seconds > 0 and hasattr(signal, "setitimer")
+            and threading.current_thread() is threading.main_thread())
+
+
+def run_guarded(seconds: float, fn: Callable[[], T]) -> T:
+    """Run ``fn()``, stopping it after ``seconds`` of wall-clock time.
+
+    The guard is armed only in the main thread of a process on a platform
+    with ``signal.setitimer`` (gunicorn's sync workers, ``propcalc serve``,
+    the Flask test client); elsewhere ``fn`` runs unguarded. The engine keeps
+    no state that an exception between two bytecodes could corrupt (its
+    caches are single dict and lru_cache assignments), so stopping it this
+    way is safe; nothing else (caches, locks) runs under the timer.
+
+    Raises
+    ------
+    WorkBudgetExceeded
+        When the time runs out (422, ``limit`` = WALL_CLOCK_LIMIT).
+    """
+    if not guard_available(seconds):
+        return fn()
+    try:
+        with _alarm(seconds):
+            return fn()
+    except WallClockExceeded:
+        raise WorkBudgetExceeded(
+            f"the computation was stopped after {format_number(seconds)} s of wall-clock time "
+            "(WALL_CLOCK_LIMIT); ask for fewer points or simpler parameters",
+            "WALL_CLOCK_LIMIT", seconds) from None

@@ -1,0 +1,168 @@
+"""Configuration of the service: defaults, the environment, and the limits.
+
+``create_app(config)`` fills ``app.config`` from :data:`DEFAULTS`, then from
+environment variables prefixed ``PROPCALC_`` (values parsed as JSON, e.g.
+``PROPCALC_WORK_BUDGET=5000``), then from the ``config`` mapping. The limits
+are then checked and frozen into a :class:`Limits` value that the schemas,
+the work budget and the OpenAPI document all read, so the document always
+states the limits the running service enforces.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass
+from typing import Any
+
+__all__ = ["DEFAULTS", "Limits", "limits_from_config", "VARIANCE_MAX", "MAP_Q_MAX",
+           "BIAS_MIN_POSITIVE", "SIGMA_W2_MIN", "Q_STAR_MAX", "Q_STAR_MIN", "PLAN_Q_INPUT_MIN",
+           "PARAM_ABS_MAX"]
+
+# Fixed parameter ranges (documented; not configurable). Beyond them the mean-field numbers
+# are either meaningless for a real network or outside the engine's tested range.
+#: sigma_w2, sigma_b2 and q_input are at most this.
+VARIANCE_MAX = 1e4
+#: sigma_w2 is at least this (below it the fixed point falls under the engine's search grid).
+SIGMA_W2_MIN = 1e-6
+#: a positive sigma_b2 must be at least this (0 itself is fine): subnormal biases are zero
+#: for every practical purpose and only exercise floating-point underflow.
+BIAS_MIN_POSITIVE = 1e-100
+#: q values of the sampled variance and correlation maps are at most this.
+MAP_Q_MAX = 1e8
+#: q* on the edge-of-chaos line is at most this ...
+Q_STAR_MAX = 1e6
+#: ... and at least this (below it the critical sigma_b2 underflows to subnormal numbers).
+Q_STAR_MIN = 1e-30
+#: the input mean square of a plan is at least this (the first layer's sigma_w2 is
+#: q* / q_input, which must stay finite).
+PLAN_Q_INPUT_MIN = 1e-12
+#: activation parameters (slope, alpha, beta, formula constants) are at most this in size.
+PARAM_ABS_MAX = 1e6
+
+DEFAULTS: dict[str, Any] = {
+    # Flask's own key: larger bodies get 413 before they are read.
+    "MAX_CONTENT_LENGTH": 64 * 1024,
+    # explicit arrays of q, c or q* values
+    "MAX_ARRAY_LENGTH": 2000,
+    # generated grids (q_grid, c_grid, q_star_grid: the `num` field)
+    "MAX_GRID_POINTS": 2000,
+    # layers of a plan (len(widths) - 1, len(layers), or depth)
+    "MAX_LAYERS": 1000,
+    # the depth of a propagation report (only enters chi_1 ** depth)
+    "MAX_DEPTH": 1_000_000,
+    # typed formulas
+    "MAX_FORMULA_LENGTH": 200,
+    "MAX_FORMULA_PARAMS": 8,
+    # estimated work per request, in work units (1 unit ~ 1 ms of one core; see _budget.py)
+    "WORK_BUDGET": 3000.0,
+    # wall-clock guard in seconds for one computation (0 disables; main thread only)
+    "WALL_CLOCK_LIMIT": 10.0,
+    # in-process LRU of response bodies
+    "RESULT_CACHE_ENTRIES": 512,
+    "RESULT_CACHE_BYTES": 32 * 1024 * 1024,
+    # parsed activations (formulas are parsed once)
+    "ACTIVATION_CACHE_ENTRIES": 128,
+    # load every response body back through its response schema (tests; costs time)
+    "VALIDATE_RESPONSES": False,
+    # Cache-Control max-age of GET responses, seconds
+    "GET_MAX_AGE": 300,
+}
+
+_INT_KEYS = ("MAX_CONTENT_LENGTH", "MAX_ARRAY_LENGTH", "MAX_GRID_POINTS", "MAX_LAYERS",
+             "MAX_DEPTH", "MAX_FORMULA_LENGTH", "MAX_FORMULA_PARAMS", "RESULT_CACHE_ENTRIES",
+             "RESULT_CACHE_BYTES", "ACTIVATION_CACHE_ENTRIES", "GET_MAX_AGE")
+_MINIMA = {"MAX_CONTENT_LENGTH": 1024, "MAX_ARRAY_LENGTH": 1, "MAX_GRID_POINTS": 2,
+           "MAX_LAYERS": 1, "MAX_DEPTH": 1, "MAX_FORMULA_LENGTH": 1, "MAX_FORMULA_PARAMS": 0,
+           "RESULT_CACHE_ENTRIES": 0, "RESULT_CACHE_BYTES": 0, "ACTIVATION_CACHE_ENTRIES": 0,
+           "GET_MAX_AGE": 0}
+
+
+@dataclass(frozen=True)
+class Limits:
+    """The limits one app enforces (a frozen copy of its configuration).
+
+    Attributes
+    ----------
+    max_body_bytes : int
+        Request bodies larger than this get 413.
+    max_array_length : int
+        Longest explicit array of q, c or q* values.
+    max_grid_points : int
+        Largest ``num`` of a generated grid.
+    max_layers : int
+        Most layers in a plan.
+    max_depth : int
+        Largest depth of a propagation report.
+    max_formula_length, max_formula_params : int
+        Longest formula text, most named formula parameters.
+    work_budget : float
+        Largest estimated cost of one request, in work units.
+    wall_clock_limit : float
+        Seconds one computation may run before it is stopped (0: no guard).
+    """
+
+    max_body_bytes: int
+    max_array_length: int
+    max_grid_points: int
+    max_layers: int
+    max_depth: int
+    max_formula_length: int
+    max_formula_params: int
+    work_budget: float
+    wall_clock_limit: float
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain view, with the fixed parameter ranges (served at /v1/limits)."""
+        out: dict[str, Any] = asdict(self)
+        out["ranges"] = {
+            "variance_max": VARIANCE_MAX,
+            "sigma_w2_min": SIGMA_W2_MIN,
+            "bias_min_positive": BIAS_MIN_POSITIVE,
+            "map_q_max": MAP_Q_MAX,
+            "q_star_min": Q_STAR_MIN,
+            "q_star_max": Q_STAR_MAX,
+            "plan_q_input_min": PLAN_Q_INPUT_MIN,
+            "param_abs_max": PARAM_ABS_MAX,
+        }
+        return out
+
+
+def _check_int(key: str, value: Any) -> int:
+    if isinstance(value, bool) or not isinstance(value, int):
+        raise ValueError(f"config {key} must be an integer, got {value!r}")
+    if value < _MINIMA[key]:
+        raise ValueError(f"config {key} must be >= {_MINIMA[key]}, got {value!r}")
+    return value
+
+
+def _check_seconds(key: str, value: Any, positive: bool) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+        raise ValueError(f"config {key} must be a finite number, got {value!r}")
+    if value < 0 or (positive and value == 0):
+        raise ValueError(f"config {key} must be {'> 0' if positive else '>= 0'}, got {value!r}")
+    return float(value)
+
+
+def limits_from_config(config: Mapping[str, Any]) -> Limits:
+    """Check the limit keys of ``config`` and return them as :class:`Limits`.
+
+    Raises
+    ------
+    ValueError
+        Naming the key, the constraint and the value, for a bad setting.
+    """
+    for key in _INT_KEYS:
+        _check_int(key, config[key])
+    return Limits(
+        max_body_bytes=config["MAX_CONTENT_LENGTH"],
+        max_array_length=config["MAX_ARRAY_LENGTH"],
+        max_grid_points=config["MAX_GRID_POINTS"],
+        max_layers=config["MAX_LAYERS"],
+        max_depth=config["MAX_DEPTH"],
+        max_formula_length=config["MAX_FORMULA_LENGTH"],
+        max_formula_params=config["MAX_FORMULA_PARAMS"],
+        work_budget=_check_seconds("WORK_BUDGET", config["WORK_BUDGET"], positive=True),
+        wall_clock_limit=_check_seconds("WALL_CLOCK_LIMIT", config["WALL_CLOCK_LIMIT"],
+                                        positive=False),
+    )

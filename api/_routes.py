@@ -1,0 +1,332 @@
+"""The endpoints: one table (:data:`ENDPOINTS`) drives the views and the OpenAPI document.
+
+Views are thin: read the body or the query, load it through the request
+schema, look the canonical request up in the result cache, else run the
+computation under the wall-clock guard, and send canonical JSON with an
+ETag. Errors are raised, never built here (see :mod:`propcalc_api._problems`).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import re
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+from flask import Blueprint, Response, current_app, g, request
+from marshmallow import Schema, ValidationError
+
+import propcalc
+from propcalc import builtin_names
+
+from ._budget import run_guarded
+from ._cache import LRUCache
+from ._config import Limits
+from ._json import canonical_dumps, strict_loads
+from ._problems import TYPE_INVALID_FIELDS, ErrorContext, Problem
+from ._schemas import Schemas
+from ._service import Computations
+
+__all__ = ["BLUEPRINT", "Endpoint", "ENDPOINTS", "ServiceState", "make_blueprint", "state"]
+
+#: name of the blueprint (Flask endpoint names are "propcalc_api.<name>")
+BLUEPRINT = "propcalc_api"
+
+
+@dataclass(frozen=True)
+class Endpoint:
+    """One operation of the API.
+
+    Attributes
+    ----------
+    name : str
+        Flask endpoint name, cache namespace and OpenAPI operationId.
+    rule : str
+        URL rule (Flask syntax).
+    method : str
+    summary, description : str
+    request : str or None
+        Name of the body schema in :class:`Schemas` (POST).
+    query : str or None
+        Name of the query schema (GET with parameters).
+    response : str
+        Name of the 200 response schema.
+    compute : str or None
+        Name of the :class:`Computations` method (None: special view).
+    statuses : tuple of int
+        Documented error statuses.
+    tag : str
+        OpenAPI tag.
+    body_of_query : str or None
+        For a GET form: the body schema its validated query is loaded through,
+        so that both forms make the same canonical request.
+    """
+
+    name: str
+    rule: str
+    method: str
+    summary: str
+    description: str
+    request: str | None
+    query: str | None
+    response: str
+    compute: str | None
+    statuses: tuple[int, ...]
+    tag: str = "propagation"
+    body_of_query: str | None = None
+
+
+_POST_ERRORS = (400, 413, 415, 422, 500)
+
+ENDPOINTS: tuple[Endpoint, ...] = (
+    Endpoint("health", "/health", "GET", "Liveness",
+             "Answers 200 while the service is up.", None, None, "Health", None, (500,), "service"),
+    Endpoint("limits", "/v1/limits", "GET", "The limits this service enforces",
+             "Body size, array lengths, grid sizes, formula limits, work budget, wall-clock "
+             "limit and the fixed parameter ranges.", None, None, "LimitsInfo", None, (304, 500),
+             "service"),
+    Endpoint("activation_list", "/v1/activations", "GET", "List the built-in activations",
+             "Every built-in with its description, breakpoints, properties (range, "
+             "monotonicity, parity, smoothness, dead-unit probability, saturating tails) and "
+             "gains (forward 1/sqrt(E[phi^2]), backward 1/sqrt(E[phi'^2]), z ~ N(0, 1)).",
+             None, None, "ActivationList", "activation_list", (304, 500), "activations"),
+    Endpoint("activation_one", "/v1/activations/<name>", "GET", "One built-in activation",
+             "The built-in with its default parameters; for parameters or a formula use "
+             "POST /v1/describe.", None, None, "Activation", None, (304, 404, 500), "activations"),
+    Endpoint("describe", "/v1/describe", "POST", "Describe an activation (name, parameters or "
+             "formula)", "Properties and gains of any activation, including typed formulas.",
+             "DescribeRequest", None, "Activation", "describe", _POST_ERRORS, "activations"),
+    Endpoint("propagation_get", "/v1/propagation", "GET", "Propagation report (query form)",
+             "The same report as POST /v1/propagation for a built-in activation, with ETag "
+             "and If-None-Match support.", None, "PropagationQuery", "Propagation",
+             "propagation", (304, 422, 500), body_of_query="PropagationRequest"),
+    Endpoint("propagation", "/v1/propagation", "POST", "Propagation report",
+             "Fixed point q*, chi_q, xi_q, chi_1, c*, chi_c, xi_c, phase and trainable depth "
+             "(about 6 xi_c, an empirical rule of Schoenholz et al. 2017) at (sigma_w2, "
+             "sigma_b2). A depth scale is \"inf\" exactly at the edge of chaos; q* is null "
+             "when the variance has no finite fixed point.", "PropagationRequest", None,
+             "Propagation", "propagation", _POST_ERRORS),
+    Endpoint("critical_point", "/v1/critical-point", "POST", "One critical point",
+             "sigma_w2 = 1 / E[phi'(sqrt(q*) z)^2], sigma_b2 = q* - sigma_w2 E[phi(sqrt(q*) z)^2] "
+             "(Poole et al. 2016; Schoenholz et al. 2017); valid is false where sigma_b2 < 0.",
+             "CriticalPointRequest", None, "CriticalPoint", "critical_point", _POST_ERRORS,
+             "edge of chaos"),
+    Endpoint("edge_of_chaos", "/v1/edge-of-chaos", "POST", "The edge-of-chaos line",
+             "Sampled at q* values (q_star or q_star_grid; by default 0.01 ... 100), or every "
+             "critical point with a given sigma_b2.", "EdgeOfChaosRequest", None, "EdgeOfChaos",
+             "edge_of_chaos", _POST_ERRORS, "edge of chaos"),
+    Endpoint("plan", "/v1/plan", "POST", "Per-layer initialisation plan",
+             "Weight and bias scales for every layer of a network given by depth, widths or "
+             "explicit dense/conv layers, for a normal, uniform, truncated normal (cut at +-2 "
+             "std) or orthogonal law.", "PlanRequest", None, "InitPlan", "plan", _POST_ERRORS,
+             "plans"),
+    Endpoint("variance_map", "/v1/maps/variance", "POST", "Sampled variance map",
+             "V(q) = sigma_w2 E[phi(sqrt(q) z)^2] + sigma_b2 (Poole et al. 2016), its slope and "
+             "chi_1 at the requested q, for plotting.", "VarianceMapRequest", None, "VarianceMap",
+             "variance_map", _POST_ERRORS, "maps"),
+    Endpoint("correlation_map", "/v1/maps/correlation", "POST", "Sampled correlation map",
+             "C(c) (Poole et al. 2016) and optionally C'(c) at the requested c, for inputs of "
+             "variance q (default: the fixed point q*).", "CorrelationMapRequest", None,
+             "CorrelationMap", "correlation_map", _POST_ERRORS, "maps"),
+)
+
+_NUMBER = re.compile(r"-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?(?:[eE][+-]?[0-9]+)?")
+
+
+@dataclass
+class ServiceState:
+    """Everything one app holds (``app.extensions["propcalc_api"]``)."""
+
+    limits: Limits
+    schemas: Schemas
+    computations: Computations
+    results: LRUCache[bytes]
+    validate_responses: bool
+    get_max_age: int
+    openapi: bytes = b""
+    schema_instances: dict[type[Schema], Schema] = field(default_factory=dict)
+
+
+def state() -> ServiceState:
+    """The current app's :class:`ServiceState`."""
+    return current_app.extensions["propcalc_api"]
+
+
+# ---------------------------------------------------------------------------------------------
+# reading requests
+# ---------------------------------------------------------------------------------------------
+def _read_json_object() -> dict[str, Any]:
+    mimetype = request.mimetype
+    if mimetype != "application/json":
+        got = request.headers.get("Content-Type")
+        raise Problem(415, "Content-Type must be application/json, got "
+                      + (repr(got) if got else "none"))
+    charset = request.mimetype_params.get("charset")
+    if charset is not None and charset.lower() not in ("utf-8", "utf8"):
+        raise Problem(415, f"JSON bodies are UTF-8, got charset={charset!r}")
+    limit = current_app.config["MAX_CONTENT_LENGTH"]
+    if request.content_length is not None and request.content_length > limit:
+        raise Problem(413, f"the request body is {request.content_length} bytes; the limit is "
+                      f"{limit} bytes (MAX_CONTENT_LENGTH)",
+                      extra={"limit": {"name": "MAX_CONTENT_LENGTH", "value": limit}})
+    data = request.get_data(cache=True)
+    if request.content_length is None and len(data) >= limit:
+        # a chunked body is cut at the limit by werkzeug, which cannot tell whether more
+        # followed: refuse it rather than parse a truncated body
+        raise Problem(413, f"the chunked request body reached the limit of {limit} bytes "
+                      "(MAX_CONTENT_LENGTH)",
+                      extra={"limit": {"name": "MAX_CONTENT_LENGTH", "value": limit}})
+    if not data.strip():
+        raise Problem(400, "the body is empty: send a JSON object")
+    body = strict_loads(data)
+    if not isinstance(body, dict):
+        kind = {list: "an array", str: "a string", bool: "a boolean", type(None): "null"}.get(
+            type(body), "a number")
+        raise Problem(400, f"the body must be a JSON object, got {kind}")
+    return body
+
+
+def _query_value(text: str) -> Any:
+    if _NUMBER.fullmatch(text):
+        return int(text) if re.fullmatch(r"-?[0-9]+", text) else float(text)
+    return text
+
+
+def _read_query() -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for key in request.args:
+        values = request.args.getlist(key)
+        if len(values) > 1:
+            raise Problem(422, "a query parameter is repeated", type=TYPE_INVALID_FIELDS,
+                          title="The request has invalid members",
+                          errors=[{"parameter": key, "detail": "is given more than once"}])
+        out[key] = _query_value(values[0])
+    return out
+
+
+def _schema(schema_cls: type[Schema]) -> Schema:
+    """One instance per schema class and app (loading does not change a schema)."""
+    cache = state().schema_instances
+    schema = cache.get(schema_cls)
+    if schema is None:
+        schema = cache[schema_cls] = schema_cls()
+    return schema
+
+
+def _load(schema_cls: type[Schema], raw: dict[str, Any], query: bool = False) -> dict[str, Any]:
+    schema = _schema(schema_cls)
+    g.error_context = ErrorContext(set(schema.load_fields), raw, query=query)
+    return schema.load(raw)
+
+
+# ---------------------------------------------------------------------------------------------
+# responding
+# ---------------------------------------------------------------------------------------------
+def _etag(body: bytes) -> str:
+    return hashlib.sha256(body).hexdigest()[:32]
+
+
+def _respond(key: tuple[str, str], compute: Callable[[], Any], response_schema: type[Schema],
+             conditional: bool) -> Response:
+    st = state()
+    body = st.results.get(key)
+    hit = body is not None
+    if body is None:
+        result = run_guarded(st.limits.wall_clock_limit, compute)
+        if st.validate_responses:
+            try:
+                _schema(response_schema).load(result)
+            except ValidationError as err:  # the body does not match its documented schema
+                raise RuntimeError(f"response of {key[0]} does not match "
+                                   f"{response_schema.__name__}: {err.messages}") from None
+        body = (canonical_dumps(result) + "\n").encode("ascii")
+        st.results.put(key, body)
+    return _send(body, conditional, "hit" if hit else "miss")
+
+
+def _send(body: bytes, conditional: bool, cache: str | None = None) -> Response:
+    resp = Response(body, status=200, mimetype="application/json")
+    resp.set_etag(_etag(body))
+    if cache is not None:
+        resp.headers["X-Propcalc-Cache"] = cache
+    if conditional:
+        resp.headers["Cache-Control"] = f"public, max-age={state().get_max_age}"
+        resp.make_conditional(request)
+    return resp
+
+
+# ---------------------------------------------------------------------------------------------
+# views
+# ---------------------------------------------------------------------------------------------
+def _generic_view(ep: Endpoint) -> Callable[..., Response]:
+    def view() -> Response:
+        st = state()
+        schemas = st.schemas
+        if ep.request is not None:
+            req = _load(getattr(schemas, ep.request), _read_json_object())
+        elif ep.query is not None:
+            req = _load(getattr(schemas, ep.query), _read_query(), query=True)
+            # the body form's canonical request: GET and POST share cache entries and bytes
+            req = _schema(getattr(schemas, str(ep.body_of_query))).load(req)
+        else:
+            _load(_EmptyQuery, _read_query(), query=True)
+            req = {}
+        fn = getattr(st.computations, str(ep.compute))
+        call: Callable[[], Any] = fn if ep.request is None and ep.query is None else (
+            lambda: fn(req))
+        key = (str(ep.compute), canonical_dumps(req))
+        return _respond(key, call, getattr(schemas, ep.response), conditional=ep.method == "GET")
+
+    view.__name__ = ep.name
+    return view
+
+
+class _EmptyQuery(Schema):
+    """No query parameters."""
+
+    class Meta:
+        unknown = "raise"
+
+    error_messages = {"unknown": "is not a query parameter of this operation"}
+
+
+def _activation_one(name: str) -> Response:
+    st = state()
+    _load(_EmptyQuery, _read_query(), query=True)
+    if name not in builtin_names():
+        raise Problem(404, f"no built-in activation named {name[:40]!r}; built-ins are: "
+                      f"{', '.join(builtin_names())}; for a formula use POST /v1/describe")
+    req = {"activation": {"name": name, "params": {}}}
+    return _respond(("describe", canonical_dumps(req)), lambda: st.computations.describe(req),
+                    st.schemas.Activation, conditional=True)
+
+
+def _health() -> Response:
+    body = canonical_dumps({"status": "ok", "service": "propcalc", "version":
+                            propcalc.__version__}) + "\n"
+    resp = Response(body, status=200, mimetype="application/json")
+    resp.headers["Cache-Control"] = "no-store"
+    return resp
+
+
+def _limits() -> Response:
+    _load(_EmptyQuery, _read_query(), query=True)
+    body = (canonical_dumps(state().limits.to_dict()) + "\n").encode("ascii")
+    return _send(body, conditional=True)
+
+
+def _openapi() -> Response:
+    return _send(state().openapi, conditional=True)
+
+
+def make_blueprint() -> Blueprint:
+    """The blueprint with every route of :data:`ENDPOINTS` and /openapi.json."""
+    bp = Blueprint(BLUEPRINT, __name__)
+    special: dict[str, Callable[..., Response]] = {
+        "health": _health, "limits": _limits, "activation_one": _activation_one}
+    for ep in ENDPOINTS:
+        view = special.get(ep.name) or _generic_view(ep)
+        bp.add_url_rule(ep.rule, endpoint=ep.name, view_func=view, methods=[ep.method])
+    bp.add_url_rule("/openapi.json", endpoint="openapi", view_func=_openapi, methods=["GET"])
+    return bp

@@ -1,0 +1,223 @@
+"""The computations behind the endpoints: validated requests in, JSON-ready dicts out.
+
+No Flask here. Every number comes from propcalc's public API; results are
+the engine's ``to_dict()`` passed through :func:`propcalc.jsonable`, so the
+service says the same thing in the same words as the Python API and
+``propcalc ... --json``. Each computation checks its estimated cost against
+the work budget (:mod:`propcalc_api._budget`) before the expensive part.
+Engine exceptions are not caught here: the one error handler turns them into
+problem details.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+
+import propcalc
+from propcalc import (
+    Activation,
+    Layer,
+    builtin_names,
+    chi_1,
+    correlation_map,
+    correlation_map_slope,
+    edge_of_chaos,
+    edge_of_chaos_at_bias,
+    edge_of_chaos_line,
+    gains,
+    jsonable,
+    propagation,
+    recommend,
+    variance_map,
+    variance_map_slope,
+)
+
+from ._budget import COSTS, FORMULA_FACTOR, check_budget, correlation_point_cost, max_points
+from ._cache import LRUCache
+from ._config import Limits
+from ._fields import format_number
+from ._json import canonical_dumps
+from ._problems import TYPE_INVALID_FIELDS, Problem
+from ._schemas import DEFAULT_EDGE_Q_STARS
+
+__all__ = ["Computations", "expand_grid"]
+
+
+def expand_grid(grid: dict[str, Any], low: float, high: float) -> list[float]:
+    """The values of a validated grid object, clipped to [low, high] against rounding."""
+    if grid["spacing"] == "log":
+        values = np.geomspace(grid["start"], grid["stop"], grid["num"])
+    else:
+        values = np.linspace(grid["start"], grid["stop"], grid["num"])
+    return [float(v) for v in np.clip(values, low, high)]
+
+
+def _is_formula(spec: dict[str, Any]) -> bool:
+    return "formula" in spec
+
+
+class Computations:
+    """The service's view of the engine, with an LRU of parsed activations.
+
+    Parameters
+    ----------
+    limits : Limits
+    activation_cache_entries : int
+    """
+
+    def __init__(self, limits: Limits, activation_cache_entries: int) -> None:
+        self.limits = limits
+        self._activations: LRUCache[Activation] = LRUCache(activation_cache_entries)
+
+    # -- activations -------------------------------------------------------------------------
+    def activation(self, spec: dict[str, Any]) -> Activation:
+        """The Activation for a validated spec ({"name"|"formula": ..., "params": {...}})."""
+        key = canonical_dumps(spec)
+        act = self._activations.get(key)
+        if act is None:
+            text = spec["formula"] if _is_formula(spec) else spec["name"]
+            act = propcalc.activation(text, **spec.get("params", {}))
+            self._activations.put(key, act)
+        return act
+
+    def _budget(self, spec: dict[str, Any] | None, estimate: float, what: str,
+                pointer: str | None = None, advice: str = "") -> None:
+        factor = FORMULA_FACTOR if spec is not None and _is_formula(spec) else 1.0
+        check_budget(estimate * factor, self.limits.work_budget, what, pointer, advice)
+
+    @staticmethod
+    def _describe(act: Activation) -> dict[str, Any]:
+        return {**act.to_dict(), "gains": gains(act).to_dict()}
+
+    def activation_list(self) -> dict[str, Any]:
+        """Every built-in with its properties and gains."""
+        names = builtin_names()
+        self._budget(None, COSTS["activation"] * len(names), "the activation list")
+        return jsonable({"activations": [self._describe(self.activation({"name": n, "params": {}}))
+                                         for n in names]})
+
+    def describe(self, req: dict[str, Any]) -> dict[str, Any]:
+        """One activation: description, breakpoints, properties, gains."""
+        spec = req["activation"]
+        self._budget(spec, COSTS["activation"], "describing an activation")
+        return jsonable(self._describe(self.activation(spec)))
+
+    # -- reports -----------------------------------------------------------------------------
+    def propagation(self, req: dict[str, Any]) -> dict[str, Any]:
+        """The propagation report."""
+        spec = req["activation"]
+        self._budget(spec, COSTS["propagation"], "a propagation report")
+        act = self.activation(spec)
+        return jsonable(propagation(act, req["sigma_w2"], req["sigma_b2"], depth=req.get("depth"),
+                                    q_input=req["q_input"]).to_dict())
+
+    def critical_point(self, req: dict[str, Any]) -> dict[str, Any]:
+        """The critical point through one q*."""
+        spec = req["activation"]
+        self._budget(spec, COSTS["critical_point"], "a critical point")
+        return jsonable(edge_of_chaos(self.activation(spec), req["q_star"]).to_dict())
+
+    def edge_of_chaos(self, req: dict[str, Any]) -> dict[str, Any]:
+        """The edge-of-chaos line over q*, or its points at a fixed sigma_b2."""
+        spec = req["activation"]
+        if req.get("sigma_b2") is not None:
+            self._budget(spec, COSTS["edge_at_bias"], "solving the edge of chaos at fixed sigma_b2")
+            act = self.activation(spec)
+            points = edge_of_chaos_at_bias(act, req["sigma_b2"])
+            mode, sb = "sigma_b2", req["sigma_b2"]
+        else:
+            if req.get("q_star") is not None:
+                qs, pointer = list(req["q_star"]), "/q_star"
+            elif req.get("q_star_grid") is not None:
+                qs = expand_grid(req["q_star_grid"], 0.0, math.inf)
+                pointer = "/q_star_grid/num"
+            else:
+                qs, pointer = list(DEFAULT_EDGE_Q_STARS), "/q_star"
+            per = COSTS["edge_point"] * (FORMULA_FACTOR if _is_formula(spec) else 1.0)
+            fits = max_points(self.limits.work_budget, COSTS["edge_base"], per)
+            self._budget(spec, COSTS["edge_base"] + COSTS["edge_point"] * len(qs),
+                         f"an edge-of-chaos line of {len(qs)} points", pointer,
+                         f"send at most {fits} q* values")
+            act = self.activation(spec)
+            points = edge_of_chaos_line(act, qs)
+            mode, sb = "q_star", None
+        return jsonable({"activation": act.label, "mode": mode, "sigma_b2": sb,
+                         "points": [p.to_dict() for p in points]})
+
+    def plan(self, req: dict[str, Any]) -> dict[str, Any]:
+        """A per-layer initialisation plan."""
+        spec = req["activation"]
+        layers = None
+        if req.get("layers") is not None:
+            layers = [Layer.dense(d["in_features"], d["out_features"]) if d["kind"] == "dense"
+                      else Layer.conv(d["in_channels"], d["out_channels"], tuple(d["kernel_size"]))
+                      for d in req["layers"]]
+        n = (len(layers) if layers is not None else
+             len(req["widths"]) - 1 if req.get("widths") is not None else req["depth"])
+        self._budget(spec, COSTS["plan"] + COSTS["plan_layer"] * n, f"a plan of {n} layers")
+        plan = recommend(self.activation(spec), req.get("depth"), widths=req.get("widths"),
+                         layers=layers, distribution=req["distribution"], target=req["target"],
+                         sigma_b2=req.get("sigma_b2"), q_star=req.get("q_star"),
+                         q_input=req["q_input"])
+        return jsonable(plan.to_dict())
+
+    # -- sampled maps --------------------------------------------------------------------------
+    def variance_map(self, req: dict[str, Any]) -> dict[str, Any]:
+        """V(q), V'(q) and chi_1(q) at the requested q."""
+        spec = req["activation"]
+        if req.get("q") is not None:
+            qs, pointer = list(req["q"]), "/q"
+        else:
+            qs, pointer = expand_grid(req["q_grid"], 0.0, math.inf), "/q_grid/num"
+        per = COSTS["variance_point"] * (FORMULA_FACTOR if _is_formula(spec) else 1.0)
+        self._budget(spec, COSTS["variance_point"] * len(qs),
+                     f"a variance map of {len(qs)} points", pointer,
+                     f"send at most {max_points(self.limits.work_budget, 0.0, per)} q values")
+        act = self.activation(spec)
+        sw, sb = req["sigma_w2"], req["sigma_b2"]
+        q = np.asarray(qs, dtype=float)
+        slope = variance_map_slope(act, q, sw)
+        return jsonable({"activation": act.label, "sigma_w2": sw, "sigma_b2": sb, "q": qs,
+                         "variance": variance_map(act, q, sw, sb), "slope": slope,
+                         "chi_1": chi_1(act, q, sw)})
+
+    def correlation_map(self, req: dict[str, Any]) -> dict[str, Any]:
+        """C(c), and C'(c) when asked, at the requested c."""
+        spec = req["activation"]
+        sw, sb = req["sigma_w2"], req["sigma_b2"]
+        if req.get("c") is not None:
+            cs, pointer = list(req["c"]), "/c"
+        else:
+            cs, pointer = expand_grid(req["c_grid"], -1.0, 1.0), "/c_grid/num"
+        with_slope = req["with_slope"]
+        fixed = 0.0
+        if req.get("q") is not None:
+            q, source = req["q"], "given"
+        else:
+            self._budget(spec, COSTS["propagation"], "finding q* for the correlation map")
+            fixed = COSTS["propagation"]
+            report = propagation(self.activation(spec), sw, sb, q_input=req["q_input"])
+            if report.q_star is None:
+                raise Problem(422, "q is needed: " + report.variance_fixed_points.message,
+                              type=TYPE_INVALID_FIELDS, title="The request has invalid members",
+                              errors=[{"pointer": "/q", "detail": (
+                                  "is required here: the variance has no finite fixed point at "
+                                  f"sigma_w2 = {format_number(sw)}, sigma_b2 = {format_number(sb)}"
+                                  f" (status {report.status}); give q")}])
+            q, source = report.q_star, "fixed_point"
+        per = correlation_point_cost(q, with_slope) * (FORMULA_FACTOR if _is_formula(spec) else 1.0)
+        fits = max_points(self.limits.work_budget, fixed, per)
+        self._budget(spec, fixed + correlation_point_cost(q, with_slope) * len(cs),
+                     f"a correlation map of {len(cs)} points at q = {q:.6g}"
+                     + (" with its slope" if with_slope else ""), pointer,
+                     f"send at most {fits} c values" + ("" if not with_slope or fits == 0 else
+                                                        ", or leave out the slope"))
+        act = self.activation(spec)
+        c = np.asarray(cs, dtype=float)
+        values = correlation_map(act, c, sw, sb, q=q)
+        slope = correlation_map_slope(act, c, sw, sb, q=q) if with_slope else None
+        return jsonable({"activation": act.label, "sigma_w2": sw, "sigma_b2": sb, "q": float(q),
+                         "q_source": source, "c": cs, "correlation": values, "slope": slope})
