@@ -1,6 +1,6 @@
 """Config generator: ask the propcalc service for an initialisation plan per model config.
 
-Invented scenario: Harrowgate Acoustics (a fictional team that builds
+Invented scenario: Ossimere Acoustics (a fictional team that builds
 audio-event classifiers) keeps one JSON config per model in ``demo/configs/``.
 Before a training run, this script sends each config's network and
 initialisation wishes to the propcalc service (``POST /v1/plan``) and writes

@@ -1,6 +1,6 @@
 """The built-in demo scenario (invented): ``propcalc demo``.
 
-Fenwick Ridge Instruments, a fictional maker of vibration loggers, trains a
+Tarnquill Instruments, a fictional maker of vibration loggers, trains a
 plain 64-layer MLP to tell six fault classes apart from 48 made-up spectral
 features per sensor window. The team has always initialised without bias
 noise (sigma_b2 = 0) and asks propcalc whether that works at 64 layers with
@@ -18,7 +18,7 @@ from . import InitPlan, activation, jsonable, propagation, recommend
 
 __all__ = ["SCENARIO", "WIDTHS", "run", "plans"]
 
-SCENARIO = ("Fenwick Ridge Instruments (fictional) trains a 64-layer MLP on 48 synthetic "
+SCENARIO = ("Tarnquill Instruments (fictional) trains a 64-layer MLP on 48 synthetic "
             "spectral features per vibration window, 6 fault classes, hidden width 512.")
 WIDTHS = [48] + [512] * 63 + [6]
 DEPTH = len(WIDTHS) - 1
