@@ -29,7 +29,14 @@ import numpy as np
 from scipy import optimize
 
 from .activations import Activation
-from .errors import ComputationError, InvalidParameterError, check_int, check_nonnegative, check_positive
+from .errors import (
+    ComputationError,
+    InvalidParameterError,
+    check_int,
+    check_nonnegative,
+    check_positive,
+)
+from .formula import activation
 from .maps import (
     chi_1 as chi_1_map,
     correlation_map_and_slope,
@@ -208,6 +215,7 @@ def variance_fixed_points(act: Activation, sigma_w2: float, sigma_b2: float, q_i
     for every built-in; E[phi(sqrt(q) z)^2] increases with q when |phi| grows
     away from 0).
     """
+    act = activation(act)
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
     qi = check_nonnegative("q_input", q_input)
@@ -235,7 +243,9 @@ def variance_fixed_points(act: Activation, sigma_w2: float, sigma_b2: float, q_i
     rate0 = variance_collapse_rate(act, sw) if zero_is_fixed else None
     if zero_is_fixed:
         points.append(FixedPoint(q=0.0, chi_q=float(rate0), stable=float(rate0) < 1.0))
-    for root in _bracketed_roots(gap, grid, g):
+    # V(q) - q within rounding of 0 (hard_tanh near q = 0 touches like q^3) has no sign
+    resolved = np.abs(g) > 1e-12 * (grid + sb)
+    for root in _bracketed_roots(gap, grid, g, resolved):
         points.append(_fixed_point(act, root, sw, rule))
     # drop a spurious root right next to q = 0 when q = 0 itself is the fixed point
     if zero_is_fixed:
@@ -490,6 +500,7 @@ def propagation(act: Activation, sigma_w2: float, sigma_b2: float, depth: int | 
     >>> p.phase
     'edge of chaos'
     """
+    act = activation(act)
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
     if depth is not None:
@@ -661,6 +672,7 @@ def edge_of_chaos(act: Activation, q_star: float = 1.0,
     -------
     CriticalPoint
     """
+    act = activation(act)
     q = check_positive("q_star", q_star)
     if act.has_jumps:
         return CriticalPoint(act.label, q, None, None, None, False, False,
@@ -714,6 +726,7 @@ def edge_of_chaos_at_bias(act: Activation, sigma_b2: float,
     tuple of CriticalPoint
         Empty when no critical point exists for this sigma_b2.
     """
+    act = activation(act)
     sb = check_nonnegative("sigma_b2", sigma_b2)
     if act.has_jumps:
         return ()

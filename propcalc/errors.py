@@ -11,7 +11,10 @@ Messages name the field, the constraint and the value received, e.g.
 from __future__ import annotations
 
 import math
+import numbers
 from typing import Any
+
+import numpy as np
 
 __all__ = [
     "PropcalcError",
@@ -44,6 +47,8 @@ class InvalidParameterError(PropcalcError, ValueError):
     """
 
     def __init__(self, field: str, constraint: str, value: Any, hint: str = "") -> None:
+        if getattr(value, "shape", None) == () and hasattr(value, "item"):
+            value = value.item()  # numpy scalar: show 0.5, not np.float64(0.5)
         self.field = field
         self.constraint = constraint
         self.value = value
@@ -106,10 +111,12 @@ def check_nonnegative(field: str, value: Any) -> float:
 
 def check_int(field: str, value: Any, minimum: int = 1, maximum: int | None = None) -> int:
     """Return ``value`` as an int, or raise unless it is an integer in range."""
-    if isinstance(value, bool) or not isinstance(value, (int, float)):
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Real):
         raise InvalidParameterError(field, f"an integer >= {minimum}", value)
-    if isinstance(value, float) and (not math.isfinite(value) or value != int(value)):
-        raise InvalidParameterError(field, f"an integer >= {minimum}", value)
+    if not isinstance(value, numbers.Integral):
+        f = float(value)
+        if not math.isfinite(f) or f != int(f):
+            raise InvalidParameterError(field, f"an integer >= {minimum}", value)
     out = int(value)
     if out < minimum:
         raise InvalidParameterError(field, f"an integer >= {minimum}", value)

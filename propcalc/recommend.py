@@ -10,6 +10,7 @@ a gain g means ``std = g / sqrt(fan_in)``, i.e. ``sigma_w2 = g^2``.
 from __future__ import annotations
 
 import math
+import numbers
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -26,7 +27,14 @@ from .criticality import (
     edge_of_chaos_line_arrays,
     propagation,
 )
-from .errors import ComputationError, InvalidParameterError, check_int, check_nonnegative, check_positive
+from .errors import (
+    ComputationError,
+    InvalidParameterError,
+    check_int,
+    check_nonnegative,
+    check_positive,
+)
+from .formula import activation
 from .maps import derivative_second_moment, second_moment, variance_map_slope
 from .quadrature import DEFAULT_RULE, QuadratureRule
 
@@ -36,6 +44,7 @@ __all__ = [
     "TARGETS",
     "TRUNCATION",
     "ATTRACTION_MARGIN",
+    "MAX_DEPTH",
     "Gains",
     "Layer",
     "LayerInit",
@@ -56,6 +65,8 @@ DISTRIBUTIONS = ("normal", "uniform", "truncated_normal", "orthogonal")
 TARGETS = ("auto", "edge", "variance", "bias")
 #: truncated normals are cut at +-2 standard deviations (of the untruncated law)
 TRUNCATION = 2.0
+#: the deepest network a plan is made for (one LayerInit per layer is kept)
+MAX_DEPTH = 100_000
 
 
 def truncated_normal_factor(bound: float = TRUNCATION) -> float:
@@ -147,6 +158,7 @@ def gains(act: Activation, rule: QuadratureRule = DEFAULT_RULE) -> Gains:
     with E[phi^2] = E[phi'^2] (ReLU: both sqrt(2); He et al. 2015).
     A jump in phi makes E[phi'^2] infinite: the backward gain is then 0.
     """
+    act = activation(act)
     m2 = float(second_moment(act, 1.0, rule))
     d2 = float(derivative_second_moment(act, 1.0, rule))
     forward = _finite_inverse_sqrt(m2, "E[phi^2]", act)
@@ -210,7 +222,16 @@ class Layer:
         """A convolution; ``kernel_size`` an int or one int per spatial dimension."""
         i = check_int("in_channels", in_channels, 1)
         o = check_int("out_channels", out_channels, 1)
-        ks = (kernel_size,) if isinstance(kernel_size, (int, np.integer)) else tuple(kernel_size)
+        if isinstance(kernel_size, (str, bytes)):
+            raise InvalidParameterError("kernel_size", "a positive int or a list of them", kernel_size)
+        if isinstance(kernel_size, numbers.Real):
+            ks = (kernel_size,)
+        else:
+            try:
+                ks = tuple(kernel_size)
+            except TypeError:
+                raise InvalidParameterError("kernel_size", "a positive int or a list of them",
+                                            kernel_size) from None
         if not ks:
             raise InvalidParameterError("kernel_size", "a positive int or a non-empty list", kernel_size)
         ks = tuple(check_int("kernel_size", k, 1) for k in ks)
@@ -482,6 +503,9 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
     if widths is not None and layers is not None:
         raise InvalidParameterError("widths", "absent when layers are given", list(widths))
     plan_layers: list[Layer | None]
+    act = activation(act)
+    if isinstance(widths, (str, bytes)):
+        raise InvalidParameterError("widths", "a list of integers", widths)
     if widths is not None:
         ws = [check_int(f"widths[{i}]", w, 1) for i, w in enumerate(widths)]
         if len(ws) < 2:
@@ -497,9 +521,11 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
     else:
         if depth is None:
             raise InvalidParameterError("depth", "given when neither widths nor layers are", None)
-        plan_layers = [None] * check_int("depth", depth, 1)
+        plan_layers = [None] * check_int("depth", depth, 1, MAX_DEPTH)
     n = len(plan_layers)
-    if depth is not None and check_int("depth", depth, 1) != n:
+    if n > MAX_DEPTH:
+        raise InvalidParameterError("layers", f"at most {MAX_DEPTH} layers", n)
+    if depth is not None and check_int("depth", depth, 1, MAX_DEPTH) != n:
         raise InvalidParameterError("depth", f"equal to the number of layers ({n})", depth)
     if q_star is not None:
         q_star = check_positive("q_star", q_star)
@@ -515,7 +541,7 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
         points = [p for p in edge_of_chaos_at_bias(act, sb_fixed, rule) if p.sigma_w2 is not None]
         if not points:
             raise ComputationError(f"no edge-of-chaos point of {act.label} has sigma_b2 = "
-                                   f"{sb_fixed:g}; try target 'edge' or another sigma_b2")
+                                   f"{sb_fixed:g}; try another sigma_b2, or target 'variance'")
         usable = [p for p in points if p.stable or p.q_star == 0.0
                   or abs((p.chi_q or 0) - 1) <= 1e-9]
         if not usable:
@@ -534,8 +560,7 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
             raise ComputationError(f"{act.label} has no attracting point on the edge of chaos "
                                    "for q* in [1e-3, 1e3]; try target 'variance'")
         description = "edge of chaos at an attracting variance fixed point"
-        if cp is None:
-            chosen = "variance"
+        chosen = "variance" if cp is None else "edge"
     if chosen == "variance":
         m2 = float(second_moment(act, 1.0, rule))
         if m2 <= 0:

@@ -118,7 +118,9 @@ def test_jumping_activation_is_refused():
 
 def test_regenerating_weights_gives_the_same_networks(monkeypatch):
     # large networks regenerate W_l in the backward pass from the same seed streams
-    import propcalc.simulate as sim_mod
+    import sys
+
+    sim_mod = sys.modules["propcalc.simulate"]  # the package exports the function under this name
     tanh = propcalc.activation("tanh")
     kw = dict(width=30, depth=4, repetitions=2, seed=5)
     stored = simulate(tanh, 1.4, 0.1, **kw).to_dict()
