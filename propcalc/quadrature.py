@@ -80,6 +80,13 @@ def hermite_rule(n_nodes: int) -> tuple[Array, Array]:
     <= 2 n_nodes - 1. Kept for comparison: it does not split at breakpoints
     and converges slowly for kinked or steep integrands.
     """
+    if isinstance(n_nodes, bool) or not 1 <= int(n_nodes) <= 300:
+        raise InvalidParameterError("n_nodes", "an integer in [1, 300] (numpy's weights "
+                                    "underflow beyond)", n_nodes)
+    return _hermite_rule(int(n_nodes))
+
+
+def _hermite_rule(n_nodes: int) -> tuple[Array, Array]:
     x, w = hermite_e.hermegauss(int(n_nodes))
     w = w / math.sqrt(2.0 * math.pi)
     x.setflags(write=False)
@@ -100,11 +107,15 @@ class QuadratureRule:
     z_max : float
         Truncation of the z range; the neglected Gaussian mass is
         ``2 Phi(-z_max)`` (1.5e-23 for 10).
+    grade_out : bool
+        Continue the geometric grading around the zero crossing outwards up to
+        half a uniform panel (steep activations at large q need it).
     """
 
     n_per_panel: int = 16
-    panel_width: float = 2.0
+    panel_width: float = 4.0
     z_max: float = 10.0
+    grade_out: bool = True
 
     @property
     def uniform_edges(self) -> Array:
@@ -178,7 +189,10 @@ def _rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float],
         center = np.where((sq == 0) & (mean == 0), 0.0, center)
     n_levels = _grading_levels(float(np.max(sq)) if sq.size else 0.0)
     pieces = [np.broadcast_to(rule.uniform_edges, sq.shape + rule.uniform_edges.shape)]
-    offsets = [0.0] + [s * 2.0**-k for k in range(1, n_levels + 1) for s in (-1.0, 1.0)]
+    # geometric grading (ratio 2) from 2^-n_levels up to half a uniform panel
+    top = max(0, int(math.floor(math.log2(rule.panel_width / 2.0)))) if rule.grade_out else -1
+    offsets = [0.0] + [s * 2.0**-k for k in range(-top, n_levels + 1) if k != 0 or top >= 0
+                       for s in (-1.0, 1.0)]
     pieces.append(center[..., None] + np.asarray(offsets))
     if len(breakpoints):
         b = np.asarray(breakpoints, dtype=float)
