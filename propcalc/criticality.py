@@ -462,14 +462,23 @@ def _edge_approach(act: Activation, sw: float, sb: float, q: float, rule: Quadra
     if a > 1e-8:
         return (f"1 - c_l ~ {9.0 / (a * a):.6g} / l^2 (polynomial; kinked activation, "
                 "Hayou et al. 2019)")
-    h = 1e-4
-    s1 = float(correlation_map_and_slope(act, 1.0 - h, sw, sb, q, rule)[1])
-    # C'(1) = sigma_w2 q E[phi'^2] / V(q): one 1-D integral
+    # C''(1) from difference quotients D(h) = (C'(1) - C'(1 - h)) / h, extrapolated:
+    # D(h) = C'' + O(h) for analytic phi; with breakpoints (a jump of phi'', as for ELU)
+    # D(h) = C'' + O(sqrt(h)). Richardson with h and h/4 removes the leading term.
+    # C'(1) = sigma_w2 q E[phi'^2] / V(q) is a 1-D integral.
     s0 = float(chi_1_map(act, q, sw, rule)) * q / float(variance_map(act, q, sw, sb, rule))
-    curvature = (s0 - s1) / h
-    if curvature <= 0 or not math.isfinite(curvature):
+    h = 1e-3
+    d = [(s0 - float(correlation_map_and_slope(act, 1.0 - t, sw, sb, q, rule)[1])) / t
+         for t in (h, h / 4)]
+    curvature = (2.0 * d[1] - d[0]) if act.breakpoints else (4.0 * d[1] - d[0]) / 3.0
+    if not math.isfinite(curvature):
         return "1 - c_l decays more slowly than any power law measured here"
-    return f"1 - c_l ~ {2.0 / curvature:.6g} / l (polynomial; smooth activation)"
+    if abs(curvature) <= 1e-9:
+        return "1 - c_l stays constant: the correlation map is linear near c = 1"
+    if curvature < 0:
+        return "1 - c_l decays more slowly than any power law measured here"
+    return (f"1 - c_l ~ {2.0 / curvature:.4g} / l (polynomial; smooth activation; the constant "
+            "is estimated to about 3 digits)")
 
 
 def propagation(act: Activation, sigma_w2: float, sigma_b2: float, depth: int | None = None,
@@ -757,7 +766,14 @@ def edge_of_chaos_at_bias(act: Activation, sigma_b2: float,
                                      "q* -> 0 (the variance decays polynomially towards 0)"))
     # values within rounding of zero (tanh's line touches sigma_b2 = 0 like q^3) give no sign
     resolved = ok & (np.abs(gap) > 1e-13 * (grid + sb))
-    for root in _bracketed_roots(gfun, grid, gap, resolved):
+    roots = _bracketed_roots(gfun, grid, gap, resolved)
+    # a root sitting on a grid point is unresolved there: bracket it by its neighbours
+    for i in range(1, len(grid) - 1):
+        if (ok[i] and not resolved[i] and resolved[i - 1] and resolved[i + 1]
+                and gap[i - 1] * gap[i + 1] < 0):
+            roots.append(float(optimize.brentq(gfun, grid[i - 1], grid[i + 1], xtol=1e-300,
+                                               rtol=4e-15, maxiter=200)))
+    for root in sorted(roots):
         cp = edge_of_chaos(act, root, rule)
         if cp.valid:
             out.append(cp)

@@ -303,7 +303,7 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
                                             check_tails=check_tails, what=what, with_z=with_z)
         return out
     x, w = rule_nodes(mean, q, breakpoints, rule)
-    with np.errstate(over="ignore", invalid="ignore"):
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
         if with_z:
             z = (x - mean_b[..., None]) / np.sqrt(q_b)[..., None]
             f = np.asarray(fn(x, z), dtype=float)
@@ -422,7 +422,7 @@ def _bivariate_group(fn: Callable[[Array, Array], Array], flat: Array, idx: Arra
         mean2 = sq2 * cc[:, None] * z1
         var2 = np.broadcast_to((q2 * s2)[:, None], mean2.shape)
         x2, w2 = rule_nodes(mean2, var2, bps2, rule)
-        with np.errstate(over="ignore", invalid="ignore"):
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             gs = fn(x1[:, :, None], x2)
         live = (w1[:, :, None] * w2) > 0  # weight-0 nodes may sit on breakpoints
         for k, g in enumerate(gs if isinstance(gs, tuple) else (gs,)):
