@@ -24,7 +24,7 @@ tree. From there:
   built-in when the formula spells out an unstable form of one
   (``log(1 + exp(x))`` for ``softplus(x)``...).
 
-The syntax and the limits are documented in ``docs/formula_syntax.md``.
+The syntax and the limits are documented in the README (section "Typing your own activation").
 """
 
 from __future__ import annotations
@@ -1549,7 +1549,7 @@ def formula_activation(text: str, **params: float) -> Activation:
     ----------
     text : str
         The formula, e.g. ``"x * sigmoid(beta * x)"`` (syntax in
-        ``docs/formula_syntax.md``).
+        the README (section "Typing your own activation")).
     **params : float
         Values of the named parameters the formula uses.
 
