@@ -107,6 +107,8 @@ class Activation:
         The named parameters the function was built with.
     formula, derivative_formula : str, optional
         Text of phi and phi' when known (shown to users of typed formulas).
+    declared_scale : float, optional
+        The x-scale of phi's structure (see :attr:`scale`); estimated when absent.
 
     Notes
     -----
@@ -122,6 +124,7 @@ class Activation:
     formula: str | None = None
     derivative_formula: str | None = None
     description: str = ""
+    declared_scale: float | None = None
 
     def __post_init__(self) -> None:
         bps = tuple(sorted({float(b) for b in self.breakpoints}))
@@ -188,6 +191,30 @@ class Activation:
             tol = 1e-6 * (1.0 + abs(left) + abs(right))
             out.append(right - left if abs(right - left) > tol else 0.0)
         return tuple(out)
+
+    @cached_property
+    def scale(self) -> float:
+        """The x-scale on which phi' changes: max|phi'| / max|phi''|, capped to [1e-3, 1].
+
+        1 for the built-ins (their structure sits at |x| ~ 1). For a typed
+        formula it is estimated from phi' on a grid of step 1e-3 over [-20, 20]
+        (away from breakpoints), so that steep formulas such as tanh(10 x) get a
+        quadrature graded finely enough.
+        """
+        if self.declared_scale is not None:
+            return float(self.declared_scale)
+        x = np.linspace(-20.0, 20.0, 40001)
+        with np.errstate(all="ignore"):
+            d = self.derivative(x)
+        dd = np.abs(np.diff(d)) / (x[1] - x[0])
+        across = np.zeros(dd.shape, dtype=bool)
+        for b in self.breakpoints:
+            across |= (x[:-1] <= b + 1e-9) & (x[1:] >= b - 1e-9)
+        dd = np.where(across | ~np.isfinite(dd), 0.0, dd)
+        top, curv = float(np.max(np.abs(d[np.isfinite(d)]), initial=0.0)), float(np.max(dd))
+        if curv <= 0.0 or top <= 0.0:
+            return 1.0
+        return float(min(1.0, max(1e-3, top / curv)))
 
     @property
     def has_jumps(self) -> bool:
@@ -309,9 +336,10 @@ BUILTIN_DESCRIPTIONS: dict[str, str] = {
 
 
 def _make(name: str, value: ArrayFn, deriv: ArrayFn, breakpoints: tuple[float, ...] = (),
-          params: Mapping[str, float] | None = None) -> Activation:
+          params: Mapping[str, float] | None = None, scale: float | None = 1.0) -> Activation:
     return Activation(name=name, value_fn=value, derivative_fn=deriv, breakpoints=breakpoints,
-                      params=params or {}, description=BUILTIN_DESCRIPTIONS[name])
+                      params=params or {}, description=BUILTIN_DESCRIPTIONS[name],
+                      declared_scale=scale)
 
 
 def _linear() -> Activation:
@@ -375,7 +403,8 @@ def _silu() -> Activation:
 def _swish_builtin(beta: float = 1.0) -> Activation:
     b = check_finite("beta", beta)
     v, d = _swish(b)
-    return _make("swish", v, d, (), {"beta": b})
+    # swish(beta) changes over |x| ~ 1 / |beta|: let Activation.scale estimate it
+    return _make("swish", v, d, (), {"beta": b}, scale=None)
 
 
 def _mish() -> Activation:

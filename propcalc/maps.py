@@ -29,6 +29,7 @@ the error of the 2-D rule is scaled by the small difference near ``c = +-1``.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from typing import Any
 
@@ -57,6 +58,12 @@ __all__ = [
 Array = np.ndarray
 
 
+def _scaled(act: Activation, rule: QuadratureRule) -> QuadratureRule:
+    """The rule with the activation's feature scale (steep formulas need finer grading)."""
+    scale = getattr(act, "scale", 1.0)
+    return rule if rule.scale == scale else dataclasses.replace(rule, scale=scale)
+
+
 def _q_array(q: Any, field: str = "q") -> Array:
     arr = np.asarray(q, dtype=float)
     if not np.all(np.isfinite(arr)) or np.any(arr < 0):
@@ -75,18 +82,21 @@ def _c_array(c: Any) -> Array:
 
 def first_moment(act: Activation, q: Any, rule: QuadratureRule = DEFAULT_RULE) -> Array:
     """E[phi(sqrt(q) z)], vectorised over q."""
+    rule = _scaled(act, rule)
     return gaussian_expectation(act.value, _q_array(q), act.breakpoints, rule=rule,
                                 what=f"{act.label}(x)")
 
 
 def second_moment(act: Activation, q: Any, rule: QuadratureRule = DEFAULT_RULE) -> Array:
     """E[phi(sqrt(q) z)^2], vectorised over q."""
+    rule = _scaled(act, rule)
     return gaussian_expectation(lambda x: act.value(x) ** 2, _q_array(q), act.breakpoints,
                                 rule=rule, what=f"{act.label}(x)^2")
 
 
 def derivative_second_moment(act: Activation, q: Any, rule: QuadratureRule = DEFAULT_RULE) -> Array:
     """E[phi'(sqrt(q) z)^2] (infinite where phi jumps), vectorised over q."""
+    rule = _scaled(act, rule)
     qa = _q_array(q)
     out = gaussian_expectation(lambda x: act.derivative(x) ** 2, qa, act.breakpoints,
                                rule=rule, what=f"derivative of {act.label}, squared,")
@@ -114,6 +124,7 @@ def variance_map(act: Activation, q: Any, sigma_w2: float, sigma_b2: float,
     ndarray
         V(q), the shape of q.
     """
+    rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
     return sw * second_moment(act, q, rule) + sb
@@ -126,6 +137,7 @@ def variance_map_slope(act: Activation, q: Any, sigma_w2: float,
     At q = 0 the limit ``sigma_w2 (phi'(0-)^2 + phi'(0+)^2) / 2`` is returned
     when phi(0) = 0 (the rate of collapse towards zero variance).
     """
+    rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     qa = _q_array(q)
     safe = np.where(qa > 0, qa, 1.0)
@@ -158,6 +170,7 @@ def variance_growth_rate(act: Activation, sigma_w2: float, q_large: float = 1e12
 
     Estimated at ``q_large`` (for ReLU it is exactly sigma_w2 / 2).
     """
+    rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     return float(sw * second_moment(act, q_large, rule) / q_large)
 
@@ -168,6 +181,7 @@ def chi_1(act: Activation, q: Any, sigma_w2: float, rule: QuadratureRule = DEFAU
     The mean squared singular value of one layer's input-output Jacobian at
     variance q: gradients grow like chi_1^L. Infinite if phi jumps.
     """
+    rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     return sw * derivative_second_moment(act, q, rule)
 
@@ -217,6 +231,7 @@ def _pair(fs: tuple[Any, ...], c: Array, q: float, bps: tuple[float, ...],
 def pair_expectation(act: Activation, c: Any, q: float,
                      rule: QuadratureRule = DEFAULT_RULE) -> Array:
     """E[phi(u1) phi(u2)] for pre-activations of variance q and correlation c."""
+    rule = _scaled(act, rule)
     ca = _c_array(c)
     qf = float(_q_array(q))
     if qf == 0.0:
@@ -234,6 +249,7 @@ def derivative_pair_expectation(act: Activation, c: Any, q: float,
     p the Gaussian densities (Price's theorem applied to the distributional
     derivative). Infinite at c = +-1 when phi jumps.
     """
+    rule = _scaled(act, rule)
     ca = _c_array(c)
     qf = float(_q_array(q))
     if qf == 0.0:
@@ -286,6 +302,7 @@ def correlation_map(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
     ndarray
         C(c), the shape of c.
     """
+    rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
     qf = float(_q_array(q))
@@ -301,6 +318,7 @@ def correlation_map_and_slope(act: Activation, c: Any, sigma_w2: float, sigma_b2
 
     See :func:`correlation_map` and :func:`correlation_map_slope`.
     """
+    rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
     ca = _c_array(c)
@@ -321,6 +339,7 @@ def correlation_map_slope(act: Activation, c: Any, sigma_w2: float, sigma_b2: fl
 
     At c = 1 and q = q* this equals chi_1; infinite there for a jumping phi.
     """
+    rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
     qf = float(_q_array(q))

@@ -110,12 +110,17 @@ class QuadratureRule:
     grade_out : bool
         Continue the geometric grading around the zero crossing outwards up to
         half a uniform panel (steep activations at large q need it).
+    scale : float
+        The x-scale of the integrand's structure (1 for every built-in; smaller
+        for steep formulas such as tanh(10 x)). The grading resolves features
+        of this width at any q.
     """
 
     n_per_panel: int = 16
     panel_width: float = 4.0
     z_max: float = 10.0
     grade_out: bool = True
+    scale: float = 1.0
 
     @property
     def uniform_edges(self) -> Array:
@@ -126,20 +131,43 @@ class QuadratureRule:
 DEFAULT_RULE = QuadratureRule()
 
 
-def _grading_levels(sqrt_q_max: float) -> int:
-    if not math.isfinite(sqrt_q_max) or sqrt_q_max <= 0.5:
+def _grading_levels(sqrt_q_max: float, scale: float = 1.0) -> int:
+    ratio = sqrt_q_max / scale
+    if not math.isfinite(ratio) or ratio <= 0.5:
         return 0
-    return int(math.ceil(math.log2(2.0 * sqrt_q_max)))
+    return int(math.ceil(math.log2(2.0 * ratio)))
 
 
-def _levels_array(sqrt_q: Array) -> Array:
+def _levels_array(sqrt_q: Array, scale: float = 1.0) -> Array:
+    r = sqrt_q / scale
     with np.errstate(divide="ignore"):
-        lv = np.ceil(np.log2(np.where(sqrt_q > 0.5, 2.0 * sqrt_q, 1.0)))
+        lv = np.ceil(np.log2(np.where(r > 0.5, 2.0 * r, 1.0)))
     return np.where(np.isfinite(lv), lv, 0).astype(int)
 
 
+@lru_cache(maxsize=16)
+def _plain_nodes(rule: QuadratureRule) -> tuple[Array, Array]:
+    """Standard-normal nodes on uniform panels of width <= 2 over [-z_max, z_max] (cached).
+
+    Enough for a smooth integrand f(m + s z) with s <= 1: its features have a
+    width >= 1 in z (tanh-like poles at distance >= pi/2), and a 16-node panel
+    of width 2 resolves them and the Gaussian weight to rounding.
+    """
+    width = min(2.0, rule.panel_width)
+    n = int(math.ceil(2 * rule.z_max / width))
+    edges = np.linspace(-rule.z_max, rule.z_max, n + 1)
+    t, wt = legendre_rule(rule.n_per_panel)
+    half = 0.5 * np.diff(edges)
+    z = (0.5 * (edges[:-1] + edges[1:]))[:, None] + half[:, None] * t
+    w = half[:, None] * wt * _INV_SQRT_2PI * np.exp(-0.5 * z * z)
+    z, w = z.ravel(), w.ravel()
+    z.setflags(write=False)
+    w.setflags(write=False)
+    return z, w
+
+
 def _node_count(sqrt_q: float, n_extra: int, rule: QuadratureRule) -> int:
-    n_edges = rule.uniform_edges.size + 1 + 2 * _grading_levels(sqrt_q) + n_extra
+    n_edges = rule.uniform_edges.size + 5 + 2 * _grading_levels(sqrt_q, rule.scale) + n_extra
     return (n_edges - 1) * rule.n_per_panel
 
 
@@ -187,7 +215,7 @@ def _rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float],
         inv = np.where(sq > 0, 1.0 / np.where(sq > 0, sq, 1.0), np.inf)
         center = np.where(sq > 0, -mean * inv, np.where(mean > 0, -np.inf, np.inf))
         center = np.where((sq == 0) & (mean == 0), 0.0, center)
-    n_levels = _grading_levels(float(np.max(sq)) if sq.size else 0.0)
+    n_levels = _grading_levels(float(np.max(sq)) if sq.size else 0.0, rule.scale)
     pieces = [np.broadcast_to(rule.uniform_edges, sq.shape + rule.uniform_edges.shape)]
     # geometric grading (ratio 2) from 2^-n_levels up to half a uniform panel
     top = max(0, int(math.floor(math.log2(rule.panel_width / 2.0)))) if rule.grade_out else -1
@@ -292,7 +320,7 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
     mean_b, q_b = np.broadcast_arrays(np.asarray(mean, float), np.asarray(q, float))
     _validate(q_b, "q", lower=0.0)
     _validate(mean_b, "mean")
-    levels = _levels_array(np.sqrt(q_b))
+    levels = _levels_array(np.sqrt(q_b), rule.scale)
     if levels.size > 8 and levels.min() + 4 <= levels.max():
         # rows far apart in scale need different gradings: do them in groups (cheaper)
         out = np.empty(q_b.shape)
@@ -421,14 +449,26 @@ def _bivariate_group(fn: Callable[[Array, Array], Array], flat: Array, idx: Arra
         s2 = np.maximum(0.0, 1.0 - cc * cc)
         mean2 = sq2 * cc[:, None] * z1
         var2 = np.broadcast_to((q2 * s2)[:, None], mean2.shape)
-        x2, w2 = rule_nodes(mean2, var2, bps2, rule)
+        fixed = not bps2 and float(np.max(q2 * s2)) <= rule.scale ** 2
+        if fixed:
+            # smooth integrand whose inner spread is at most 1: one fixed set of z2 nodes
+            # (uniform panels of width 2, no grading needed) serves every outer node
+            z2, w2 = _plain_nodes(rule)
+            x2 = mean2[:, :, None] + np.sqrt(q2 * s2)[:, None, None] * z2
+        else:
+            x2, w2 = rule_nodes(mean2, var2, bps2, rule)
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             gs = fn(x1[:, :, None], x2)
-        live = (w1[:, :, None] * w2) > 0  # weight-0 nodes may sit on breakpoints
+        live = None if fixed else (w1[:, :, None] * w2) > 0  # weight-0 nodes may sit on kinks
         for k, g in enumerate(gs if isinstance(gs, tuple) else (gs,)):
-            g = np.where(live, np.broadcast_to(np.asarray(g, dtype=float), x2.shape), 0.0)
+            g = np.broadcast_to(np.asarray(g, dtype=float), x2.shape)
+            if live is not None:
+                g = np.where(live, g, 0.0)
             if not np.all(np.isfinite(g)):
                 bad = tuple(np.argwhere(~np.isfinite(g))[0])
                 raise ComputationError(
                     f"{what} is not finite at (u1, u2) = ({x1[bad[:2]]:.6g}, {x2[bad]:.6g})")
-            out[k, sel] = np.einsum("ij,ijk,ijk->i", w1, w2, g)
+            if fixed:
+                out[k, sel] = np.einsum("ij,ijk,k->i", w1, g, w2)
+            else:
+                out[k, sel] = np.einsum("ij,ijk,ijk->i", w1, w2, g)
