@@ -69,6 +69,8 @@ from .spectrum import (
     jacobian_spectrum,
     sample_jacobian_spectrum,
 )
+from .draw import LayerArrays, PlanArrays, draw_plan
+from .sweep import EdgeSweepResult, SweepResult, propagation_arrays, sweep, sweep_edge
 from .errors import (
     ComputationError,
     FormulaError,
@@ -91,6 +93,14 @@ from .recommend import Gains, InitPlan, Layer, LayerInit, gains, recommend
 __version__ = "0.1.0"
 
 __all__ = [
+    "LayerArrays",
+    "PlanArrays",
+    "draw_plan",
+    "EdgeSweepResult",
+    "SweepResult",
+    "propagation_arrays",
+    "sweep",
+    "sweep_edge",
     "DropoutPropagation",
     "DropoutSweep",
     "dropout_propagation",

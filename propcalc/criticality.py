@@ -51,6 +51,9 @@ from .quadrature import DEFAULT_RULE, QuadratureRule
 
 __all__ = [
     "EDGE_TOLERANCE",
+    "Q_MIN",
+    "Q_MAX",
+    "correlation_fixed_point",
     "TRAINABLE_DEPTH_FACTOR",
     "FixedPoint",
     "VarianceFixedPoints",
@@ -71,8 +74,9 @@ EDGE_TOLERANCE = 1e-9
 TRAINABLE_DEPTH_FACTOR = 6.0
 _TRAINABLE_RULE = "about 6 xi_c layers (empirical rule of Schoenholz et al. 2017)"
 
-_Q_MIN = 1e-10
-_Q_MAX = 1e8
+#: the variance range scanned for fixed points (widened to cover sigma_b2 and the input)
+Q_MIN = 1e-10
+Q_MAX = 1e8
 
 
 def _bracketed_roots(fun: Any, grid: np.ndarray, values: np.ndarray,
@@ -102,7 +106,19 @@ def _bracketed_roots(fun: Any, grid: np.ndarray, values: np.ndarray,
             roots.append(float(optimize.brentq(fun, a, b, xtol=1e-300, rtol=4e-15, maxiter=200)))
         else:
             roots.append(a if abs(fa) < abs(fb) else b)
-    return roots
+    if usable is not None:
+        # a root sitting on a grid point is unresolved there: bracket it by its neighbours
+        for i in range(1, len(grid) - 1):
+            if (not usable[i] and usable[i - 1] and usable[i + 1]
+                    and values[i - 1] * values[i + 1] < 0):
+                a, b = float(grid[i - 1]), float(grid[i + 1])
+                fa, fb = fun(a), fun(b)
+                if fa * fb < 0:
+                    roots.append(float(optimize.brentq(fun, a, b, xtol=1e-300, rtol=4e-15,
+                                                       maxiter=200)))
+                else:
+                    roots.append(float(grid[i]))
+    return sorted(roots)
 
 
 def depth_scale(slope: float) -> float:
@@ -184,6 +200,8 @@ class VarianceFixedPoints:
 
 def _fixed_point(act: Activation, q: float, sw: float, rule: QuadratureRule) -> FixedPoint:
     slope = float(variance_map_slope(act, q, sw, rule))
+    if abs(slope) <= 1e-13:  # Stein's form leaves rounding noise where V is flat (step)
+        slope = 0.0
     return FixedPoint(q=float(q), chi_q=slope, stable=abs(slope) < 1.0)
 
 
@@ -220,10 +238,10 @@ def variance_fixed_points(act: Activation, sigma_w2: float, sigma_b2: float, q_i
     sb = check_nonnegative("sigma_b2", sigma_b2)
     qi = check_nonnegative("q_input", q_input)
     q_start = sw * qi + sb
-    q_hi = max(_Q_MAX, 10.0 * (sb + q_start))
+    q_hi = max(Q_MAX, 10.0 * (sb + q_start))
     # V(q) >= about V(0) near 0, so a grid starting below V(0)/10 sees V(q) - q > 0 there
     v0 = float(variance_map(act, 0.0, sw, sb, rule))
-    q_lo = max(min(_Q_MIN, v0 / 10.0) if v0 > 0 else _Q_MIN, 1e-300)
+    q_lo = max(min(Q_MIN, v0 / 10.0) if v0 > 0 else Q_MIN, 1e-300)
     grid = np.geomspace(q_lo, q_hi, 121)
     g = variance_map(act, grid, sw, sb, rule) - grid
 
@@ -382,7 +400,7 @@ class Propagation:
         }
 
 
-def _correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
+def correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
                              rule: QuadratureRule) -> tuple[float, float]:
     """(c*, C'(c*)) in the chaotic phase: the root of g(c) = C(c) - c in [0, 1).
 
@@ -564,7 +582,7 @@ def propagation(act: Activation, sigma_w2: float, sigma_b2: float, depth: int | 
     elif fps.status == "collapse":
         c_star, chi_c = 1.0, c1
     else:
-        c_star, chi_c = _correlation_fixed_point(act, sw, sb, q, rule)
+        c_star, chi_c = correlation_fixed_point(act, sw, sb, q, rule)
 
     xi_c = math.inf if phase == "edge of chaos" else depth_scale(chi_c)
     if fps.status == "collapse" and phase != "edge of chaos":
@@ -766,14 +784,7 @@ def edge_of_chaos_at_bias(act: Activation, sigma_b2: float,
                                      "q* -> 0 (the variance decays polynomially towards 0)"))
     # values within rounding of zero (tanh's line touches sigma_b2 = 0 like q^3) give no sign
     resolved = ok & (np.abs(gap) > 1e-13 * (grid + sb))
-    roots = _bracketed_roots(gfun, grid, gap, resolved)
-    # a root sitting on a grid point is unresolved there: bracket it by its neighbours
-    for i in range(1, len(grid) - 1):
-        if (ok[i] and not resolved[i] and resolved[i - 1] and resolved[i + 1]
-                and gap[i - 1] * gap[i + 1] < 0):
-            roots.append(float(optimize.brentq(gfun, grid[i - 1], grid[i + 1], xtol=1e-300,
-                                               rtol=4e-15, maxiter=200)))
-    for root in sorted(roots):
+    for root in _bracketed_roots(gfun, grid, gap, resolved):
         cp = edge_of_chaos(act, root, rule)
         if cp.valid:
             out.append(cp)

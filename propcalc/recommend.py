@@ -346,6 +346,13 @@ class InitPlan:
     depth_ok: bool
     notes: tuple[str, ...] = ()
 
+    def draw(self, seed: Any = None, *, bias_distribution: str = "normal",
+             layers: Any = None) -> Any:
+        """Draw weight and bias arrays for this plan (see :func:`propcalc.draw.draw_plan`)."""
+        from .draw import draw_plan  # local import keeps the imports one-way
+
+        return draw_plan(self, seed, bias_distribution=bias_distribution, layers=layers)
+
     def to_dict(self) -> dict[str, Any]:
         return {
             "activation": self.activation,
