@@ -23,6 +23,23 @@ variance map                0.5 per q value
 correlation map             k(q) per c value, 3 k(q) more with the slope,
                             k(q) = 6 * 2 ** (log10(max(q, 1)) / 2); plus 200
                             when q* must be found first
+dropout report              300 per keep rate (a sweep: per keep rate)
+maxout report               10
+mean-variance fixed points  30 with omega = 0; 1500 otherwise (a root finder
+                            from six starts: up to about 2 s for the piecewise
+                            linear built-ins, under 0.4 s for smooth ones)
+alpha dropout               1
+Jacobian spectrum           10
+isometry advice             150
+softmax loss                20 + 12 sqrt(logit_variance), plus the largest
+                            probability: 10 for K = 2 (quadrature), else
+                            5 + 3e-5 n_samples K (Monte Carlo)
+softmax output scale        250 + 100 margin, plus the Monte Carlo term above
+simulation                  50 + 1.5 depth (mean-field trajectory)
+                            + 0.1 depth repetitions
+                            + 3e-5 width^2 depth repetitions (1 + n_pairs / 100);
+                            refused first if width^2 depth repetitions exceeds
+                            MAX_SIMULATION_SIZE
 ==========================  =====================================================
 
 Activations given as formulas cost twice as much (``FORMULA_FACTOR``).
@@ -49,6 +66,9 @@ __all__ = [
     "FORMULA_FACTOR",
     "COSTS",
     "correlation_point_cost",
+    "initial_loss_cost",
+    "max_probability_cost",
+    "simulation_cost",
     "check_budget",
     "max_points",
     "WallClockExceeded",
@@ -71,6 +91,25 @@ COSTS = {
     "variance_point": 0.5,
     "correlation_base": 6.0,
     "correlation_slope_factor": 3.0,
+    "dropout_rate": 300.0,
+    "maxout": 10.0,
+    "selfnorm_omega_zero": 30.0,
+    "selfnorm_root_finder": 1500.0,
+    "alpha_dropout": 1.0,
+    "jacobian_spectrum": 10.0,
+    "isometry": 150.0,
+    "softmax_loss_base": 20.0,
+    "softmax_loss_sqrt": 12.0,
+    "softmax_pmax_quadrature": 10.0,
+    "softmax_pmax_base": 5.0,
+    "softmax_pmax_element": 3e-5,
+    "output_scale_base": 250.0,
+    "output_scale_margin": 100.0,
+    "simulation_base": 50.0,
+    "simulation_layer": 1.5,
+    "simulation_layer_repetition": 0.1,
+    "simulation_element": 3e-5,
+    "simulation_pairs_scale": 100.0,
 }
 
 
@@ -78,6 +117,29 @@ def correlation_point_cost(q: float, with_slope: bool) -> float:
     """Estimated units for one c value of the correlation map at variance q."""
     k = COSTS["correlation_base"] * 2.0 ** (math.log10(max(q, 1.0)) / 2.0)
     return k * (1.0 + (COSTS["correlation_slope_factor"] if with_slope else 0.0))
+
+
+def initial_loss_cost(logit_variance: float) -> float:
+    """Estimated units of the expected initial loss (its panels grow like sqrt(s2))."""
+    return COSTS["softmax_loss_base"] + COSTS["softmax_loss_sqrt"] * math.sqrt(logit_variance)
+
+
+def max_probability_cost(n_classes: int, logit_variance: float, n_samples: int) -> float:
+    """Estimated units of E[max p]: quadrature for K = 2, else n_samples * K draws."""
+    if logit_variance == 0.0:
+        return 0.0
+    if n_classes == 2:
+        return COSTS["softmax_pmax_quadrature"]
+    return COSTS["softmax_pmax_base"] + COSTS["softmax_pmax_element"] * n_samples * n_classes
+
+
+def simulation_cost(width: int, depth: int, repetitions: int, n_pairs: int) -> float:
+    """Estimated units of a finite-width simulation (see the table above)."""
+    size = float(width) * width * depth * repetitions
+    pairs = 1.0 + n_pairs / COSTS["simulation_pairs_scale"]
+    return (COSTS["simulation_base"] + COSTS["simulation_layer"] * depth
+            + COSTS["simulation_layer_repetition"] * depth * repetitions
+            + COSTS["simulation_element"] * size * pairs)
 
 
 def max_points(budget: float, fixed: float, per_point: float) -> int:

@@ -17,7 +17,11 @@ from typing import Any
 
 __all__ = ["DEFAULTS", "Limits", "limits_from_config", "VARIANCE_MAX", "MAP_Q_MAX",
            "BIAS_MIN_POSITIVE", "SIGMA_W2_MIN", "Q_STAR_MAX", "Q_STAR_MIN", "PLAN_Q_INPUT_MIN",
-           "PARAM_ABS_MAX"]
+           "PARAM_ABS_MAX", "KEEP_RATE_MIN", "MAXOUT_MAX_RANK", "OMEGA_ABS_MAX", "MEAN_ABS_MAX",
+           "SMALL_VARIANCE_MIN", "ALPHA_PRIME_ABS_MAX", "SPECTRAL_VARIANCE_MAX", "MAX_CLASSES",
+           "LOGIT_VARIANCE_MAX", "MARGIN_MIN", "MARGIN_MAX", "MAX_SAMPLES", "MC_MAX_ELEMENTS",
+           "SEED_MAX", "SIMULATION_MAX_WIDTH", "SIMULATION_MAX_REPETITIONS",
+           "SIMULATION_MAX_PAIRS", "TOLERANCE_MIN"]
 
 # Fixed parameter ranges (documented; not configurable). Beyond them the mean-field numbers
 # are either meaningless for a real network or outside the engine's tested range.
@@ -39,6 +43,41 @@ Q_STAR_MIN = 1e-30
 PLAN_Q_INPUT_MIN = 1e-12
 #: activation parameters (slope, alpha, beta, formula constants) are at most this in size.
 PARAM_ABS_MAX = 1e6
+#: dropout and alpha-dropout keep rates lie in [KEEP_RATE_MIN, 1] (keep rate 1: no dropout).
+KEEP_RATE_MIN = 1e-3
+#: largest maxout rank (the engine's own bound, propcalc.maxout.MAX_RANK).
+MAXOUT_MAX_RANK = 1024
+#: |omega| (sum of a unit's incoming weights) of the mean-variance map is at most this ...
+OMEGA_ABS_MAX = 100.0
+#: ... and so are |mu| of its start and the mean kept by alpha dropout.
+MEAN_ABS_MAX = 100.0
+#: tau, a start variance nu and the variance kept by alpha dropout are at least this (at most
+#: VARIANCE_MAX); also the smallest penultimate second moment of the softmax layer.
+SMALL_VARIANCE_MIN = 1e-6
+#: |alpha'| (the value of dropped units in alpha dropout) is at most this.
+ALPHA_PRIME_ABS_MAX = 1e3
+#: target normalised spectral variance of the isometry advice is at most this.
+SPECTRAL_VARIANCE_MAX = 1e6
+#: most softmax classes (the engine's own bound, propcalc.output_layer.MAX_CLASSES).
+MAX_CLASSES = 10**7
+#: largest logit variance (the engine's own bound, propcalc.output_layer.MAX_LOGIT_VARIANCE).
+LOGIT_VARIANCE_MAX = 1e4
+#: allowed excess of the initial loss over ln K, in nats: [MARGIN_MIN, MARGIN_MAX].
+MARGIN_MIN = 1e-6
+MARGIN_MAX = 10.0
+#: most Monte Carlo draws of the largest class probability ...
+MAX_SAMPLES = 10**6
+#: ... and of draws times classes (the engine's own bound in propcalc.output_layer).
+MC_MAX_ELEMENTS = 5 * 10**7
+#: largest seed of the seeded computations (simulation, Monte Carlo).
+SEED_MAX = 2**32 - 1
+#: a finite-width simulation has width in [2, SIMULATION_MAX_WIDTH] ...
+SIMULATION_MAX_WIDTH = 4096
+#: ... 2 to SIMULATION_MAX_REPETITIONS networks, 1 to SIMULATION_MAX_PAIRS input pairs each ...
+SIMULATION_MAX_REPETITIONS = 1000
+SIMULATION_MAX_PAIRS = 256
+#: ... and a deviation tolerance in [TOLERANCE_MIN, 1].
+TOLERANCE_MIN = 1e-6
 
 DEFAULTS: dict[str, Any] = {
     # Flask's own key: larger bodies get 413 before they are read.
@@ -51,6 +90,8 @@ DEFAULTS: dict[str, Any] = {
     "MAX_LAYERS": 1000,
     # the depth of a propagation report (only enters chi_1 ** depth)
     "MAX_DEPTH": 1_000_000,
+    # a finite-width simulation: width * width * depth * repetitions (weights drawn)
+    "MAX_SIMULATION_SIZE": 20_000_000,
     # typed formulas
     "MAX_FORMULA_LENGTH": 200,
     "MAX_FORMULA_PARAMS": 8,
@@ -70,12 +111,14 @@ DEFAULTS: dict[str, Any] = {
 }
 
 _INT_KEYS = ("MAX_CONTENT_LENGTH", "MAX_ARRAY_LENGTH", "MAX_GRID_POINTS", "MAX_LAYERS",
-             "MAX_DEPTH", "MAX_FORMULA_LENGTH", "MAX_FORMULA_PARAMS", "RESULT_CACHE_ENTRIES",
-             "RESULT_CACHE_BYTES", "ACTIVATION_CACHE_ENTRIES", "GET_MAX_AGE")
+             "MAX_DEPTH", "MAX_SIMULATION_SIZE", "MAX_FORMULA_LENGTH", "MAX_FORMULA_PARAMS",
+             "RESULT_CACHE_ENTRIES", "RESULT_CACHE_BYTES", "ACTIVATION_CACHE_ENTRIES",
+             "GET_MAX_AGE")
+# MAX_SIMULATION_SIZE >= 8: the smallest simulation (width 2, depth 1, 2 repetitions)
 _MINIMA = {"MAX_CONTENT_LENGTH": 1024, "MAX_ARRAY_LENGTH": 1, "MAX_GRID_POINTS": 2,
-           "MAX_LAYERS": 1, "MAX_DEPTH": 1, "MAX_FORMULA_LENGTH": 1, "MAX_FORMULA_PARAMS": 0,
-           "RESULT_CACHE_ENTRIES": 0, "RESULT_CACHE_BYTES": 0, "ACTIVATION_CACHE_ENTRIES": 0,
-           "GET_MAX_AGE": 0}
+           "MAX_LAYERS": 1, "MAX_DEPTH": 1, "MAX_SIMULATION_SIZE": 8, "MAX_FORMULA_LENGTH": 1,
+           "MAX_FORMULA_PARAMS": 0, "RESULT_CACHE_ENTRIES": 0, "RESULT_CACHE_BYTES": 0,
+           "ACTIVATION_CACHE_ENTRIES": 0, "GET_MAX_AGE": 0}
 
 
 @dataclass(frozen=True)
@@ -94,6 +137,8 @@ class Limits:
         Most layers in a plan.
     max_depth : int
         Largest depth of a propagation report.
+    max_simulation_size : int
+        Largest width * width * depth * repetitions of a finite-width simulation.
     max_formula_length, max_formula_params : int
         Longest formula text, most named formula parameters.
     work_budget : float
@@ -107,6 +152,7 @@ class Limits:
     max_grid_points: int
     max_layers: int
     max_depth: int
+    max_simulation_size: int
     max_formula_length: int
     max_formula_params: int
     work_budget: float
@@ -124,6 +170,24 @@ class Limits:
             "q_star_max": Q_STAR_MAX,
             "plan_q_input_min": PLAN_Q_INPUT_MIN,
             "param_abs_max": PARAM_ABS_MAX,
+            "keep_rate_min": KEEP_RATE_MIN,
+            "maxout_max_rank": MAXOUT_MAX_RANK,
+            "omega_abs_max": OMEGA_ABS_MAX,
+            "mean_abs_max": MEAN_ABS_MAX,
+            "small_variance_min": SMALL_VARIANCE_MIN,
+            "alpha_prime_abs_max": ALPHA_PRIME_ABS_MAX,
+            "spectral_variance_max": SPECTRAL_VARIANCE_MAX,
+            "max_classes": MAX_CLASSES,
+            "logit_variance_max": LOGIT_VARIANCE_MAX,
+            "margin_min": MARGIN_MIN,
+            "margin_max": MARGIN_MAX,
+            "max_samples": MAX_SAMPLES,
+            "mc_max_elements": MC_MAX_ELEMENTS,
+            "seed_max": SEED_MAX,
+            "simulation_max_width": SIMULATION_MAX_WIDTH,
+            "simulation_max_repetitions": SIMULATION_MAX_REPETITIONS,
+            "simulation_max_pairs": SIMULATION_MAX_PAIRS,
+            "tolerance_min": TOLERANCE_MIN,
         }
         return out
 
@@ -160,6 +224,7 @@ def limits_from_config(config: Mapping[str, Any]) -> Limits:
         max_grid_points=config["MAX_GRID_POINTS"],
         max_layers=config["MAX_LAYERS"],
         max_depth=config["MAX_DEPTH"],
+        max_simulation_size=config["MAX_SIMULATION_SIZE"],
         max_formula_length=config["MAX_FORMULA_LENGTH"],
         max_formula_params=config["MAX_FORMULA_PARAMS"],
         work_budget=_check_seconds("WORK_BUDGET", config["WORK_BUDGET"], positive=True),

@@ -29,9 +29,12 @@ __all__ = ["build_openapi", "DESCRIPTION"]
 DESCRIPTION = """\
 Mean-field signal propagation for deep random networks (propcalc): activation
 properties and gains, propagation reports (fixed points, chi_1, depth scales,
-phase), the edge-of-chaos line, per-layer initialisation plans and sampled
-variance/correlation maps. Infinite-width predictions at initialisation:
-check them on your own model.
+phase), the edge-of-chaos line, per-layer initialisation plans, sampled
+variance/correlation maps, dropout, maxout networks, mean-variance fixed
+points (self-normalisation) and alpha dropout, Jacobian spectra and dynamical
+isometry, the softmax output layer at initialisation, and finite-width checks
+on seeded random networks (POST /v1/simulate). Infinite-width predictions at
+initialisation: check them on your own model.
 
 **Conventions.** Fan-in scaling W_ij ~ N(0, sigma_w2 / fan_in), b_i ~ N(0,
 sigma_b2). JSON has no infinity: an infinite number (a depth scale exactly at
@@ -52,7 +55,8 @@ responses list one entry per bad member, with a JSON pointer into the body
 (or the query parameter name) and a message naming the constraint and the
 value received. Problem types: about:blank (400, 404, 405 with an Allow
 header, 413, 415, 500), {invalid} (422), {budget} (422, the cost of the
-request exceeds WORK_BUDGET or WALL_CLOCK_LIMIT; "limit" names it) and
+request exceeds WORK_BUDGET or WALL_CLOCK_LIMIT, or a simulation exceeds
+MAX_SIMULATION_SIZE; "limit" names it) and
 {computation} (422, the engine could not produce a trustworthy number for
 these inputs, or the target cannot be met).
 """.replace("{invalid}", TYPE_INVALID_FIELDS).replace("{budget}", TYPE_WORK_BUDGET).replace(

@@ -18,7 +18,8 @@ about:blank                            413     body larger than MAX_CONTENT_LENG
 about:blank                            415     Content-Type is not application/json
 ...:invalid-fields                     422     members fail validation (one entry per field)
 ...:work-budget-exceeded               422     the estimated cost or the wall-clock time of the
-                                               request exceeds the limits (``limit`` names it)
+                                               request exceeds the limits, or a simulation
+                                               exceeds MAX_SIMULATION_SIZE (``limit`` names it)
 ...:computation-failed                 422     the engine could not produce a trustworthy number
                                                for these inputs (ComputationError)
 about:blank                            500     a bug: logged with a traceback under ``incident``

@@ -129,6 +129,61 @@ ENDPOINTS: tuple[Endpoint, ...] = (
              "C(c) (Poole et al. 2016) and optionally C'(c) at the requested c, for inputs of "
              "variance q (default: the fixed point q*).", "CorrelationMapRequest", None,
              "CorrelationMap", "correlation_map", _POST_ERRORS, "maps"),
+    Endpoint("dropout", "/v1/dropout", "POST", "Propagation with dropout",
+             "Keep rate rho with 1/rho rescaling (Schoenholz et al. 2017): q* of (sigma_w2 / rho) "
+             "E[phi^2] + sigma_b2, chi_1 = (sigma_w2 / rho) E[phi'^2], the correlation fixed "
+             "point c* (< 1 for rho < 1), chi_c, the finite xi_c and the trainable depth (about "
+             "6 xi_c, an empirical rule): with dropout there is no edge of chaos.",
+             "DropoutRequest", None, "DropoutPropagation", "dropout", _POST_ERRORS, "dropout"),
+    Endpoint("dropout_sweep", "/v1/dropout/sweep", "POST", "Dropout over several keep rates",
+             "One dropout report per keep rate, in the order given; scale_with_keep_rate uses "
+             "sigma_w2 * rho, which holds q* fixed.", "DropoutSweepRequest", None, "DropoutSweep",
+             "dropout_sweep", _POST_ERRORS, "dropout"),
+    Endpoint("maxout", "/v1/maxout", "POST", "Maxout networks of rank k",
+             "Moments of the largest of k standard normals, the linear variance map "
+             "V(q) = sigma_w2 E[X_k^2] q + sigma_b2, chi_1 = sigma_w2, the phase and depth "
+             "scales (Goodfellow et al. 2013; default sigma_w2 c_k = 1 / E[X_k^2], Tseran & "
+             "Montufar 2023), and with fan_in and fan_out the parameter count of one layer "
+             "(k times a plain layer's).", "MaxoutRequest", None, "Maxout", "maxout",
+             _POST_ERRORS, "maxout"),
+    Endpoint("self_normalization", "/v1/self-normalization", "POST",
+             "Mean-variance fixed points",
+             "Fixed points (mu*, nu*) of (mu, nu) -> (E[phi(z)], Var[phi(z)]), z ~ N(mu omega, "
+             "nu tau) (Klambauer et al. 2017), with the Jacobian (Stein's identities), its "
+             "eigenvalues, spectral radius and norm, and whether the network self-normalises.",
+             "SelfNormalizationRequest", None, "SelfNormalization", "self_normalization",
+             _POST_ERRORS, "self-normalisation"),
+    Endpoint("alpha_dropout", "/v1/alpha-dropout", "POST", "Alpha-dropout constants",
+             "a and b of y = a (x d + alpha' (1 - d)) + b, which keep the mean and variance; at "
+             "(0, 1) with SELU's alpha' the formula of Klambauer et al. 2017.",
+             "AlphaDropoutRequest", None, "AlphaDropout", "alpha_dropout", _POST_ERRORS,
+             "self-normalisation"),
+    Endpoint("jacobian_spectrum", "/v1/jacobian-spectrum", "POST", "Jacobian spectrum moments",
+             "Mean chi_1^L and variance of the squared singular values of the input-output "
+             "Jacobian of a depth-L network at q*, for Gaussian and orthogonal weights "
+             "(free probability; Pennington, Schoenholz & Ganguli 2017).",
+             "JacobianSpectrumRequest", None, "JacobianSpectrum", "jacobian_spectrum",
+             _POST_ERRORS, "isometry"),
+    Endpoint("dynamical_isometry", "/v1/dynamical-isometry", "POST", "Isometry advice",
+             "The largest q* on the edge of chaos whose orthogonal-weight spectral variance "
+             "L (mu_2 / mu_1^2 - 1) meets the target, or why none does (ReLU: mu_2 / mu_1^2 = 2 "
+             "at every q*).", "DynamicalIsometryRequest", None, "IsometryAdvice",
+             "dynamical_isometry", _POST_ERRORS, "isometry"),
+    Endpoint("softmax", "/v1/softmax", "POST", "Softmax output at initialisation",
+             "Expected initial cross-entropy E[log sum_j exp(l_j) - l_y] for K iid N(0, s2) "
+             "logits against ln K (quadrature), and the expected largest class probability "
+             "(quadrature for K = 2, seeded Monte Carlo otherwise).", "SoftmaxRequest", None,
+             "Softmax", "softmax", _POST_ERRORS, "softmax"),
+    Endpoint("output_scale", "/v1/softmax/output-scale", "POST", "Last-layer scale for a margin",
+             "The largest last-layer sigma_w2 whose expected initial loss stays within margin "
+             "nats of ln K (an initial loss near ln K: common practice, no source).",
+             "OutputScaleRequest", None, "OutputLayerScale", "output_scale", _POST_ERRORS,
+             "softmax"),
+    Endpoint("simulation", "/v1/simulate", "POST", "Finite-width check",
+             "Seeded random networks of the given width against the mean-field q, c and "
+             "squared gradient norms, layer by layer, with +-2 standard-error bands. "
+             "width^2 * depth * repetitions is at most MAX_SIMULATION_SIZE.",
+             "SimulationRequest", None, "Simulation", "simulation", _POST_ERRORS, "simulation"),
 )
 
 _NUMBER = re.compile(r"-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?(?:[eE][+-]?[0-9]+)?")

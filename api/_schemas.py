@@ -18,16 +18,34 @@ from typing import Any
 
 from marshmallow import RAISE, Schema, ValidationError, fields, validates_schema
 
-from propcalc import builtin_names
+from propcalc import alpha_dropout, builtin_names
 
 from ._config import (
+    ALPHA_PRIME_ABS_MAX,
     BIAS_MIN_POSITIVE,
+    KEEP_RATE_MIN,
+    LOGIT_VARIANCE_MAX,
     MAP_Q_MAX,
+    MARGIN_MAX,
+    MARGIN_MIN,
+    MAX_CLASSES,
+    MAX_SAMPLES,
+    MC_MAX_ELEMENTS,
+    MAXOUT_MAX_RANK,
+    MEAN_ABS_MAX,
+    OMEGA_ABS_MAX,
     PARAM_ABS_MAX,
     PLAN_Q_INPUT_MIN,
+    SEED_MAX,
     SIGMA_W2_MIN,
+    SIMULATION_MAX_PAIRS,
+    SIMULATION_MAX_REPETITIONS,
+    SIMULATION_MAX_WIDTH,
+    SMALL_VARIANCE_MIN,
+    SPECTRAL_VARIANCE_MAX,
     Q_STAR_MAX,
     Q_STAR_MIN,
+    TOLERANCE_MIN,
     VARIANCE_MAX,
     Limits,
 )
@@ -46,7 +64,8 @@ from ._fields import (
 )
 
 __all__ = ["StrictSchema", "Schemas", "build_schemas", "DISTRIBUTIONS", "TARGETS",
-           "DEFAULT_EDGE_Q_STARS", "PARAM_NAME_PATTERN", "MAX_SIZE"]
+           "DEFAULT_EDGE_Q_STARS", "PARAM_NAME_PATTERN", "MAX_SIZE", "VARIANCE_STATUSES",
+           "DROPOUT_MAX_RATES", "ISOMETRY_DEFAULTS"]
 
 #: weight distributions of a plan (the engine's names)
 DISTRIBUTIONS = ("normal", "uniform", "truncated_normal", "orthogonal")
@@ -61,6 +80,13 @@ MAX_SIZE = 10_000_000
 #: largest kernel size per spatial dimension, and most spatial dimensions
 MAX_KERNEL = 1024
 MAX_KERNEL_DIMS = 3
+#: status of the variance in the reports (the engine's names)
+VARIANCE_STATUSES = ("fixed_point", "collapse", "unbounded", "neutral")
+#: most keep rates of one dropout sweep (the engine's own bound, propcalc.dropout_sweep)
+DROPOUT_MAX_RATES = 1000
+#: defaults of the isometry advice (those of propcalc.dynamical_isometry): the target
+#: normalised spectral variance (common practice, no source) and the scanned q* range
+ISOMETRY_DEFAULTS = {"max_variance": 0.25, "q_star_min": 1e-6, "q_star_max": 100.0}
 
 
 class StrictSchema(Schema):
@@ -164,6 +190,16 @@ class Schemas:
     PlanRequest: type[Schema]
     VarianceMapRequest: type[Schema]
     CorrelationMapRequest: type[Schema]
+    DropoutRequest: type[Schema]
+    DropoutSweepRequest: type[Schema]
+    MaxoutRequest: type[Schema]
+    SelfNormalizationRequest: type[Schema]
+    AlphaDropoutRequest: type[Schema]
+    JacobianSpectrumRequest: type[Schema]
+    DynamicalIsometryRequest: type[Schema]
+    SoftmaxRequest: type[Schema]
+    OutputScaleRequest: type[Schema]
+    SimulationRequest: type[Schema]
     # responses
     Activation: type[Schema]
     ActivationList: type[Schema]
@@ -173,6 +209,16 @@ class Schemas:
     InitPlan: type[Schema]
     VarianceMap: type[Schema]
     CorrelationMap: type[Schema]
+    DropoutPropagation: type[Schema]
+    DropoutSweep: type[Schema]
+    Maxout: type[Schema]
+    SelfNormalization: type[Schema]
+    AlphaDropout: type[Schema]
+    JacobianSpectrum: type[Schema]
+    IsometryAdvice: type[Schema]
+    Softmax: type[Schema]
+    OutputLayerScale: type[Schema]
+    Simulation: type[Schema]
     Problem: type[Schema]
     Health: type[Schema]
     LimitsInfo: type[Schema]
@@ -369,6 +415,215 @@ def build_schemas(limits: Limits) -> Schemas:
         def _one_c(self, data: dict[str, Any], **kwargs: Any) -> None:
             _exactly_one(data, ("c", "c_grid"))
 
+    # -- dropout, maxout, mean-variance maps, spectra, the softmax layer, simulations -----------
+    def keep_rate_field(description: str, **kw: Any) -> FiniteNumber:
+        return FiniteNumber(validate=Interval(KEEP_RATE_MIN, 1), metadata=_d(description), **kw)
+
+    def report_depth_field(description: str = "number of layers, for chi_1 ** depth and the "
+                           "depth verdict") -> JSONInteger:
+        return JSONInteger(validate=Interval(1, limits.max_depth), load_default=None,
+                           allow_none=True, metadata=_d(description))
+
+    def seed_field() -> JSONInteger:
+        return JSONInteger(validate=Interval(0, SEED_MAX), load_default=0,
+                           metadata=_d("seed of numpy.random.default_rng / SeedSequence"))
+
+    def n_samples_field() -> JSONInteger:
+        return JSONInteger(validate=Interval(2, MAX_SAMPLES), metadata=_d(
+            "Monte Carlo draws of the largest class probability (K > 2); default 100000, or "
+            "50000000 // n_classes when that is smaller (n_samples * n_classes <= 5e7)"))
+
+    def check_draws(data: dict[str, Any]) -> None:
+        k, n = data.get("n_classes"), data.get("n_samples")
+        if k is not None and n is not None and k > 2 and n * k > MC_MAX_ELEMENTS:
+            raise ValidationError(f"must be <= {MC_MAX_ELEMENTS // k} for {k} classes "
+                                  "(n_samples * n_classes <= 5e7)", field_name="n_samples")
+
+    def classes_field() -> JSONInteger:
+        return JSONInteger(required=True, validate=Interval(2, MAX_CLASSES),
+                           metadata=_d("number of classes K"))
+
+    keep_rate_text = ("probability rho of keeping a unit (kept activations are rescaled by "
+                      "1 / rho); 1 is no dropout")
+    scale_text = ("use sigma_w2 * rho at keep rate rho, which holds sigma_w2 / rho and so q* "
+                  "fixed")
+
+    class DropoutRequestSchema(StrictSchema):
+        """Signal propagation with dropout at one keep rate (Schoenholz et al. 2017)."""
+
+        activation = activation_field()
+        sigma_w2 = sigma_w2_field(required=True)
+        sigma_b2 = sigma_b2_field(load_default=0.0)
+        keep_rate = keep_rate_field(keep_rate_text, required=True)
+        depth = report_depth_field()
+        q_input = q_input_field(PLAN_Q_INPUT_MIN, load_default=1.0)
+        scale_with_keep_rate = StrictBoolean(load_default=False, metadata=_d(scale_text))
+
+    max_rates = min(limits.max_array_length, DROPOUT_MAX_RATES)
+
+    class DropoutSweepRequestSchema(StrictSchema):
+        """Dropout reports over several keep rates."""
+
+        activation = activation_field()
+        sigma_w2 = sigma_w2_field(required=True)
+        sigma_b2 = sigma_b2_field(load_default=0.0)
+        keep_rates = fields.List(
+            FiniteNumber(validate=Interval(KEEP_RATE_MIN, 1)), required=True,
+            validate=MaxItems(max_rates, 1, "MAX_ARRAY_LENGTH"
+                              if max_rates == limits.max_array_length else None),
+            metadata=_d("keep rates, one report each", minItems=1, maxItems=max_rates))
+        depth = report_depth_field()
+        q_input = q_input_field(PLAN_Q_INPUT_MIN, load_default=1.0)
+        scale_with_keep_rate = StrictBoolean(load_default=False, metadata=_d(scale_text))
+
+    class MaxoutRequestSchema(StrictSchema):
+        """A deep maxout network of rank k (Goodfellow et al. 2013)."""
+
+        OPENAPI_EXTRA = {"dependentRequired": {"fan_in": ["fan_out"], "fan_out": ["fan_in"]}}
+
+        k = JSONInteger(required=True, validate=Interval(1, MAXOUT_MAX_RANK),
+                        metadata=_d("rank: affine pieces per unit"))
+        sigma_w2 = sigma_w2_field("weight variance times fan-in of every piece; default c_k = "
+                                  "1 / E[X_k^2], X_k the largest of k standard normals "
+                                  "(Tseran & Montufar 2023)")
+        sigma_b2 = sigma_b2_field("bias variance of every piece", load_default=0.0)
+        depth = report_depth_field()
+        q_input = q_input_field(load_default=1.0)
+        fan_in = JSONInteger(validate=Interval(1, MAX_SIZE), metadata=_d(
+            "with fan_out: the size and weight std of one dense maxout layer"))
+        fan_out = JSONInteger(validate=Interval(1, MAX_SIZE), metadata=_d("see fan_in"))
+
+        @validates_schema
+        def _both_sizes(self, data: dict[str, Any], **kwargs: Any) -> None:
+            for a, b in (("fan_in", "fan_out"), ("fan_out", "fan_in")):
+                if data.get(a) is not None and data.get(b) is None:
+                    raise ValidationError(f"is required when {a} is given", field_name=b)
+
+    class MeanVarianceStartSchema(StrictSchema):
+        """The mean and variance (mu, nu) of the activations the network starts from."""
+
+        mu = FiniteNumber(required=True, validate=Interval(-MEAN_ABS_MAX, MEAN_ABS_MAX))
+        nu = FiniteNumber(required=True, validate=Interval(SMALL_VARIANCE_MIN, VARIANCE_MAX))
+
+    class SelfNormalizationRequestSchema(StrictSchema):
+        """Fixed points of the mean-variance map and their Jacobians (Klambauer et al. 2017)."""
+
+        activation = activation_field()
+        omega = FiniteNumber(validate=Interval(-OMEGA_ABS_MAX, OMEGA_ABS_MAX), load_default=0.0,
+                             metadata=_d("sum of a unit's incoming weights (0 for normalised "
+                                         "weights)"))
+        tau = FiniteNumber(validate=Interval(SMALL_VARIANCE_MIN, VARIANCE_MAX), load_default=1.0,
+                           metadata=_d("sum of their squares (1 for normalised weights)"))
+        start = fields.Nested(MeanVarianceStartSchema, load_default=lambda: {"mu": 0.0, "nu": 1.0},
+                              metadata=_d("where the network starts; the nearest fixed point is "
+                                          "reported as nearest (default mu = 0, nu = 1)"))
+
+    selu_alpha_prime = alpha_dropout(1.0).alpha_prime
+
+    class AlphaDropoutRequestSchema(StrictSchema):
+        """The constants of alpha dropout (Klambauer et al. 2017)."""
+
+        keep_rate = keep_rate_field("probability q of keeping a unit", required=True)
+        mean = FiniteNumber(validate=Interval(-MEAN_ABS_MAX, MEAN_ABS_MAX), load_default=0.0,
+                            metadata=_d("mean of the incoming activations, kept"))
+        variance = FiniteNumber(validate=Interval(SMALL_VARIANCE_MIN, VARIANCE_MAX),
+                                load_default=1.0,
+                                metadata=_d("variance of the incoming activations, kept"))
+        alpha_prime = FiniteNumber(
+            validate=Interval(-ALPHA_PRIME_ABS_MAX, ALPHA_PRIME_ABS_MAX), metadata=_d(
+                "value given to dropped units; default SELU's saturation value -lambda alpha "
+                f"= {selu_alpha_prime!r}"))
+
+    class JacobianSpectrumRequestSchema(StrictSchema):
+        """Mean and variance of the squared singular values of the input-output Jacobian."""
+
+        activation = activation_field()
+        depth = JSONInteger(required=True, validate=Interval(1, limits.max_depth),
+                            metadata=_d("number of layers L"))
+        q_star = q_star_field("the pre-activation variance every layer sits at",
+                              load_default=1.0)
+        sigma_w2 = sigma_w2_field("default: the edge of chaos through q_star (chi_1 = 1)")
+
+    class DynamicalIsometryRequestSchema(StrictSchema):
+        """Where on the edge of chaos a depth-L network has a near-isometric Jacobian."""
+
+        activation = activation_field()
+        depth = JSONInteger(required=True, validate=Interval(1, limits.max_depth),
+                            metadata=_d("number of layers L"))
+        max_variance = FiniteNumber(
+            validate=Interval(0, SPECTRAL_VARIANCE_MAX),
+            load_default=ISOMETRY_DEFAULTS["max_variance"], metadata=_d(
+                "target normalised spectral variance (default 0.25: common practice, no "
+                "source)"))
+        q_star_min = q_star_field("smallest q* scanned",
+                                  load_default=ISOMETRY_DEFAULTS["q_star_min"])
+        q_star_max = q_star_field("largest q* scanned (> q_star_min)",
+                                  load_default=ISOMETRY_DEFAULTS["q_star_max"])
+
+        @validates_schema
+        def _range(self, data: dict[str, Any], **kwargs: Any) -> None:
+            if data["q_star_max"] <= data["q_star_min"]:
+                raise ValidationError(f"must be > q_star_min ({format_number(data['q_star_min'])})",
+                                      field_name="q_star_max")
+
+    class SoftmaxRequestSchema(StrictSchema):
+        """Expected initial loss and largest class probability of a softmax output."""
+
+        n_classes = classes_field()
+        logit_variance = FiniteNumber(required=True, validate=Interval(0, LOGIT_VARIANCE_MAX),
+                                      metadata=_d("variance s2 of each logit at initialisation"))
+        n_samples = n_samples_field()
+        seed = seed_field()
+
+        @validates_schema
+        def _draws(self, data: dict[str, Any], **kwargs: Any) -> None:
+            check_draws(data)
+
+    class OutputScaleRequestSchema(StrictSchema):
+        """The last layer's weight scale that keeps the initial loss within a margin of ln K."""
+
+        n_classes = classes_field()
+        penultimate_second_moment = FiniteNumber(
+            validate=Interval(SMALL_VARIANCE_MIN, VARIANCE_MAX), load_default=1.0,
+            metadata=_d("E[phi(h)^2] of the activations feeding the last layer (default 1)"))
+        margin = FiniteNumber(validate=Interval(MARGIN_MIN, MARGIN_MAX), metadata=_d(
+            "allowed excess over ln K in nats; default 1% of ln K (common practice, no source)"))
+        sigma_b2 = sigma_b2_field("the last layer's bias variance", load_default=0.0)
+        fan_in = JSONInteger(validate=Interval(1, MAX_SIZE), metadata=_d(
+            "width of the penultimate layer, for the weight std"))
+        current_sigma_w2 = sigma_w2_field("the last layer's planned sigma_w2, to report its loss")
+        current_sigma_b2 = sigma_b2_field("its planned sigma_b2 (default: sigma_b2)")
+        n_samples = n_samples_field()
+        seed = seed_field()
+
+        @validates_schema
+        def _draws(self, data: dict[str, Any], **kwargs: Any) -> None:
+            check_draws(data)
+
+    class SimulationRequestSchema(StrictSchema):
+        """Seeded finite-width networks measured against the mean-field predictions."""
+
+        activation = activation_field()
+        sigma_w2 = sigma_w2_field(required=True)
+        sigma_b2 = sigma_b2_field(load_default=0.0)
+        width = JSONInteger(required=True, validate=Interval(2, SIMULATION_MAX_WIDTH),
+                            metadata=_d("units per layer N (width^2 * depth * repetitions at "
+                                        "most MAX_SIMULATION_SIZE)"))
+        depth = JSONInteger(required=True, validate=Interval(1, limits.max_layers),
+                            metadata=_d("number of layers L (limit MAX_LAYERS)"))
+        repetitions = JSONInteger(validate=Interval(2, SIMULATION_MAX_REPETITIONS),
+                                  load_default=8, metadata=_d("independent networks"))
+        n_pairs = JSONInteger(validate=Interval(1, SIMULATION_MAX_PAIRS), load_default=4,
+                              metadata=_d("input pairs per network"))
+        seed = seed_field()
+        q0 = FiniteNumber(validate=Interval(PLAN_Q_INPUT_MIN, VARIANCE_MAX), load_default=1.0,
+                          metadata=_d("mean square of the layer-0 pre-activations"))
+        c0 = FiniteNumber(validate=Interval(-1, 1), load_default=0.5,
+                          metadata=_d("their correlation"))
+        tolerance = FiniteNumber(validate=Interval(TOLERANCE_MIN, 1), load_default=0.05,
+                                 metadata=_d("practical size of a visible deviation (relative "
+                                             "for q and the gradient, absolute for c)"))
+
     # -----------------------------------------------------------------------------------------
     # responses
     # -----------------------------------------------------------------------------------------
@@ -547,6 +802,260 @@ def build_schemas(limits: Limits) -> Schemas:
         correlation = _r(fields.List(ExtNumber(), metadata=_d("C(c)")))
         slope = _r(fields.List(ExtNumber(), allow_none=True, metadata=_d("C'(c), or null")))
 
+    def pair_meta(text: str = "") -> dict[str, Any]:
+        """Metadata of a list of exactly two items."""
+        return {**({"description": text} if text else {}), "minItems": 2, "maxItems": 2}
+
+    def pair_field(text: str = "") -> fields.List:
+        return _r(fields.List(ExtNumber(), metadata=pair_meta(text)))
+
+    class DropoutPropagationSchema(StrictSchema):
+        """The mean-field report of a deep network with dropout at keep rate rho."""
+
+        activation = text()
+        keep_rate = num()
+        sigma_w2 = num()
+        sigma_b2 = num()
+        q_input = num()
+        status = _r(Choice(VARIANCE_STATUSES))
+        q_star = num(allow_none=True, metadata=_d("fixed point of (sigma_w2 / rho) E[phi^2] + "
+                                                  "sigma_b2"))
+        chi_q = ext(allow_none=True)
+        chi_1 = ext(allow_none=True, metadata=_d("(sigma_w2 / rho) E[phi'(sqrt(q*) z)^2]"))
+        c_star = num(allow_none=True, metadata=_d("correlation fixed point (< 1 for rho < 1)"))
+        chi_c = ext(allow_none=True)
+        xi_c = ext(allow_none=True)
+        trainable_depth = ext(allow_none=True)
+        trainable_depth_rule = text()
+        depth = _r(JSONInteger(allow_none=True))
+        gradient_growth = ext(allow_none=True)
+        depth_ok = _r(StrictBoolean(allow_none=True))
+        verdict = text()
+        notes = notes_field()
+
+    class DropoutSweepSchema(StrictSchema):
+        """Dropout reports over several keep rates, in the order given."""
+
+        activation = text()
+        scale_with_keep_rate = _r(StrictBoolean())
+        reports = _r(fields.List(fields.Nested(DropoutPropagationSchema)))
+
+    class MaxMomentsSchema(StrictSchema):
+        """Moments of the largest of k iid standard normals."""
+
+        k = _r(JSONInteger())
+        mean = num(metadata=_d("E[X_k]"))
+        second_moment = num(metadata=_d("E[X_k^2]"))
+        recommended_sigma_w2 = num(metadata=_d("c_k = 1 / E[X_k^2] (Tseran & Montufar 2023)"))
+
+    class MaxoutLayerSchema(StrictSchema):
+        """Initialisation and size of one dense maxout layer."""
+
+        k = _r(JSONInteger())
+        fan_in = _r(JSONInteger())
+        fan_out = _r(JSONInteger())
+        sigma_w2 = num()
+        weight_std = num(metadata=_d("sqrt(sigma_w2 / fan_in)"))
+        n_parameters = _r(JSONInteger(metadata=_d("k (fan_in fan_out + fan_out)")))
+        plain_parameters = _r(JSONInteger(metadata=_d("a plain dense layer of the same shape")))
+        weight_shape = _r(fields.List(JSONInteger(), metadata=_d("(k, fan_out, fan_in)",
+                                                                 minItems=3, maxItems=3)))
+
+    class MaxoutSchema(StrictSchema):
+        """The mean-field report of a deep maxout network (and one layer when sizes are given)."""
+
+        k = _r(JSONInteger())
+        sigma_w2 = num()
+        sigma_b2 = num()
+        q_input = num()
+        moments = _r(fields.Nested(MaxMomentsSchema))
+        status = _r(Choice(VARIANCE_STATUSES))
+        q_star = num(allow_none=True)
+        chi_q = ext(metadata=_d("sigma_w2 E[X_k^2]: the variance map is linear"))
+        growth_rate = ext(allow_none=True)
+        chi_1 = ext(metadata=_d("sigma_w2"))
+        c_star = num(allow_none=True)
+        chi_c = ext(allow_none=True)
+        xi_c = ext(allow_none=True)
+        phase = _r(Choice(["ordered", "edge of chaos", "unbounded variance"]))
+        trainable_depth = ext(allow_none=True)
+        trainable_depth_rule = text()
+        depth = _r(JSONInteger(allow_none=True))
+        gradient_growth = ext(allow_none=True)
+        depth_ok = _r(StrictBoolean(allow_none=True))
+        verdict = text()
+        parameter_factor = _r(JSONInteger(metadata=_d("k: a maxout layer has k times the "
+                                                      "parameters of a plain layer")))
+        notes = notes_field()
+        layer = _r(fields.Nested(MaxoutLayerSchema, allow_none=True,
+                                 metadata=_d("null unless fan_in and fan_out are given")))
+
+    class MeanVarianceFixedPointSchema(StrictSchema):
+        """A fixed point (mu*, nu*) of the mean-variance map with its Jacobian."""
+
+        mu = num()
+        nu = num()
+        jacobian = _r(fields.List(fields.List(ExtNumber(), metadata=pair_meta()),
+                                  metadata=pair_meta("rows (mu~, nu~), columns (mu, nu)")))
+        eigenvalues_real = pair_field()
+        eigenvalues_imag = pair_field()
+        spectral_radius = ext()
+        spectral_norm = ext()
+        attracting = _r(StrictBoolean())
+
+    class SelfNormalizationSchema(StrictSchema):
+        """Fixed points of the mean-variance map and whether the network self-normalises."""
+
+        activation = text()
+        omega = num()
+        tau = num()
+        fixed_points = _r(fields.List(fields.Nested(MeanVarianceFixedPointSchema)))
+        nearest = _r(fields.Nested(MeanVarianceFixedPointSchema, allow_none=True))
+        self_normalizing = _r(StrictBoolean())
+        neutral = _r(StrictBoolean())
+        zero_rate = ext(allow_none=True)
+        method = text()
+        message = text()
+
+    class AlphaDropoutSchema(StrictSchema):
+        """Alpha dropout: y = a (x d + alpha' (1 - d)) + b keeps the mean and the variance."""
+
+        keep_rate = num()
+        alpha_prime = num()
+        a = num()
+        b = num()
+        mean = num()
+        variance = num()
+
+    class JacobianSpectrumSchema(StrictSchema):
+        """Mean and variance of the spectrum of J J^T, Gaussian and orthogonal weights."""
+
+        activation = text()
+        depth = _r(JSONInteger())
+        q_star = num()
+        sigma_w2 = num()
+        sigma_b2 = num(allow_none=True)
+        mu_1 = num(metadata=_d("E[phi'(sqrt(q*) z)^2]"))
+        mu_2 = num(metadata=_d("E[phi'(sqrt(q*) z)^4]"))
+        moment_ratio = ext(metadata=_d("mu_2 / mu_1^2"))
+        chi_1 = ext()
+        mean = ext(metadata=_d("chi_1^L"))
+        normalized_variance_gaussian = ext(metadata=_d("L mu_2 / mu_1^2"))
+        normalized_variance_orthogonal = ext(metadata=_d("L (mu_2 / mu_1^2 - 1)"))
+        variance_gaussian = ext()
+        variance_orthogonal = ext()
+        notes = notes_field()
+
+    class IsometryAdviceSchema(StrictSchema):
+        """Where (if anywhere) on the edge of chaos the Jacobian is near-isometric."""
+
+        activation = text()
+        depth = _r(JSONInteger())
+        max_variance = num()
+        achievable = _r(StrictBoolean())
+        weights = _r(Choice(["gaussian", "orthogonal"]))
+        q_star = num(allow_none=True)
+        sigma_w2 = num(allow_none=True)
+        sigma_b2 = num(allow_none=True)
+        spectrum = _r(fields.Nested(JacobianSpectrumSchema, allow_none=True))
+        ratio_at_small_q = ext()
+        ratio_at_large_q = ext()
+        ratio_constant = _r(StrictBoolean())
+        message = text()
+
+    class InitialLossSchema(StrictSchema):
+        """Expected initial cross-entropy against ln K."""
+
+        n_classes = _r(JSONInteger())
+        logit_variance = num()
+        expected_loss = num()
+        log_classes = num(metadata=_d("ln K, the loss of uniform predictions"))
+        excess = num()
+        small_variance_approximation = num(metadata=_d("ln K + s2 (K - 1) / (2K)"))
+        method = text()
+        target_note = text()
+
+    class MaxProbabilitySchema(StrictSchema):
+        """Expected largest class probability at initialisation."""
+
+        n_classes = _r(JSONInteger())
+        logit_variance = num()
+        value = num()
+        standard_error = num()
+        method = _r(Choice(["exact (s2 = 0)", "quadrature", "monte carlo"]))
+        n_samples = _r(JSONInteger(allow_none=True))
+        seed = _r(JSONInteger(allow_none=True))
+        uniform = num(metadata=_d("1 / K"))
+
+    class SoftmaxSchema(StrictSchema):
+        """The softmax output at initialisation: expected loss and largest probability."""
+
+        initial_loss = _r(fields.Nested(InitialLossSchema))
+        max_probability = _r(fields.Nested(MaxProbabilitySchema))
+
+    class OutputLayerScaleSchema(StrictSchema):
+        """The largest last-layer sigma_w2 whose expected initial loss is within the margin."""
+
+        n_classes = _r(JSONInteger())
+        margin = num()
+        penultimate_second_moment = num()
+        sigma_b2 = num()
+        max_logit_variance = num()
+        sigma_w2 = num()
+        weight_std = num(allow_none=True)
+        loss_at_scale = _r(fields.Nested(InitialLossSchema))
+        max_probability_at_scale = _r(fields.Nested(MaxProbabilitySchema))
+        current = _r(fields.Nested(InitialLossSchema, allow_none=True))
+        notes = notes_field()
+
+    class LayerMeasurementSchema(StrictSchema):
+        """Predicted and measured q, c and squared gradient norm at one layer."""
+
+        index = _r(JSONInteger())
+        q_predicted = ext()
+        q_mean = ext()
+        q_se = ext()
+        q_band = pair_field()
+        q_geometric = ext()
+        q_geometric_band = pair_field()
+        c_predicted = ext()
+        c_mean = ext()
+        c_se = ext()
+        c_band = pair_field()
+        gradient_predicted = ext()
+        gradient_mean = ext()
+        gradient_se = ext()
+        gradient_band = pair_field()
+        gradient_geometric = ext()
+        gradient_geometric_band = pair_field()
+        q_in_band = _r(StrictBoolean())
+        c_in_band = _r(StrictBoolean())
+        gradient_in_band = _r(StrictBoolean())
+
+    class SimulationSchema(StrictSchema):
+        """Mean-field predictions against seeded finite-width networks, layer by layer."""
+
+        activation = text()
+        sigma_w2 = num()
+        sigma_b2 = num()
+        width = _r(JSONInteger())
+        depth = _r(JSONInteger())
+        repetitions = _r(JSONInteger())
+        n_pairs = _r(JSONInteger())
+        seed = _r(JSONInteger())
+        q0 = num()
+        c0 = num()
+        tolerance = num()
+        layers = _r(fields.List(fields.Nested(LayerMeasurementSchema),
+                                metadata=_d("layers 0 ... depth")))
+        max_deviation_q = ext()
+        max_deviation_c = ext()
+        max_deviation_gradient = ext()
+        fraction_in_band = num()
+        deviation_visible = _r(StrictBoolean())
+        first_visible_layer = _r(JSONInteger(allow_none=True))
+        message = text()
+
     class ProblemEntrySchema(StrictSchema):
         """One bad field: where it is and what is wrong with it."""
 
@@ -591,6 +1100,24 @@ def build_schemas(limits: Limits) -> Schemas:
         q_star_max = num()
         plan_q_input_min = num()
         param_abs_max = num()
+        keep_rate_min = num()
+        maxout_max_rank = _r(JSONInteger())
+        omega_abs_max = num()
+        mean_abs_max = num()
+        small_variance_min = num()
+        alpha_prime_abs_max = num()
+        spectral_variance_max = num()
+        max_classes = _r(JSONInteger())
+        logit_variance_max = num()
+        margin_min = num()
+        margin_max = num()
+        max_samples = _r(JSONInteger())
+        mc_max_elements = _r(JSONInteger())
+        seed_max = _r(JSONInteger())
+        simulation_max_width = _r(JSONInteger())
+        simulation_max_repetitions = _r(JSONInteger())
+        simulation_max_pairs = _r(JSONInteger())
+        tolerance_min = num()
 
     class LimitsInfoSchema(StrictSchema):
         """The limits this service enforces."""
@@ -600,6 +1127,7 @@ def build_schemas(limits: Limits) -> Schemas:
         max_grid_points = _r(JSONInteger())
         max_layers = _r(JSONInteger())
         max_depth = _r(JSONInteger())
+        max_simulation_size = _r(JSONInteger())
         max_formula_length = _r(JSONInteger())
         max_formula_params = _r(JSONInteger())
         work_budget = num()
