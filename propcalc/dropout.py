@@ -46,6 +46,7 @@ from scipy import optimize
 from .activations import Activation
 from .criticality import TRAINABLE_DEPTH_FACTOR, depth_scale, variance_fixed_points
 from .errors import (
+    ComputationError,
     InvalidParameterError,
     check_finite,
     check_int,
@@ -179,6 +180,10 @@ def _correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
                              rule: QuadratureRule) -> tuple[float, float, str]:
     """(c*, C'(c*), how) for C(c) = (sw E[phi phi] + sb) / q with C(1) <= 1."""
 
+    if q <= 0.0:
+        raise ComputationError("the variance collapses to 0 here, so the correlation map is "
+                               "undefined; give the inputs a positive mean square or add bias")
+
     def gap(c: float) -> float:
         return (sw * float(pair_expectation(act, c, q, rule)) + sb) / q - c
 
@@ -196,6 +201,10 @@ def _correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
         # C(0) = 0 (odd phi, no bias) and C convex with C(1) < 1: c* = 0
         c_star = 0.0
         how = "C(0) = 0 and C(c) < c on (0, 1]: c* = 0"
+    elif gap(hi) >= 0.0:
+        # C(c) > c all the way up to 1 - 1e-13: the fixed point is within rounding of 1
+        c_star = hi
+        how = f"C(c) > c up to c = {hi:.15g}: c* is within 1e-13 of 1"
     else:
         c_star = float(optimize.brentq(gap, 0.0, hi, xtol=1e-15, rtol=4e-15, maxiter=200))
         how = f"Brent's method on C(c) - c over [0, {hi:.15g}]"

@@ -315,13 +315,16 @@ def _fixed_points_newton(act: Activation, omega: float, tau: float,
     def residual(v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         mu, theta = float(v[0]), float(np.clip(v[1], -690.0, 690.0))
         nu = math.exp(theta)
-        mu_n, nu_n = (float(x) for x in mean_variance_map(act, mu, nu, omega, tau, rule))
-        nu_n = max(nu_n, 1e-300)
-        j = mean_variance_jacobian(act, mu, nu, omega, tau, rule)
-        r = np.array([mu_n - mu, math.log(nu_n) - theta])
-        jr = np.array([[j[0, 0] - 1.0, j[0, 1] * nu],
-                       [j[1, 0] / nu_n, j[1, 1] * nu / nu_n - 1.0]])
-        return r, jr
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            mu_n, nu_n = (float(x) for x in mean_variance_map(act, mu, nu, omega, tau, rule))
+            nu_n = max(nu_n, 1e-300) if math.isfinite(nu_n) else 1e300
+            j = mean_variance_jacobian(act, mu, nu, omega, tau, rule)
+            r = np.array([mu_n - mu, math.log(nu_n) - theta])
+            jr = np.array([[j[0, 0] - 1.0, j[0, 1] * nu],
+                           [j[1, 0] / nu_n, j[1, 1] * nu / nu_n - 1.0]])
+        # far from any fixed point the scaled Jacobian can overflow: keep it finite for the solver
+        return np.nan_to_num(r, posinf=1e300, neginf=-1e300), np.nan_to_num(
+            jr, posinf=1e300, neginf=-1e300)
 
     found: list[tuple[float, float]] = []
     for mu0, nu0 in starts:

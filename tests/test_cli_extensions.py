@@ -540,19 +540,11 @@ def test_module_docstring_lists_every_subcommand():
 # ---------------------------------------------------------------------------------------------
 # engine problems seen from the command line (see the report)
 # ---------------------------------------------------------------------------------------------
-@pytest.mark.xfail(strict=True, raises=ValueError, reason="engine: dropout_propagation's "
-                   "correlation fixed point brackets [0, 1] with f(0), f(1) of one sign when "
-                   "sigma_b2 / sigma_w2 is huge (step, sigma_w2 = 1e-5, sigma_b2 = 1e4, keep "
-                   "rate 1): scipy's brentq raises ValueError; see report")
 def test_dropout_step_with_a_dominant_bias_is_reported_not_raised():
     code, _, err = run("dropout", "step", "-w", "1e-5", "-b", "1e4", "--keep-rate", "1")
     assert code in (0, 1) and err.count("\n") <= 1
 
 
-@pytest.mark.xfail(strict=True, raises=RuntimeWarning, reason="engine: self_normalization's "
-                   "Newton residual divides by nu~ clipped to 1e-300 and overflows (linear, "
-                   "omega = 1, tau = 1.5): a RuntimeWarning on stderr (an error under "
-                   "pytest's warnings-as-errors); see report")
 def test_selfnorm_linear_root_finder_is_warning_free():
     code, _, err = run("selfnorm", "linear", "--omega", "1", "--tau", "1.5")
     assert code == 0 and err == ""

@@ -523,9 +523,6 @@ def test_422_computation_failed(client, path, body, fragment):
     assert fragment in got["detail"]
 
 
-@pytest.mark.xfail(strict=True, reason="engine: dropout_propagation brackets the correlation "
-                   "fixed point on [0, 1] with one sign at both ends when sigma_b2 / sigma_w2 is "
-                   "huge: scipy's brentq raises ValueError, a 500; see report")
 def test_dropout_step_with_a_dominant_bias_is_not_a_server_error(client):
     resp = client.post("/v1/dropout", json={"activation": "step", "sigma_w2": 1e-5,
                                             "sigma_b2": 1e4, "keep_rate": 1})
