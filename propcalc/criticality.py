@@ -65,6 +65,7 @@ __all__ = [
     "edge_of_chaos_at_bias",
     "edge_of_chaos_line",
     "edge_of_chaos_line_arrays",
+    "gradient_growth",
     "depth_scale",
 ]
 
@@ -543,7 +544,7 @@ def propagation(act: Activation, sigma_w2: float, sigma_b2: float, depth: int | 
                      "signal no depth scale applies: lower sigma_w2")
         return Propagation(q_star=None, chi_q=None, xi_q=None, chi_1=c1, c_star=None, chi_c=None,
                            xi_c=None, phase="unbounded variance", trainable_depth=None,
-                           gradient_growth=_power(c1, depth), edge_approach=None,
+                           gradient_growth=gradient_growth(c1, depth), edge_approach=None,
                            notes=tuple(notes), **common)
 
     fp = fps.reached
@@ -595,19 +596,23 @@ def propagation(act: Activation, sigma_w2: float, sigma_b2: float, depth: int | 
         notes.append(f"trainable depth: {_TRAINABLE_RULE}")
     return Propagation(q_star=q, chi_q=chi_q, xi_q=xi_q, chi_1=c1, c_star=float(c_star),
                        chi_c=float(chi_c), xi_c=float(xi_c), phase=phase,
-                       trainable_depth=float(trainable), gradient_growth=_power(c1, depth),
+                       trainable_depth=float(trainable), gradient_growth=gradient_growth(c1, depth),
                        edge_approach=edge, notes=tuple(notes), **common)
 
 
-def _power(base: float, depth: int | None) -> float | None:
+def gradient_growth(chi_1: float, depth: int | None) -> float | None:
+    """chi_1^depth without overflow (inf past 1e308; None without a depth).
+
+    Schoenholz et al. 2017: the squared gradient norm changes by chi_1 per layer.
+    """
     if depth is None:
         return None
-    if base == 0.0:
+    if chi_1 == 0.0:
         return 0.0
-    log = depth * math.log(base) if math.isfinite(base) else math.inf
-    if log > 709.0:
+    if not math.isfinite(chi_1):
         return math.inf
-    return math.exp(log)
+    log = depth * math.log(chi_1)
+    return math.inf if log > 709.0 else math.exp(log)
 
 
 # -------------------------------------------------------------------------------------------

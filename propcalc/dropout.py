@@ -44,7 +44,12 @@ import numpy as np
 from scipy import optimize
 
 from .activations import Activation
-from .criticality import TRAINABLE_DEPTH_FACTOR, depth_scale, variance_fixed_points
+from .criticality import (
+    TRAINABLE_DEPTH_FACTOR,
+    depth_scale,
+    gradient_growth,
+    variance_fixed_points,
+)
 from .errors import (
     ComputationError,
     InvalidParameterError,
@@ -165,17 +170,6 @@ class DropoutSweep:
                 "reports": [r.to_dict() for r in self.reports]}
 
 
-def _power(base: float, depth: int | None) -> float | None:
-    if depth is None:
-        return None
-    if base == 0.0:
-        return 0.0
-    if not math.isfinite(base):
-        return math.inf
-    log = depth * math.log(base)
-    return math.inf if log > 709.0 else math.exp(log)
-
-
 def _correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
                              rule: QuadratureRule) -> tuple[float, float, str]:
     """(c*, C'(c*), how) for C(c) = (sw E[phi phi] + sb) / q with C(1) <= 1."""
@@ -287,7 +281,7 @@ def dropout_propagation(act: Activation, sigma_w2: float, sigma_b2: float, keep_
         c1 = (sw * m2 + sb) / q if q > 0 else rho
         notes.append(f"with dropout C(1) = {c1:.6g} < 1: c = 1 is not a fixed point, xi_c is "
                      "finite and there is no edge of chaos (Schoenholz et al. 2017)")
-    grad = _power(chi1, depth)
+    grad = gradient_growth(chi1, depth)
     if depth is None:
         verdict, ok = "no depth given", None
     elif math.isinf(trainable):

@@ -94,7 +94,7 @@ from typing import Any
 import numpy as np
 from scipy import special
 
-from .criticality import TRAINABLE_DEPTH_FACTOR, depth_scale
+from .criticality import TRAINABLE_DEPTH_FACTOR, depth_scale, gradient_growth
 from .errors import InvalidParameterError, check_int, check_nonnegative, check_positive
 from .quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation, legendre_rule
 
@@ -448,15 +448,6 @@ class MaxoutPropagation:
         }
 
 
-def _power(base: float, depth: int | None) -> float | None:
-    if depth is None:
-        return None
-    if base == 0.0:
-        return 0.0
-    log = depth * math.log(base)
-    return math.inf if log > 709.0 else math.exp(log)
-
-
 def maxout_propagation(k: int, sigma_w2: float | None = None, sigma_b2: float = 0.0,
                        depth: int | None = None, q_input: float = 1.0,
                        rule: QuadratureRule = DEFAULT_RULE) -> MaxoutPropagation:
@@ -531,7 +522,7 @@ def maxout_propagation(k: int, sigma_w2: float | None = None, sigma_b2: float = 
     if kk >= 2:
         notes.append("maxout has no chaotic phase with a finite variance: chi_1 = sigma_w2 > 1 "
                      "forces V(q)/q = sigma_w2 M2 > 1")
-    growth_grad = _power(chi1, depth)
+    growth_grad = gradient_growth(chi1, depth)
     if depth is None:
         verdict, ok = "no depth given", None
     elif phase == "unbounded variance":
