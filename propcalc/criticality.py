@@ -47,6 +47,7 @@ from .maps import (
     variance_map,
     variance_map_slope,
 )
+from .hermite import SERIES_PASSES, series_fixed_points
 from .quadrature import DEFAULT_RULE, QuadratureRule
 
 __all__ = [
@@ -451,6 +452,23 @@ def correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
                            f"(bracket [{c:.17g}, {hi:.17g}])")
 
 
+def _chaotic_fixed_point(act: Activation, sw: float, sb: float, q: float,
+                         rule: QuadratureRule) -> tuple[float, float]:
+    """c* and C'(c*): from the Hermite series when its rigorous tail bound allows, else 2-D.
+
+    The series (propcalc.hermite) needs only 1-D integrals; it is used with the
+    default rule for activations at their own feature scale 1, and gives way to
+    :func:`correlation_fixed_point` for c* near 1, large q or steep formulas.
+    """
+    if rule == DEFAULT_RULE and act.scale == 1.0 and not act.has_jumps:
+        kmax, series_rule = SERIES_PASSES[0]
+        c, s, ok = series_fixed_points(act, np.array([sw]), np.array([sb]), np.array([q]),
+                                       kmax, series_rule)
+        if bool(ok[0]):
+            return float(c[0]), float(s[0])
+    return correlation_fixed_point(act, sw, sb, q, rule)
+
+
 def _cubic_root(a: float, ga: float, da: float, d1: float) -> float | None:
     """Smallest root in (a, 1) of the cubic Hermite interpolant of g with g(1) = 0, g'(1) = d1."""
     h = 1.0 - a
@@ -583,7 +601,7 @@ def propagation(act: Activation, sigma_w2: float, sigma_b2: float, depth: int | 
     elif fps.status == "collapse":
         c_star, chi_c = 1.0, c1
     else:
-        c_star, chi_c = correlation_fixed_point(act, sw, sb, q, rule)
+        c_star, chi_c = _chaotic_fixed_point(act, sw, sb, q, rule)
 
     xi_c = math.inf if phase == "edge of chaos" else depth_scale(chi_c)
     if fps.status == "collapse" and phase != "edge of chaos":

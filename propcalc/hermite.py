@@ -1,0 +1,156 @@
+"""The Hermite (Mehler) series of the correlation map, for fast chaotic fixed points.
+
+With a_k the Hermite coefficients of phi(sqrt(q) z), Mehler's formula gives
+``E[phi(u1) phi(u2)] = sum_k a_k^2 c^k`` for an equal-variance pair with
+correlation c (the dual activation of Daniely, Frostig & Singer 2016,
+section 6). Every term is >= 0 and, by Parseval, the terms sum to E[phi^2],
+so the truncation error of the series is bounded rigorously by what the
+first K terms leave of E[phi^2]. Where that bound is small (c* not too close
+to 1, moderate q) the chaotic fixed point c* and C'(c*) follow from a
+polynomial at the cost of one set of 1-D integrals; elsewhere callers fall
+back to the 2-D quadrature.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .activations import Activation
+from .errors import ComputationError
+from .quadrature import QuadratureRule, rule_nodes
+
+__all__ = ["SERIES_PASSES", "hermite_coefficients", "series_fixed_points"]
+
+Array = np.ndarray
+
+#: (terms, 1-D rule) of the Hermite series: a first pass, and a longer one for slow decay.
+#: Panels of 0.5 (0.25) hold about 1.6 (1.3) oscillations of h_160 (h_480): 16 nodes resolve them.
+SERIES_PASSES = ((160, QuadratureRule(n_per_panel=16, panel_width=0.5, z_max=10.0)),
+                  (480, QuadratureRule(n_per_panel=16, panel_width=0.25, z_max=10.0)))
+SERIES_CHUNK = 128
+
+
+def hermite_coefficients(act: Activation, q: Array, kmax: int,
+                          rule: QuadratureRule) -> tuple[Array, Array]:
+    """b_k = a_k^2 with a_k = E[phi(sqrt(q) z) He_k(z)] / sqrt(k!), k = 0..kmax, and E[phi^2].
+
+    The orthonormal Hermite polynomials come from the stable three-term
+    recurrence h_{k+1} = (z h_k - sqrt(k) h_{k-1}) / sqrt(k + 1); the 1-D
+    integrals use composite Gauss-Legendre panels (16 nodes each, split at
+    the breakpoints, graded at large q) fine enough for h_kmax.
+    """
+    n = q.size
+    b = np.empty((n, kmax + 1))
+    m2 = np.empty(n)
+    order = np.argsort(q, kind="stable")
+    roots = np.sqrt(np.arange(kmax + 1, dtype=float))
+    for start in range(0, n, SERIES_CHUNK):
+        sel = order[start:start + SERIES_CHUNK]
+        qs = q[sel]
+        x, w = rule_nodes(np.zeros(qs.size), qs, act.breakpoints, rule)
+        with np.errstate(over="ignore", invalid="ignore"):
+            f = act.value(x)
+        if not np.all(np.isfinite(f)):
+            raise ComputationError(f"{act.label}(x) is not finite at a quadrature node")
+        z = x / np.sqrt(qs)[:, None]
+        wf = w * f
+        m2[sel] = np.einsum("ij,ij->i", wf, f)
+        h_prev = np.ones_like(z)
+        h = z.copy()
+        out = np.empty((qs.size, kmax + 1))
+        out[:, 0] = wf.sum(axis=1)
+        out[:, 1] = np.einsum("ij,ij->i", wf, h)
+        for k in range(1, kmax):
+            h_prev *= -roots[k]
+            h_prev += z * h
+            h_prev /= roots[k + 1]
+            h, h_prev = h_prev, h
+            out[:, k + 1] = np.einsum("ij,ij->i", wf, h)
+        b[sel] = out * out
+    return b, m2
+
+
+def series_fixed_points(act: Activation, sw: Array, sb: Array, q: Array, kmax: int = 160,
+                         rule: QuadratureRule = SERIES_PASSES[0][1]
+                         ) -> tuple[Array, Array, Array]:
+    """Chaotic (c*, C'(c*)) from the Hermite (Mehler) series of the correlation map.
+
+    With a_k the Hermite coefficients of phi(sqrt(q*) z),
+    ``E[phi(u1) phi(u2)] = sum_k a_k^2 c^k`` (Mehler's formula; the dual
+    activation of Daniely, Frostig & Singer 2016, section 6), so
+    ``C(c) = (sigma_w2 sum_k b_k c^k + sigma_b2) / V(q*)`` and
+    ``C'(c) = sigma_w2 sum_k k b_k c^(k-1) / V(q*)`` are polynomials once the
+    b_k = a_k^2 are known (1-D integrals). Newton's method from c = 0 on the
+    convex C(c) - c then converges monotonically to c*.
+
+    Truncation after K = kmax terms is bounded rigorously because every b_k
+    >= 0 and, by Parseval, ``sum_k b_k = E[phi^2]``: the neglected part of C
+    is at most ``sigma_w2 c^(K+1) D / V`` and that of C' at most
+    ``sigma_w2 (K+1) c^K D / V`` (for c <= 0.99), with D = E[phi^2] - sum_(k<=K)
+    b_k. A point is accepted when the first bound is below 1e-15 (1 - C'(c*))
+    (so c* moves by less than 1e-15) and the second below 1e-12 C'(c*);
+    others (c* close to 1, where the series converges slowly) are returned
+    with ``ok = False``.
+
+    Returns
+    -------
+    c_star, chi_c, ok : ndarray
+    """
+    b, m2 = hermite_coefficients(act, q, kmax, rule)
+    k = np.arange(kmax + 1, dtype=float)
+    v = sw * m2 + sb
+    scale = sw / v
+    n = q.size
+
+    def value_and_slope(cc: Array, rows: Array) -> tuple[Array, Array]:
+        with np.errstate(under="ignore"):
+            pw = cc[:, None] ** k  # 0**0 = 1
+        br = b[rows]
+        p = np.einsum("ij,ij->i", br, pw)
+        dp = np.einsum("ij,ij->i", br[:, 1:] * k[1:], pw[:, :-1])
+        return (sw[rows] * p + sb[rows]) / v[rows], scale[rows] * dp
+
+    rows = np.arange(n)
+    val0, slope0 = value_and_slope(np.zeros(n), rows)
+    zero = np.abs(val0) <= 1e-15  # as the engine: C(0) = 0 means c* = 0
+    # bracket c* on a grid of c in [0, 1): g > 0 left of c*, g < 0 between c* and 1
+    grid = np.arange(64) / 64.0
+    with np.errstate(under="ignore"):
+        powers = grid[None, :] ** k[:, None]
+    g_grid = (sw[:, None] * (b @ powers) + sb[:, None]) / v[:, None] - grid
+    below = g_grid < 0
+    found = below.any(axis=1) & ~zero
+    first = np.argmax(below, axis=1)
+    c = np.where(found, grid[np.maximum(first - 1, 0)], 0.0)
+    slope = slope0.copy()
+    done = ~found
+    active = rows[found]
+    for _ in range(60):  # Newton from the left of the root: monotone for a convex g
+        if active.size == 0:
+            break
+        val, sl = value_and_slope(c[active], active)
+        slope[active] = sl
+        g, dg = val - c[active], sl - 1.0
+        with np.errstate(divide="ignore", invalid="ignore"):
+            step = -g / dg
+        bad = ~np.isfinite(step) | (dg >= 0)  # cannot happen left of the root of a convex g
+        # the engine's stopping rule: |g| at the rounding floor of C, or a step below 1e-15
+        at_root = ~bad & (np.abs(g) <= 4e-15)
+        new = np.clip(c[active] + np.where(bad | at_root, 0.0, step), 0.0, 1.0)
+        small = ~bad & ~at_root & (np.abs(new - c[active]) <= 1e-15)
+        c[active] = new
+        if np.any(small):  # C'(c*) at the returned c*, as the engine does
+            slope[active[small]] = value_and_slope(new[small], active[small])[1]
+        done[active[at_root | small]] = True
+        active = active[~(bad | at_root | small)]  # a bad step: left to the 2-D solver
+    converged = done & found & np.isfinite(c) & np.isfinite(slope)
+    defect = np.maximum(m2 - b.sum(axis=1), 0.0) + 1e-13 * m2  # plus coefficient rounding
+    with np.errstate(over="ignore", invalid="ignore", under="ignore"):
+        tail_c = scale * c ** (kmax + 1) * defect
+        tail_slope = scale * (kmax + 1) * c ** kmax * defect
+    ok = (converged & (c <= 0.99) & (tail_c <= 1e-12 * np.abs(1.0 - slope))
+          & (tail_slope <= 1e-11 * np.abs(slope)) & (m2 - b.sum(axis=1) >= -1e-12 * m2))
+    c = np.where(zero, 0.0, c)
+    slope = np.where(zero, slope0, slope)
+    ok |= zero & np.isfinite(slope0)
+    return c, slope, ok
