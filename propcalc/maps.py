@@ -37,6 +37,7 @@ import numpy as np
 
 from .activations import Activation
 from .errors import InvalidParameterError, check_nonnegative, check_positive
+from .hermite import SERIES_PASSES, hermite_coefficients
 from .quadrature import DEFAULT_RULE, QuadratureRule, bivariate_expectation, gaussian_expectation
 
 __all__ = [
@@ -309,7 +310,35 @@ def correlation_map(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
     vq = float(variance_map(act, qf, sw, sb, rule))
     if vq == 0.0:
         return np.ones_like(_c_array(c))
-    return (sw * pair_expectation(act, c, qf, rule) + sb) / vq
+    ca = _c_array(c)
+    if ca.size >= 16 and qf > 0 and rule == DEFAULT_RULE and act.scale == 1.0 and not act.has_jumps:
+        return (sw * _pair_by_series(act, ca, qf, rule) + sb) / vq
+    return (sw * pair_expectation(act, ca, qf, rule) + sb) / vq
+
+
+def _pair_by_series(act: Activation, ca: Array, q: float, rule: QuadratureRule) -> Array:
+    """E[phi(u1) phi(u2)] from the Hermite series where its tail bound is below 1e-14 E[phi^2].
+
+    Mehler's formula ``sum_k a_k^2 c^k`` (see propcalc.hermite): every term is
+    >= 0 and they sum to E[phi^2], so after K terms the error at c is at most
+    ``|c|^(K+1) (E[phi^2] - sum_(k<=K) a_k^2)``. Points where that bound is not
+    small enough (|c| near 1) are done by the 2-D rule.
+    """
+    kmax, series_rule = SERIES_PASSES[0]
+    b, m2 = hermite_coefficients(act, np.array([q]), kmax, series_rule)
+    b, m2 = b[0], float(m2[0])
+    rest = m2 - float(b.sum())
+    if not (math.isfinite(rest) and rest >= -1e-12 * m2 and m2 > 0):
+        return pair_expectation(act, ca, q, rule)
+    defect = max(rest, 0.0) + 1e-13 * m2  # plus the rounding of the coefficients
+    with np.errstate(under="ignore"):
+        bound = np.abs(ca) ** (kmax + 1) * defect
+    good = bound <= 1e-14 * m2
+    out = np.empty_like(ca)
+    out[good] = np.polynomial.polynomial.polyval(ca[good], b)
+    if np.any(~good):
+        out[~good] = pair_expectation(act, ca[~good], q, rule)
+    return out
 
 
 def correlation_map_and_slope(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
