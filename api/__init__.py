@@ -7,7 +7,9 @@ Endpoints under ``/v1`` (see ``/openapi.json`` and ``docs/service.md``):
 activation list and profiles, propagation reports, the edge of chaos,
 initialisation plans and sampled maps; dropout, maxout, mean-variance fixed
 points and alpha dropout, Jacobian spectra and the isometry advice, the
-softmax output layer, and finite-width simulations; ``/health``. Run it locally with
+softmax output layer, and finite-width simulations; PNG/SVG images of the
+phase diagram, the variance and correlation maps and the depth scales
+(``/v1/plots/...``, with the ``plot`` extra); ``/health``. Run it locally with
 ``propcalc serve``; in production with gunicorn (the command is in
 ``docs/service.md``).
 """

@@ -12,6 +12,7 @@ from ._cache import LRUCache
 from ._config import DEFAULTS, limits_from_config
 from ._json import StrictJSONProvider
 from ._openapi import build_openapi
+from ._plots import Plots
 from ._problems import handle_exception
 from ._routes import ServiceState, make_blueprint
 from ._schemas import build_schemas
@@ -31,8 +32,8 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         e.g. ``PROPCALC_WORK_BUDGET=5000``). Keys: MAX_CONTENT_LENGTH,
         MAX_ARRAY_LENGTH, MAX_GRID_POINTS, MAX_LAYERS, MAX_DEPTH,
         MAX_SIMULATION_SIZE, MAX_FORMULA_LENGTH, MAX_FORMULA_PARAMS, WORK_BUDGET, WALL_CLOCK_LIMIT,
-        RESULT_CACHE_ENTRIES, RESULT_CACHE_BYTES, ACTIVATION_CACHE_ENTRIES,
-        VALIDATE_RESPONSES, GET_MAX_AGE, and any Flask setting.
+        RESULT_CACHE_ENTRIES, RESULT_CACHE_BYTES, PLOT_CACHE_ENTRIES, PLOT_CACHE_BYTES,
+        ACTIVATION_CACHE_ENTRIES, VALIDATE_RESPONSES, GET_MAX_AGE, and any Flask setting.
 
     Returns
     -------
@@ -58,13 +59,16 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     limits = limits_from_config(app.config)
     app.json = StrictJSONProvider(app)
     schemas = build_schemas(limits)
+    computations = Computations(limits, app.config["ACTIVATION_CACHE_ENTRIES"])
     st = ServiceState(
         limits=limits,
         schemas=schemas,
-        computations=Computations(limits, app.config["ACTIVATION_CACHE_ENTRIES"]),
+        computations=computations,
         results=LRUCache(app.config["RESULT_CACHE_ENTRIES"], app.config["RESULT_CACHE_BYTES"]),
         validate_responses=bool(app.config["VALIDATE_RESPONSES"]),
         get_max_age=app.config["GET_MAX_AGE"],
+        plots=Plots(computations),
+        images=LRUCache(app.config["PLOT_CACHE_ENTRIES"], app.config["PLOT_CACHE_BYTES"]),
     )
     app.extensions["propcalc_api"] = st
     app.register_blueprint(make_blueprint())

@@ -40,7 +40,24 @@ simulation                  50 + 1.5 depth (mean-field trajectory)
                             + 3e-5 width^2 depth repetitions (1 + n_pairs / 100);
                             refused first if width^2 depth repetitions exceeds
                             MAX_SIMULATION_SIZE
+one image (any figure)      300 to build and render it (PNG at 100 dpi or SVG),
+                            plus 40 ((dpi / 100)^2 - 1) for PNG above 100 dpi
+phase diagram               the image + 1 per grid point (5 for an activation
+                            with a jump, such as step) + 200 with a point
+variance-map image          the image + 200 + 0.5 per sample and per
+                            iteration drawn
+correlation-map image       the image + 200 + k(q*) per sample (as above)
+depth-scales image          the image + 150 (the critical sigma_w2) + the
+                            per-point cost of the phase diagram for
+                            n_points + 28 samples + 200 with a point
 ==========================  =====================================================
+
+The per-point cost of a phase diagram is its typical cost over the default
+window (sigma_w2 in [0.1, 4], sigma_b2 in [0, 0.5]): measured between 0.07 and
+1.3 ms per point for the built-ins without a jump (tanh 0.35, hard_tanh 1.26)
+and 3 to 4.4 ms for step. It is not a bound: narrow bands of (sigma_w2,
+sigma_b2) far outside that window, where c* lies very close to 1, cost up to
+50 ms per point; the wall-clock guard backs the estimate there.
 
 Activations given as formulas cost twice as much (``FORMULA_FACTOR``).
 
@@ -66,6 +83,8 @@ __all__ = [
     "FORMULA_FACTOR",
     "COSTS",
     "correlation_point_cost",
+    "plot_image_cost",
+    "sweep_point_cost",
     "initial_loss_cost",
     "max_probability_cost",
     "simulation_cost",
@@ -110,6 +129,11 @@ COSTS = {
     "simulation_layer_repetition": 0.1,
     "simulation_element": 3e-5,
     "simulation_pairs_scale": 100.0,
+    "plot_image": 300.0,
+    "plot_png_dpi": 40.0,
+    "sweep_point": 1.0,
+    "sweep_point_jumps": 5.0,
+    "depth_scales_extra_points": 28.0,
 }
 
 
@@ -117,6 +141,17 @@ def correlation_point_cost(q: float, with_slope: bool) -> float:
     """Estimated units for one c value of the correlation map at variance q."""
     k = COSTS["correlation_base"] * 2.0 ** (math.log10(max(q, 1.0)) / 2.0)
     return k * (1.0 + (COSTS["correlation_slope_factor"] if with_slope else 0.0))
+
+
+def plot_image_cost(fmt: str, dpi: float) -> float:
+    """Estimated units to build and render one figure (PNG grows with the pixel count)."""
+    extra = max(0.0, (dpi / 100.0) ** 2 - 1.0) if fmt == "png" else 0.0
+    return COSTS["plot_image"] + COSTS["plot_png_dpi"] * extra
+
+
+def sweep_point_cost(has_jumps: bool) -> float:
+    """Estimated units per grid point of a sweep (phase diagram, depth scales)."""
+    return COSTS["sweep_point_jumps"] if has_jumps else COSTS["sweep_point"]
 
 
 def initial_loss_cost(logit_variance: float) -> float:

@@ -21,7 +21,8 @@ __all__ = ["DEFAULTS", "Limits", "limits_from_config", "VARIANCE_MAX", "MAP_Q_MA
            "SMALL_VARIANCE_MIN", "ALPHA_PRIME_ABS_MAX", "SPECTRAL_VARIANCE_MAX", "MAX_CLASSES",
            "LOGIT_VARIANCE_MAX", "MARGIN_MIN", "MARGIN_MAX", "MAX_SAMPLES", "MC_MAX_ELEMENTS",
            "SEED_MAX", "SIMULATION_MAX_WIDTH", "SIMULATION_MAX_REPETITIONS",
-           "SIMULATION_MAX_PAIRS", "TOLERANCE_MIN"]
+           "SIMULATION_MAX_PAIRS", "TOLERANCE_MIN", "PLOT_FORMATS", "PLOT_DPI_MIN", "PLOT_DPI_MAX",
+           "PLOT_DPI_DEFAULT", "PHASE_GRID_MAX", "XI_MAX_MAX"]
 
 # Fixed parameter ranges (documented; not configurable). Beyond them the mean-field numbers
 # are either meaningless for a real network or outside the engine's tested range.
@@ -78,6 +79,18 @@ SIMULATION_MAX_REPETITIONS = 1000
 SIMULATION_MAX_PAIRS = 256
 #: ... and a deviation tolerance in [TOLERANCE_MIN, 1].
 TOLERANCE_MIN = 1e-6
+#: image formats of the /v1/plots endpoints (propcalc.plots.FORMATS) ...
+PLOT_FORMATS = ("png", "svg")
+#: ... and the resolution of PNG images, in [PLOT_DPI_MIN, PLOT_DPI_MAX] (default 100: the
+#: figures are 7.2 x 5.2 or 6.4 x 5.2 inches, so 720 x 520 pixels)
+PLOT_DPI_MIN = 50
+PLOT_DPI_MAX = 300
+PLOT_DPI_DEFAULT = 100
+#: points per axis of a phase diagram are at most this (propcalc.plots' own bound; also at
+#: most MAX_GRID_POINTS)
+PHASE_GRID_MAX = 2000
+#: the top of the depth-scales axis (xi_max) is at most this
+XI_MAX_MAX = 1e8
 
 DEFAULTS: dict[str, Any] = {
     # Flask's own key: larger bodies get 413 before they are read.
@@ -102,6 +115,9 @@ DEFAULTS: dict[str, Any] = {
     # in-process LRU of response bodies
     "RESULT_CACHE_ENTRIES": 512,
     "RESULT_CACHE_BYTES": 32 * 1024 * 1024,
+    # in-process LRU of images (PNG/SVG bodies: 40 to 400 kB each), apart from the JSON ones
+    "PLOT_CACHE_ENTRIES": 128,
+    "PLOT_CACHE_BYTES": 16 * 1024 * 1024,
     # parsed activations (formulas are parsed once)
     "ACTIVATION_CACHE_ENTRIES": 128,
     # load every response body back through its response schema (tests; costs time)
@@ -112,13 +128,14 @@ DEFAULTS: dict[str, Any] = {
 
 _INT_KEYS = ("MAX_CONTENT_LENGTH", "MAX_ARRAY_LENGTH", "MAX_GRID_POINTS", "MAX_LAYERS",
              "MAX_DEPTH", "MAX_SIMULATION_SIZE", "MAX_FORMULA_LENGTH", "MAX_FORMULA_PARAMS",
-             "RESULT_CACHE_ENTRIES", "RESULT_CACHE_BYTES", "ACTIVATION_CACHE_ENTRIES",
-             "GET_MAX_AGE")
+             "RESULT_CACHE_ENTRIES", "RESULT_CACHE_BYTES", "PLOT_CACHE_ENTRIES",
+             "PLOT_CACHE_BYTES", "ACTIVATION_CACHE_ENTRIES", "GET_MAX_AGE")
 # MAX_SIMULATION_SIZE >= 8: the smallest simulation (width 2, depth 1, 2 repetitions)
 _MINIMA = {"MAX_CONTENT_LENGTH": 1024, "MAX_ARRAY_LENGTH": 1, "MAX_GRID_POINTS": 2,
            "MAX_LAYERS": 1, "MAX_DEPTH": 1, "MAX_SIMULATION_SIZE": 8, "MAX_FORMULA_LENGTH": 1,
            "MAX_FORMULA_PARAMS": 0, "RESULT_CACHE_ENTRIES": 0, "RESULT_CACHE_BYTES": 0,
-           "ACTIVATION_CACHE_ENTRIES": 0, "GET_MAX_AGE": 0}
+           "PLOT_CACHE_ENTRIES": 0, "PLOT_CACHE_BYTES": 0, "ACTIVATION_CACHE_ENTRIES": 0,
+           "GET_MAX_AGE": 0}
 
 
 @dataclass(frozen=True)
@@ -188,6 +205,8 @@ class Limits:
             "simulation_max_repetitions": SIMULATION_MAX_REPETITIONS,
             "simulation_max_pairs": SIMULATION_MAX_PAIRS,
             "tolerance_min": TOLERANCE_MIN,
+            "plot_dpi_min": PLOT_DPI_MIN,
+            "plot_dpi_max": PLOT_DPI_MAX,
         }
         return out
 

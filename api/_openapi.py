@@ -24,7 +24,7 @@ from ._problems import TYPE_COMPUTATION, TYPE_INVALID_FIELDS, TYPE_WORK_BUDGET
 from ._routes import BLUEPRINT, ENDPOINTS
 from ._schemas import Schemas
 
-__all__ = ["build_openapi", "DESCRIPTION"]
+__all__ = ["build_openapi", "DESCRIPTION", "IMAGE_CONTENT"]
 
 DESCRIPTION = """\
 Mean-field signal propagation for deep random networks (propcalc): activation
@@ -32,9 +32,11 @@ properties and gains, propagation reports (fixed points, chi_1, depth scales,
 phase), the edge-of-chaos line, per-layer initialisation plans, sampled
 variance/correlation maps, dropout, maxout networks, mean-variance fixed
 points (self-normalisation) and alpha dropout, Jacobian spectra and dynamical
-isometry, the softmax output layer at initialisation, and finite-width checks
-on seeded random networks (POST /v1/simulate). Infinite-width predictions at
-initialisation: check them on your own model.
+isometry, the softmax output layer at initialisation, finite-width checks
+on seeded random networks (POST /v1/simulate), and images (PNG or SVG) of
+the phase diagram, the variance and correlation maps and the depth scales
+(/v1/plots/...). Infinite-width predictions at initialisation: check them on
+your own model.
 
 **Conventions.** Fan-in scaling W_ij ~ N(0, sigma_w2 / fan_in), b_i ~ N(0,
 sigma_b2). JSON has no infinity: an infinite number (a depth scale exactly at
@@ -44,7 +46,8 @@ null. NaN never appears. Input numbers must be finite: the tokens NaN and
 Infinity are refused (400), so are numbers that overflow a double.
 Responses are canonical JSON (sorted keys, no spaces): the same request
 always gives the same bytes, with an ETag; GET requests answer If-None-Match
-with 304.
+with 304. Images are deterministic too (no dates or software tags in the
+files); their type comes from the format member or the Accept header.
 
 **Activations** are a built-in name ("tanh"), {"name": "leaky_relu",
 "params": {"slope": 0.1}}, or {"formula": "x * sigmoid(beta * x)",
@@ -54,7 +57,7 @@ with 304.
 responses list one entry per bad member, with a JSON pointer into the body
 (or the query parameter name) and a message naming the constraint and the
 value received. Problem types: about:blank (400, 404, 405 with an Allow
-header, 413, 415, 500), {invalid} (422), {budget} (422, the cost of the
+header, 406, 413, 415, 500, 501), {invalid} (422), {budget} (422, the cost of the
 request exceeds WORK_BUDGET or WALL_CLOCK_LIMIT, or a simulation exceeds
 MAX_SIMULATION_SIZE; "limit" names it) and
 {computation} (422, the engine could not produce a trustworthy number for
@@ -94,21 +97,38 @@ _PROBLEM_TEXT = {
     404: "No such resource (for activations: not a built-in name).",
     405: "Method not allowed; the Allow header lists the allowed ones.",
     413: "The body is larger than MAX_CONTENT_LENGTH.",
+    406: "The Accept header allows none of the image types the operation answers (image/png, "
+         "image/svg+xml), or not the one the format member asks for.",
     415: "Content-Type is not application/json.",
     422: "Invalid members (one entry per member, with a JSON pointer or parameter name), a "
          "request over the work budget, or a computation that could not produce a "
          "trustworthy result.",
     500: "Internal error (logged; quote the incident id).",
+    501: "The service cannot draw images where it runs: matplotlib (the 'plot' extra) is not "
+         "installed.",
+}
+
+#: the 200 content of the image operations: binary bodies (OpenAPI 3.1, section 4.8.14.3)
+IMAGE_CONTENT = {
+    "image/png": {"schema": {"type": "string", "format": "binary",
+                             "contentMediaType": "image/png"}},
+    "image/svg+xml": {"schema": {"type": "string", "contentMediaType": "image/svg+xml"}},
 }
 
 
-def _headers(limit_cache: bool) -> dict[str, Any]:
+def _headers(limit_cache: bool, image: bool = False) -> dict[str, Any]:
     out: dict[str, Any] = {
         "ETag": {"description": "strong entity tag of the body", "schema": {"type": "string"}},
     }
     if limit_cache:
         out["X-Propcalc-Cache"] = {"description": "hit or miss of the in-process result cache",
                                    "schema": {"type": "string", "enum": ["hit", "miss"]}}
+    if image:
+        out["Vary"] = {"description": "Accept: without a format member the Accept header "
+                                      "chooses the image type", "schema": {"type": "string"}}
+        out["Content-Disposition"] = {"description": "inline, with a file name such as "
+                                                     "phase-diagram.png",
+                                      "schema": {"type": "string"}}
     return out
 
 
@@ -155,6 +175,10 @@ def build_openapi(app: Flask, schemas: Schemas, limits: Limits) -> bytes:
                     "description": "OK",
                     "content": {"application/json": {"schema": getattr(schemas, ep.response)}},
                     "headers": _headers(ep.compute is not None) if ep.name != "health" else {},
+                } if not ep.image else {
+                    "description": "The image: PNG or SVG (see format and Accept)",
+                    "content": IMAGE_CONTENT,
+                    "headers": _headers(True, image=True),
                 },
             },
         }

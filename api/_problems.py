@@ -14,6 +14,9 @@ type                                   status  when
 about:blank                            400     body is not JSON / not an object (``detail``)
 about:blank                            404     no such path, or no such built-in activation
 about:blank                            405     method not allowed (``Allow`` header lists them)
+about:blank                            406     an image endpoint, and the Accept header allows
+                                               neither image/png nor image/svg+xml (or not the
+                                               ``format`` asked for)
 about:blank                            413     body larger than MAX_CONTENT_LENGTH
 about:blank                            415     Content-Type is not application/json
 ...:invalid-fields                     422     members fail validation (one entry per field)
@@ -23,6 +26,7 @@ about:blank                            415     Content-Type is not application/j
 ...:computation-failed                 422     the engine could not produce a trustworthy number
                                                for these inputs (ComputationError)
 about:blank                            500     a bug: logged with a traceback under ``incident``
+about:blank                            501     an image endpoint without matplotlib installed
 =====================================  ======  =================================================
 
 :func:`handle_exception` is registered for every exception; nothing else in

@@ -3,7 +3,9 @@
 Views are thin: read the body or the query, load it through the request
 schema, look the canonical request up in the result cache, else run the
 computation under the wall-clock guard, and send canonical JSON with an
-ETag. Errors are raised, never built here (see :mod:`propcalc_api._problems`).
+ETag. The image endpoints do the same with PNG or SVG bytes (the format
+from the request or the Accept header) and their own cache. Errors are
+raised, never built here (see :mod:`propcalc_api._problems`).
 """
 
 from __future__ import annotations
@@ -22,13 +24,15 @@ from propcalc import builtin_names
 
 from ._budget import run_guarded
 from ._cache import LRUCache
-from ._config import Limits
+from ._config import PLOT_DPI_DEFAULT, Limits
 from ._json import canonical_dumps, strict_loads
+from ._plots import FORMAT_OF, MIMETYPES, Plots
 from ._problems import TYPE_INVALID_FIELDS, ErrorContext, Problem
 from ._schemas import Schemas
 from ._service import Computations
 
-__all__ = ["BLUEPRINT", "Endpoint", "ENDPOINTS", "ServiceState", "make_blueprint", "state"]
+__all__ = ["BLUEPRINT", "Endpoint", "ENDPOINTS", "ServiceState", "make_blueprint", "state",
+           "negotiate_format"]
 
 #: name of the blueprint (Flask endpoint names are "propcalc_api.<name>")
 BLUEPRINT = "propcalc_api"
@@ -61,6 +65,10 @@ class Endpoint:
     body_of_query : str or None
         For a GET form: the body schema its validated query is loaded through,
         so that both forms make the same canonical request.
+    image : bool
+        True for the image endpoints: ``compute`` names a :class:`Plots`
+        method, the body is PNG or SVG (``format`` or the Accept header), and
+        ``response`` is unused.
     """
 
     name: str
@@ -75,9 +83,32 @@ class Endpoint:
     statuses: tuple[int, ...]
     tag: str = "propagation"
     body_of_query: str | None = None
+    image: bool = False
 
 
 _POST_ERRORS = (400, 413, 415, 422, 500)
+_IMAGE_POST_ERRORS = (400, 406, 413, 415, 422, 500, 501)
+_IMAGE_GET_ERRORS = (304, 406, 422, 500, 501)
+_IMAGE_NOTE = (" The image is PNG or SVG: the member (query parameter) format chooses, else the "
+               "Accept header (image/png, image/svg+xml; PNG without an Accept header or when it "
+               "ranks both equally; 406 when it allows neither). The same request always gives "
+               "the same bytes and ETag.")
+_GET_NOTE = (" This GET form takes built-in activation names only (for browsers: <img src=...>);"
+             " it answers If-None-Match with 304.")
+
+
+def _image_endpoints(name: str, path: str, summary: str, description: str,
+                     schema: str) -> tuple[Endpoint, Endpoint]:
+    """The POST form and the GET (query) form of one image."""
+    rule = f"/v1/plots/{path}"
+    return (
+        Endpoint(f"{name}_plot", rule, "POST", summary, description + _IMAGE_NOTE,
+                 f"{schema}PlotRequest", None, "", name, _IMAGE_POST_ERRORS, "images",
+                 image=True),
+        Endpoint(f"{name}_plot_get", rule, "GET", summary + " (query form)",
+                 description + _IMAGE_NOTE + _GET_NOTE, None, f"{schema}PlotQuery", "", name,
+                 _IMAGE_GET_ERRORS, "images", body_of_query=f"{schema}PlotRequest", image=True),
+    )
 
 ENDPOINTS: tuple[Endpoint, ...] = (
     Endpoint("health", "/health", "GET", "Liveness",
@@ -184,6 +215,29 @@ ENDPOINTS: tuple[Endpoint, ...] = (
              "squared gradient norms, layer by layer, with +-2 standard-error bands. "
              "width^2 * depth * repetitions is at most MAX_SIMULATION_SIZE.",
              "SimulationRequest", None, "Simulation", "simulation", _POST_ERRORS, "simulation"),
+    *_image_endpoints(
+        "phase_diagram", "phase-diagram", "Phase diagram image",
+        "Ordered (chi_1 < 1) and chaotic (chi_1 > 1) regions over a sigma_w2 x sigma_b2 grid, "
+        "the edge-of-chaos line, labelled contours of xi_c and of the trainable depth 6 xi_c "
+        "(an empirical rule of Schoenholz et al. 2017), and your point when sigma_w2 is given. "
+        "Costs the image plus 1 work unit per grid point (5 for an activation with a jump).",
+        "PhaseDiagram"),
+    *_image_endpoints(
+        "variance_map", "variance-map", "Variance-map image",
+        "V(q) = sigma_w2 E[phi(sqrt(q) z)^2] + sigma_b2 against q (Poole et al. 2016) with the "
+        "identity, its fixed points (filled: attracting) and the layer-to-layer iteration from "
+        "q_1 = sigma_w2 q_input + sigma_b2.", "VarianceMap"),
+    *_image_endpoints(
+        "correlation_map", "correlation-map", "Correlation-map image",
+        "C(c) at the variance fixed point q* (Poole et al. 2016) with the identity, its fixed "
+        "points c = 1 and c*, and the slope chi_1 at c = 1 (Schoenholz et al. 2017).",
+        "CorrelationMap"),
+    *_image_endpoints(
+        "depth_scales", "depth-scales", "Depth-scales image",
+        "xi_q = -1 / ln chi_q and xi_c = -1 / ln C'(c*) against sigma_w2 at a fixed sigma_b2 "
+        "(Schoenholz et al. 2017), the edge of chaos marked where xi_c diverges, the trainable "
+        "depth about 6 xi_c on the right axis, and your point when sigma_w2 is given.",
+        "DepthScales"),
 )
 
 _NUMBER = re.compile(r"-?(?:0|[1-9][0-9]*)(?:\.[0-9]+)?(?:[eE][+-]?[0-9]+)?")
@@ -199,6 +253,8 @@ class ServiceState:
     results: LRUCache[bytes]
     validate_responses: bool
     get_max_age: int
+    plots: Plots | None = None
+    images: LRUCache[bytes] | None = None
     openapi: bytes = b""
     schema_instances: dict[type[Schema], Schema] = field(default_factory=dict)
 
@@ -312,6 +368,74 @@ def _send(body: bytes, conditional: bool, cache: str | None = None) -> Response:
 
 
 # ---------------------------------------------------------------------------------------------
+# images
+# ---------------------------------------------------------------------------------------------
+def negotiate_format(requested: str | None) -> str:
+    """The image format: the ``format`` member if given, else the best of the Accept header.
+
+    No Accept header (or ``*/*``) gives PNG. Raises a 406 problem when the
+    Accept header allows neither image/png nor image/svg+xml, or not the
+    format asked for.
+    """
+    accept = request.accept_mimetypes
+    header = request.headers.get("Accept", "")
+    offered = ", ".join(MIMETYPES.values())
+    if requested is not None:
+        mimetype = MIMETYPES[requested]
+        if accept and accept.quality(mimetype) <= 0:
+            raise Problem(406, f"format {requested!r} is {mimetype}, which the Accept header "
+                          f"{header[:120]!r} does not allow; this operation answers {offered}")
+        return requested
+    if not accept:
+        return "png"
+    best = accept.best_match(list(MIMETYPES.values()))
+    if best is None:
+        raise Problem(406, f"the Accept header {header[:120]!r} allows "
+                      f"neither of the image types this operation answers ({offered}); accept "
+                      "one of them or give format (png or svg)")
+    return FORMAT_OF[best]
+
+
+def _send_image(body: bytes, fmt: str, slug: str, conditional: bool, cache: str) -> Response:
+    resp = Response(body, status=200, mimetype=MIMETYPES[fmt])
+    resp.set_etag(_etag(body))
+    resp.headers["X-Propcalc-Cache"] = cache
+    resp.headers["Vary"] = "Accept"
+    resp.headers["Content-Disposition"] = f'inline; filename="{slug}.{fmt}"'
+    if conditional:
+        resp.headers["Cache-Control"] = f"public, max-age={state().get_max_age}"
+        resp.make_conditional(request)
+    return resp
+
+
+def _image_view(ep: Endpoint) -> Callable[..., Response]:
+    def view() -> Response:
+        st = state()
+        schemas = st.schemas
+        if ep.request is not None:
+            req = _load(getattr(schemas, ep.request), _read_json_object())
+        else:
+            req = _load(getattr(schemas, str(ep.query)), _read_query(), query=True)
+            req = _schema(getattr(schemas, str(ep.body_of_query))).load(req)
+        fmt = negotiate_format(req.pop("format", None))
+        if fmt == "svg":
+            req["dpi"] = PLOT_DPI_DEFAULT  # SVG ignores the resolution: one canonical request
+        key = (str(ep.compute), fmt, canonical_dumps(req))
+        assert st.plots is not None and st.images is not None
+        body = st.images.get(key)
+        hit = body is not None
+        if body is None:
+            fn = getattr(st.plots, str(ep.compute))
+            body = run_guarded(st.limits.wall_clock_limit, lambda: fn(req, fmt))
+            st.images.put(key, body)
+        return _send_image(body, fmt, ep.rule.rsplit("/", 1)[1], ep.method == "GET",
+                           "hit" if hit else "miss")
+
+    view.__name__ = ep.name
+    return view
+
+
+# ---------------------------------------------------------------------------------------------
 # views
 # ---------------------------------------------------------------------------------------------
 def _generic_view(ep: Endpoint) -> Callable[..., Response]:
@@ -381,7 +505,7 @@ def make_blueprint() -> Blueprint:
     special: dict[str, Callable[..., Response]] = {
         "health": _health, "limits": _limits, "activation_one": _activation_one}
     for ep in ENDPOINTS:
-        view = special.get(ep.name) or _generic_view(ep)
+        view = special.get(ep.name) or (_image_view(ep) if ep.image else _generic_view(ep))
         bp.add_url_rule(ep.rule, endpoint=ep.name, view_func=view, methods=[ep.method])
     bp.add_url_rule("/openapi.json", endpoint="openapi", view_func=_openapi, methods=["GET"])
     return bp

@@ -6,6 +6,10 @@ Subcommands::
     propcalc show ACT                 one activation: properties, gains, breakpoints
     propcalc report ACT -w W -b B     propagation report at (sigma_w2, sigma_b2)
     propcalc edge ACT                 the edge-of-chaos line (over q*, or at a fixed sigma_b2)
+    propcalc phase ACT --plot FILE    phase diagram over a sigma_w2 x sigma_b2 grid (an image)
+    propcalc depth-scales ACT --plot FILE
+                                      xi_q and xi_c against sigma_w2 at a fixed sigma_b2 (an
+                                      image)
     propcalc plan ACT --depth L       per-layer initialisation plan
     propcalc dropout ACT -w W --keep-rate R[,R...]
                                       propagation with dropout (one keep rate: report; several:
@@ -28,16 +32,37 @@ machines (the fields of the results' ``to_dict()``; ``maxout`` adds ``layer``
 and ``selfnorm`` adds ``alpha_dropout``, null unless asked for; ``isometry``
 gives ``{"spectrum", "advice"}`` and ``softmax`` ``{"initial_loss",
 "max_probability", "output_layer"}``). Errors are one line on stderr; exit
-status 2 for usage errors, 1 for computation failures.
+status 2 for usage errors, 1 for computation failures. ``-h`` writes the
+help to the output stream and returns 0.
+
+Pictures (the ``plot`` extra, matplotlib: ``pip install "propcalc[plot]"``):
+``--plot FILE`` writes a PNG or SVG image, the format taken from the
+extension (``.png`` or ``.svg``), and prints one line saying where it went
+(on stderr with ``--json``, so that stdout stays one JSON document). It is
+required by ``phase`` and ``depth-scales`` and optional on
+
+* ``report``: the phase diagram around the point, the point marked (and with
+  ``--depth`` the contour 6 xi_c = depth in bold); ``--plot-kind`` picks the
+  variance map, the correlation map or the depth scales of the point instead;
+* ``edge``: the phase diagram with the edge-of-chaos line (with
+  ``--sigma-b2``, the first critical point marked), over the window of
+  ``--sigma-w2-range`` / ``--sigma-b2-range`` / ``--grid``.
+
+Sweeps of many grid points show a progress bar on stderr when it is a
+terminal (tqdm, the ``sweep`` extra).
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
+import importlib
 import json
 import math
+import os
 import sys
 from collections.abc import Sequence
+from types import ModuleType
 from typing import Any, NoReturn, TextIO
 
 from . import (
@@ -66,7 +91,8 @@ from . import (
     simulate,
 )
 
-__all__ = ["main", "build_parser", "format_table", "format_number", "SIMULATION_LIMITS"]
+__all__ = ["main", "build_parser", "format_table", "format_number", "SIMULATION_LIMITS",
+           "PLOT_EXTENSIONS"]
 
 EXIT_OK, EXIT_COMPUTATION, EXIT_USAGE = 0, 1, 2
 
@@ -85,6 +111,13 @@ _DROPOUT_Q_INPUT_MIN = 1e-12
 _DEFAULT_MARGIN = object()
 #: the empirical rule behind every trainable depth
 _SIX_XI_C = "trainable depth: about 6 xi_c layers (empirical rule of Schoenholz et al. 2017)"
+#: image formats of --plot, by file extension
+PLOT_EXTENSIONS = {".png": "png", ".svg": "svg"}
+#: figures ``report --plot`` can draw
+_REPORT_PLOTS = ("phase-diagram", "variance-map", "correlation-map", "depth-scales")
+#: bounds of --grid (per axis) and of depth-scales --points (those of propcalc.plots)
+_GRID_BOUNDS = (3, 2000)
+_POINTS_BOUNDS = (5, 20_000)
 
 
 class UsageError(Exception):
@@ -198,6 +231,25 @@ def _finite_list(text: str) -> list[float]:
     return values
 
 
+def _q_star_list(text: str) -> list[float]:
+    """Comma-separated finite q* values (at least one)."""
+    values = []
+    for t in text.replace(" ", "").split(","):
+        if not t:
+            continue
+        try:
+            v = float(t)
+        except ValueError:
+            raise argparse.ArgumentTypeError(
+                f"must be comma-separated numbers like 0.5,1,2, got {text!r}") from None
+        if not math.isfinite(v):
+            raise argparse.ArgumentTypeError(f"must be finite numbers, got {t!r}")
+        values.append(v)
+    if not values:
+        raise argparse.ArgumentTypeError(f"must be at least one number like 0.5,1,2, got {text!r}")
+    return values
+
+
 def _pair(text: str) -> tuple[float, float]:
     """Two finite numbers 'A,B'."""
     try:
@@ -207,6 +259,47 @@ def _pair(text: str) -> tuple[float, float]:
     if len(values) != 2:
         raise argparse.ArgumentTypeError(f"must be two numbers A,B, got {text!r}")
     return values[0], values[1]
+
+
+def _window(low: str) -> Any:
+    """An argparse type: 'LO,HI' with LO > 0 (low = '0 <') or LO >= 0 (low = '0 <='), LO < HI."""
+    def parse(text: str) -> tuple[float, float]:
+        try:
+            lo, hi = _pair(text)
+        except argparse.ArgumentTypeError:
+            lo = hi = math.nan
+        if not (lo < hi and (lo > 0 if low == "0 <" else lo >= 0)):
+            raise argparse.ArgumentTypeError(f"must be LO,HI with {low} LO < HI, got {text!r}")
+        return lo, hi
+
+    return parse
+
+
+def _grid(text: str) -> tuple[int, int]:
+    """'N' (N x N points) or 'NW,NB', each in [3, 2000]."""
+    parts = text.replace(" ", "").split(",")
+    lo, hi = _GRID_BOUNDS
+    try:
+        values = [int(t) for t in parts]
+    except ValueError:
+        values = []
+    if len(values) not in (1, 2) or not all(lo <= v <= hi for v in values):
+        raise argparse.ArgumentTypeError(
+            f"must be N or NW,NB (points along sigma_w2 and sigma_b2), each in [{lo}, {hi}], "
+            f"got {text!r}")
+    return (values[0], values[-1])
+
+
+def _point(text: str) -> tuple[float, float]:
+    """'W,B': sigma_w2 > 0 and sigma_b2 >= 0."""
+    try:
+        w, b = _pair(text)
+    except argparse.ArgumentTypeError:
+        w = b = math.nan
+    if not (w > 0 and b >= 0):
+        raise argparse.ArgumentTypeError(
+            f"must be W,B (sigma_w2, sigma_b2) with W > 0 and B >= 0, got {text!r}")
+    return w, b
 
 
 def _conv_layer(spec: str) -> Layer:
@@ -224,6 +317,60 @@ def _conv_layer(spec: str) -> Layer:
 
 def _act(args: argparse.Namespace) -> Any:
     return activation(args.activation, **_params(args.param))
+
+
+# ------------------------------------------------------------------------------------------
+# pictures
+# ------------------------------------------------------------------------------------------
+def _plot_target(path: str) -> tuple[str, str]:
+    """The file and format of ``--plot FILE``, checked before any work is done."""
+    fmt = PLOT_EXTENSIONS.get(os.path.splitext(path)[1].lower())
+    if fmt is None:
+        raise UsageError(f"--plot FILE must end in {' or '.join(PLOT_EXTENSIONS)} (the image "
+                         f"format comes from the extension), got {path!r}")
+    folder = os.path.dirname(os.path.abspath(path))
+    if not os.path.isdir(folder):
+        raise UsageError(f"--plot {path}: the directory {folder} does not exist")
+    return path, fmt
+
+
+def _plots_module() -> ModuleType:
+    """:mod:`propcalc.plots`, or a usage error when matplotlib (the plot extra) is missing."""
+    try:
+        return importlib.import_module("propcalc.plots")
+    except ImportError:
+        raise UsageError('--plot needs matplotlib, which is not installed: '
+                         'pip install "propcalc[plot]"') from None
+
+
+def _start_plot(args: argparse.Namespace) -> tuple[str, str, ModuleType] | None:
+    """(path, format, propcalc.plots) when --plot is given, checked up front; else None."""
+    if getattr(args, "plot", None) is None:
+        return None
+    path, fmt = _plot_target(args.plot)
+    return path, fmt, _plots_module()
+
+
+def _write_plot(fig: Any, target: tuple[str, str, ModuleType], what: str,
+                args: argparse.Namespace, out: TextIO) -> None:
+    """Render the figure, write the file and say where it went (one line)."""
+    path, fmt, plots = target
+    data = plots.save_figure(fig, None, fmt)
+    try:
+        with open(path, "wb") as fh:
+            fh.write(data)
+    except OSError as exc:
+        raise UsageError(f"--plot {path}: cannot write the file: {exc.strerror or exc}") from None
+    stream = args.err if getattr(args, "json", False) else out
+    stream.write(f"wrote {what} to {path} ({fmt.upper()}, {len(data)} bytes)\n")
+
+
+def _needs_plot(args: argparse.Namespace, *options: str) -> None:
+    """Refuse window options given without --plot."""
+    if args.plot is None:
+        given = [o for o in options if getattr(args, o.lstrip("-").replace("-", "_")) is not None]
+        if given:
+            raise UsageError(f"{', '.join(given)} only shape the picture: give --plot FILE too")
 
 
 # ------------------------------------------------------------------------------------------
@@ -279,10 +426,14 @@ def _cmd_show(args: argparse.Namespace, out: TextIO) -> int:
 
 
 def _cmd_report(args: argparse.Namespace, out: TextIO) -> int:
+    _needs_plot(args, "--plot-kind")
+    target = _start_plot(args)
     act = _act(args)
     p = propagation(act, args.sigma_w2, args.sigma_b2, depth=args.depth, q_input=args.q_input)
     if args.json:
         _emit_json(p.to_dict(), out)
+        if target is not None:
+            _report_plot(act, p, args, target, out)
         return EXIT_OK
     pairs = [
         ("activation", p.activation), ("sigma_w2", p.sigma_w2), ("sigma_b2", p.sigma_b2),
@@ -300,10 +451,38 @@ def _cmd_report(args: argparse.Namespace, out: TextIO) -> int:
                                ["q*", "chi_q", "attracting"]) + "\n")
     for note in p.notes:
         out.write(f"note: {note}\n")
+    if target is not None:
+        _report_plot(act, p, args, target, out)
     return EXIT_OK
 
 
+def _report_plot(act: Any, p: Any, args: argparse.Namespace,
+                 target: tuple[str, str, ModuleType], out: TextIO) -> None:
+    plots = target[2]
+    kind = args.plot_kind or "phase-diagram"
+    at = (f"{act.label} at sigma_w2 = {format_number(p.sigma_w2)}, sigma_b2 = "
+          f"{format_number(p.sigma_b2)}")
+    if kind == "phase-diagram":
+        fig = plots.plot_phase_diagram(act, p, depth=args.depth, q_input=args.q_input,
+                                       progress=None)
+        what = (f"the phase diagram of {act.label} with the point "
+                f"({format_number(p.sigma_w2)}, {format_number(p.sigma_b2)})")
+    elif kind == "variance-map":
+        fig = plots.plot_variance_map(act, p, q_input=args.q_input)
+        what = f"the variance map of {at}"
+    elif kind == "correlation-map":
+        fig = plots.plot_correlation_map(act, p, q_input=args.q_input)
+        what = f"the correlation map of {at}"
+    else:
+        fig = plots.plot_depth_scales(act, p, depth=args.depth, q_input=args.q_input,
+                                      progress=None)
+        what = f"the depth scales of {act.label} at sigma_b2 = {format_number(p.sigma_b2)}"
+    _write_plot(fig, target, what, args, out)
+
+
 def _cmd_edge(args: argparse.Namespace, out: TextIO) -> int:
+    _needs_plot(args, "--sigma-w2-range", "--sigma-b2-range", "--grid")
+    target = _start_plot(args)
     act = _act(args)
     if args.sigma_b2 is not None:
         points = edge_of_chaos_at_bias(act, args.sigma_b2)
@@ -312,14 +491,84 @@ def _cmd_edge(args: argparse.Namespace, out: TextIO) -> int:
         points = edge_of_chaos_line(act, qs)
     if args.json:
         _emit_json([p.to_dict() for p in points], out)
-        return EXIT_OK
-    if not points:
+    elif not points:
         out.write(f"no edge-of-chaos point of {act.label} has sigma_b2 = {args.sigma_b2:g}\n")
-        return EXIT_OK
-    rows = [[p.q_star, p.sigma_w2, p.sigma_b2, p.chi_q,
-             ("yes" if p.stable else "no") if p.valid else "-",
-             "" if p.valid else p.message] for p in points]
-    out.write(format_table(rows, ["q*", "sigma_w2", "sigma_b2", "chi_q", "attracting", "note"]) + "\n")
+    else:
+        rows = [[p.q_star, p.sigma_w2, p.sigma_b2, p.chi_q,
+                 ("yes" if p.stable else "no") if p.valid else "-",
+                 "" if p.valid else p.message] for p in points]
+        out.write(format_table(rows, ["q*", "sigma_w2", "sigma_b2", "chi_q", "attracting",
+                                      "note"]) + "\n")
+    if target is not None:
+        _edge_plot(act, points, args, target, out)
+    return EXIT_OK
+
+
+def _edge_plot(act: Any, points: Sequence[Any], args: argparse.Namespace,
+               target: tuple[str, str, ModuleType], out: TextIO) -> None:
+    plots = target[2]
+    valid = [p for p in points if p.valid and p.sigma_w2 is not None and p.sigma_b2 is not None]
+    marked = valid[0] if args.sigma_b2 is not None and valid else None
+    fig = plots.plot_phase_diagram(act, marked, sigma_w2_range=args.sigma_w2_range,
+                                   sigma_b2_range=args.sigma_b2_range,
+                                   **({} if args.grid is None else {"n_grid": args.grid}),
+                                   progress=None)
+    (x0, x1), (y0, y1) = fig.axes[0].get_xlim(), fig.axes[0].get_ylim()
+    outside = [p for p in valid if not (x0 <= p.sigma_w2 <= x1 and y0 <= p.sigma_b2 <= y1)]
+    if outside and not args.json:
+        out.write(f"note: {len(outside)} of the {len(valid)} listed points lie outside the "
+                  f"picture (sigma_w2 in [{format_number(x0, 4)}, {format_number(x1, 4)}], "
+                  f"sigma_b2 in [{format_number(y0, 4)}, {format_number(y1, 4)}]); widen it "
+                  "with --sigma-w2-range and --sigma-b2-range\n")
+    what = f"the phase diagram of {act.label} with its edge of chaos"
+    if marked is not None:
+        what += (f" and the critical point ({format_number(marked.sigma_w2)}, "
+                 f"{format_number(marked.sigma_b2)})")
+    _write_plot(fig, target, what, args, out)
+
+
+def _check_depth(depth: int | None) -> None:
+    if depth is not None and depth < 1:
+        raise UsageError(f"--depth must be >= 1, got {depth}")
+
+
+def _cmd_phase(args: argparse.Namespace, out: TextIO) -> int:
+    _check_depth(args.depth)
+    target = _start_plot(args)
+    assert target is not None  # --plot is required
+    act = _act(args)
+    plots = target[2]
+    fig = plots.plot_phase_diagram(act, args.point, sigma_w2_range=args.sigma_w2_range,
+                                   sigma_b2_range=args.sigma_b2_range,
+                                   **({} if args.grid is None else {"n_grid": args.grid}),
+                                   q_input=args.q_input, depth=args.depth, progress=None)
+    what = f"the phase diagram of {act.label}"
+    if args.point is not None:
+        what += f" with the point ({format_number(args.point[0])}, {format_number(args.point[1])})"
+    _write_plot(fig, target, what, args, out)
+    return EXIT_OK
+
+
+def _cmd_depth_scales(args: argparse.Namespace, out: TextIO) -> int:
+    lo, hi = _POINTS_BOUNDS
+    if not lo <= args.points <= hi:
+        raise UsageError(f"--points must be in [{lo}, {hi}], got {args.points}")
+    if args.sigma_b2 < 0:
+        raise UsageError(f"--sigma-b2 must be >= 0, got {format_number(args.sigma_b2)}")
+    if args.sigma_w2 is not None and args.sigma_w2 <= 0:
+        raise UsageError(f"--sigma-w2 must be > 0, got {format_number(args.sigma_w2)}")
+    _check_depth(args.depth)
+    target = _start_plot(args)
+    assert target is not None  # --plot is required
+    act = _act(args)
+    point = None if args.sigma_w2 is None else (args.sigma_w2, args.sigma_b2)
+    fig = target[2].plot_depth_scales(act, point, sigma_b2=args.sigma_b2,
+                                      sigma_w2_range=args.sigma_w2_range, n_points=args.points,
+                                      depth=args.depth, q_input=args.q_input, progress=None)
+    what = f"the depth scales of {act.label} at sigma_b2 = {format_number(args.sigma_b2)}"
+    if point is not None:
+        what += f" with the point sigma_w2 = {format_number(args.sigma_w2)}"
+    _write_plot(fig, target, what, args, out)
     return EXIT_OK
 
 
@@ -715,6 +964,22 @@ def build_parser() -> argparse.ArgumentParser:
     def with_json(p: argparse.ArgumentParser) -> None:
         p.add_argument("--json", action="store_true", help="machine-readable output")
 
+    def with_plot(p: argparse.ArgumentParser, text: str, required: bool = False) -> None:
+        p.add_argument("--plot", metavar="FILE", required=required,
+                       help=f"{text}: FILE.png or FILE.svg (needs matplotlib: "
+                            "pip install \"propcalc[plot]\")")
+
+    def with_window(p: argparse.ArgumentParser) -> None:
+        p.add_argument("--sigma-w2-range", type=_window("0 <"), metavar="LO,HI",
+                       help="the picture's sigma_w2 axis (default 0.1,4, widened to a marked "
+                            "point)")
+        p.add_argument("--sigma-b2-range", type=_window("0 <="), metavar="LO,HI",
+                       help="the picture's sigma_b2 axis (default 0,0.5, widened to a marked "
+                            "point)")
+        p.add_argument("--grid", type=_grid, metavar="N|NW,NB",
+                       help="grid points of the picture: N x N, or NW along sigma_w2 and NB "
+                            "along sigma_b2 (default 81,61)")
+
     p = sub.add_parser("activations", help="list built-in activations with properties and gains")
     with_json(p)
     p.set_defaults(func=_cmd_activations)
@@ -731,14 +996,51 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--depth", type=int, help="number of layers, for chi_1^L")
     p.add_argument("--q-input", type=_float, default=1.0, help="mean square of the inputs (default 1)")
     with_json(p)
+    with_plot(p, "also draw the phase diagram with this point marked (or --plot-kind)")
+    p.add_argument("--plot-kind", choices=_REPORT_PLOTS,
+                   help="the figure --plot draws (default phase-diagram; the others are the "
+                        "variance map, the correlation map and the depth scales at this point)")
     p.set_defaults(func=_cmd_report)
 
     p = sub.add_parser("edge", help="the edge-of-chaos line")
     with_act(p)
-    p.add_argument("--q-star", type=_float_list, help="comma-separated q* values to sample")
+    p.add_argument("--q-star", type=_q_star_list, metavar="Q[,Q...]",
+                   help="comma-separated q* values to sample")
     p.add_argument("--sigma-b2", type=_float, help="solve for the critical sigma_w2 at this sigma_b2")
     with_json(p)
+    with_plot(p, "also draw the phase diagram with the edge-of-chaos line (with --sigma-b2, the "
+                 "first critical point marked)")
+    with_window(p)
     p.set_defaults(func=_cmd_edge)
+
+    p = sub.add_parser("phase", help="phase diagram over a sigma_w2 x sigma_b2 grid (an image)")
+    with_act(p)
+    with_plot(p, "the image to write", required=True)
+    with_window(p)
+    p.add_argument("--point", type=_point, metavar="W,B",
+                   help="your (sigma_w2, sigma_b2): marked with its phase and xi_c, the window "
+                        "widened to include it")
+    p.add_argument("--depth", type=int,
+                   help="your depth L: the contour 6 xi_c = L drawn in bold")
+    p.add_argument("--q-input", type=_float, default=1.0, help="mean square of the inputs (default 1)")
+    p.set_defaults(func=_cmd_phase)
+
+    p = sub.add_parser("depth-scales", help="xi_q and xi_c against sigma_w2 at a fixed sigma_b2 "
+                                            "(an image)")
+    with_act(p)
+    with_plot(p, "the image to write", required=True)
+    p.add_argument("-b", "--sigma-b2", type=_float, default=0.0,
+                   help="the bias variance of the curve (default 0)")
+    p.add_argument("-w", "--sigma-w2", type=_float,
+                   help="your sigma_w2: marked on the xi_c curve")
+    p.add_argument("--sigma-w2-range", type=_window("0 <"), metavar="LO,HI",
+                   help="the sigma_w2 axis (default 0.1,4, widened to your point and the edge)")
+    p.add_argument("--points", type=int, default=121,
+                   help="regular samples of sigma_w2 (default 121; more are added around the "
+                        "edge of chaos)")
+    p.add_argument("--depth", type=int, help="your depth L: the line xi = L / 6")
+    p.add_argument("--q-input", type=_float, default=1.0, help="mean square of the inputs (default 1)")
+    p.set_defaults(func=_cmd_depth_scales)
 
     p = sub.add_parser("plan", help="per-layer initialisation plan")
     with_act(p)
@@ -872,7 +1174,13 @@ def main(argv: Sequence[str] | None = None, out: TextIO | None = None,
     err = sys.stderr if err is None else err
     parser = build_parser()
     try:
-        args = parser.parse_args(argv)
+        try:
+            with contextlib.redirect_stdout(out):  # -h / --help print to `out` ...
+                args = parser.parse_args(argv)
+        except SystemExit as exc:  # ... and exit: return the status instead
+            code = exc.code
+            return code if isinstance(code, int) else (EXIT_OK if code is None else EXIT_USAGE)
+        args.err = err  # where a command says what it wrote when stdout carries JSON
         return int(args.func(args, out))
     except UsageError as exc:
         err.write(f"propcalc: error: {exc}\n")

@@ -26,6 +26,7 @@ from __future__ import annotations
 import io
 import math
 import os
+import threading
 from collections.abc import Sequence
 from concurrent.futures import Executor
 from typing import IO, Any
@@ -641,6 +642,9 @@ def plot_depth_scales(act: Activation, point: PointLike = None, *, sigma_b2: flo
 # -------------------------------------------------------------------------------------------
 # output
 # -------------------------------------------------------------------------------------------
+_SAVE_LOCK = threading.Lock()
+
+
 def save_figure(fig: Figure, path_or_buffer: str | os.PathLike[str] | IO[bytes] | None = None,
                 format: str = "png", *, dpi: float = 100.0) -> bytes:
     """Render a figure to PNG or SVG bytes that are identical for identical figures.
@@ -673,7 +677,8 @@ def save_figure(fig: Figure, path_or_buffer: str | os.PathLike[str] | IO[bytes] 
     d = check_positive("dpi", dpi)
     metadata = {"Date": None} if fmt == "svg" else {"Software": None}
     buf = io.BytesIO()
-    with matplotlib.rc_context({"svg.hashsalt": "propcalc", "svg.fonttype": "path"}):
+    # rc_context changes process-wide settings: one figure at a time (threads in a server)
+    with _SAVE_LOCK, matplotlib.rc_context({"svg.hashsalt": "propcalc", "svg.fonttype": "path"}):
         fig.savefig(buf, format=fmt, dpi=d, metadata=metadata)
     data = buf.getvalue()
     if path_or_buffer is not None:
