@@ -203,36 +203,8 @@ def _int_list(text: str) -> list[int]:
     return values
 
 
-def _float_list(text: str) -> list[float]:
-    try:
-        values = [float(t) for t in text.replace(" ", "").split(",") if t]
-    except ValueError:
-        raise argparse.ArgumentTypeError(
-            f"must be comma-separated numbers like 0.5,1,2, got {text!r}") from None
-    return values
-
-
 def _finite_list(text: str) -> list[float]:
     """Comma-separated finite numbers (at least one)."""
-    values = []
-    for t in text.replace(" ", "").split(","):
-        if not t:
-            continue
-        try:
-            v = float(t)
-        except ValueError:
-            raise argparse.ArgumentTypeError(
-                f"must be comma-separated numbers like 0.5,0.8,1, got {text!r}") from None
-        if not math.isfinite(v):
-            raise argparse.ArgumentTypeError(f"must be finite numbers, got {t!r}")
-        values.append(v)
-    if not values:
-        raise argparse.ArgumentTypeError(f"must be at least one number, got {text!r}")
-    return values
-
-
-def _q_star_list(text: str) -> list[float]:
-    """Comma-separated finite q* values (at least one)."""
     values = []
     for t in text.replace(" ", "").split(","):
         if not t:
@@ -1004,7 +976,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("edge", help="the edge-of-chaos line")
     with_act(p)
-    p.add_argument("--q-star", type=_q_star_list, metavar="Q[,Q...]",
+    p.add_argument("--q-star", type=_finite_list, metavar="Q[,Q...]",
                    help="comma-separated q* values to sample")
     p.add_argument("--sigma-b2", type=_float, help="solve for the critical sigma_w2 at this sigma_b2")
     with_json(p)
