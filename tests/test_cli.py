@@ -11,7 +11,6 @@ JSON is parsed strictly: the tokens NaN / Infinity / -Infinity are not JSON (RFC
 from __future__ import annotations
 
 import io
-import json
 import math
 import shutil
 import subprocess
@@ -32,20 +31,7 @@ from propcalc import (
     propagation,
     recommend,
 )
-
-
-def _no_constants(token: str):
-    raise AssertionError(f"non-standard JSON token {token!r} in the output")
-
-
-def strict_json(text: str):
-    return json.loads(text, parse_constant=_no_constants)
-
-
-def run(*argv: str) -> tuple[int, str, str]:
-    out, err = io.StringIO(), io.StringIO()
-    code = cli.main(list(argv), out=out, err=err)
-    return code, out.getvalue(), err.getvalue()
+from cli_helpers import run, strict_json
 
 
 def pairs(text: str) -> dict[str, str]:

@@ -11,7 +11,6 @@ source beside it. JSON is parsed strictly (NaN / Infinity are not JSON, RFC 8259
 from __future__ import annotations
 
 import io
-import json
 import math
 import re
 
@@ -38,20 +37,7 @@ from propcalc import (
     self_normalization,
     simulate,
 )
-
-
-def _no_constants(token: str):
-    raise AssertionError(f"non-standard JSON token {token!r} in the output")
-
-
-def strict_json(text: str):
-    return json.loads(text, parse_constant=_no_constants)
-
-
-def run(*argv: str) -> tuple[int, str, str]:
-    out, err = io.StringIO(), io.StringIO()
-    code = cli.main(list(argv), out=out, err=err)
-    return code, out.getvalue(), err.getvalue()
+from cli_helpers import run, strict_json
 
 
 def run_json(*argv: str):

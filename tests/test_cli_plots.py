@@ -22,16 +22,11 @@ pytest.importorskip("matplotlib")
 
 import propcalc  # noqa: E402
 from propcalc import cli, plots  # noqa: E402
+from cli_helpers import run  # noqa: E402
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948:2004), section 5.2
 SVG_NAMESPACE = "{http://www.w3.org/2000/svg}"  # SVG 1.1 (W3C 2011), section 1.1
 SMALL = ["--grid", "7,5"]
-
-
-def run(*argv: str) -> tuple[int, str, str]:
-    out, err = io.StringIO(), io.StringIO()
-    code = cli.main(list(argv), out=out, err=err)
-    return code, out.getvalue(), err.getvalue()
 
 
 def svg_root(data: bytes) -> ET.Element:

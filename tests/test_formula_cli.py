@@ -8,19 +8,12 @@ ReLU edge of chaos, sigma_w2 = 2, sigma_b2 = 0 (He et al. 2015, eq. 10).
 
 from __future__ import annotations
 
-import io
 import json
 import math
 
 import pytest
 
-from propcalc.cli import main
-
-
-def run(*argv: str) -> tuple[int, str, str]:
-    out, err = io.StringIO(), io.StringIO()
-    code = main(list(argv), out=out, err=err)
-    return code, out.getvalue(), err.getvalue()
+from cli_helpers import run
 
 
 def _numbers_equal(a, b, path: str = "") -> None:
