@@ -21,6 +21,8 @@ import numpy as np
 from scipy import special
 
 from .errors import InvalidParameterError, UnknownActivationError, check_finite
+from .smoothing import (Piece, Smoothing, Term, erf_smoothing, gelu_smoothing, linear_smoothing,
+                        piecewise_smoothing)
 
 __all__ = [
     "Activation",
@@ -109,6 +111,10 @@ class Activation:
         Text of phi and phi' when known (shown to users of typed formulas).
     declared_scale : float, optional
         The x-scale of phi's structure (see :attr:`scale`); estimated when absent.
+    smoothing : Smoothing, optional
+        Closed forms of E[phi(m + sqrt(v) z)] and E[phi'(m + sqrt(v) z)]
+        (see :mod:`propcalc.smoothing`); when present the correlation map is a
+        1-D integral instead of a 2-D one.
 
     Notes
     -----
@@ -125,6 +131,7 @@ class Activation:
     derivative_formula: str | None = None
     description: str = ""
     declared_scale: float | None = None
+    smoothing: Smoothing | None = field(default=None, repr=False)
 
     def __post_init__(self) -> None:
         bps = tuple(sorted({float(b) for b in self.breakpoints}))
@@ -336,19 +343,33 @@ BUILTIN_DESCRIPTIONS: dict[str, str] = {
 
 
 def _make(name: str, value: ArrayFn, deriv: ArrayFn, breakpoints: tuple[float, ...] = (),
-          params: Mapping[str, float] | None = None, scale: float | None = 1.0) -> Activation:
+          params: Mapping[str, float] | None = None, scale: float | None = 1.0,
+          smoothing: Smoothing | None = None) -> Activation:
     return Activation(name=name, value_fn=value, derivative_fn=deriv, breakpoints=breakpoints,
                       params=params or {}, description=BUILTIN_DESCRIPTIONS[name],
-                      declared_scale=scale)
+                      declared_scale=scale, smoothing=smoothing)
+
+
+_INF = math.inf
+
+
+def _elu_pieces(alpha: float, scale: float = 1.0) -> Smoothing:
+    # scale * (x for x >= 0, alpha (e^x - 1) below); derivative scale * (1, alpha e^x)
+    below = Piece(-_INF, 0.0, (Term(scale * alpha, 0, 1.0), Term(-scale * alpha)))
+    return piecewise_smoothing(
+        [below, Piece(0.0, _INF, (Term(scale, 1),))],
+        [Piece(-_INF, 0.0, (Term(scale * alpha, 0, 1.0),)), Piece(0.0, _INF, (Term(scale),))])
 
 
 def _linear() -> Activation:
-    return _make("linear", lambda x: x.copy(), lambda x: np.ones_like(x))
+    return _make("linear", lambda x: x.copy(), lambda x: np.ones_like(x),
+                 smoothing=linear_smoothing())
 
 
 def _step() -> Activation:
     # derivative is zero almost everywhere; the jump at 0 is recorded in Activation.jumps
-    return _make("step", lambda x: np.where(x >= 0, 1.0, 0.0), lambda x: np.zeros_like(x), (0.0,))
+    return _make("step", lambda x: np.where(x >= 0, 1.0, 0.0), lambda x: np.zeros_like(x), (0.0,),
+                 smoothing=piecewise_smoothing([Piece(0.0, _INF, (Term(1.0),))], []))
 
 
 def _sigmoid() -> Activation:
@@ -360,13 +381,18 @@ def _tanh() -> Activation:
 
 
 def _relu() -> Activation:
-    return _make("relu", lambda x: np.maximum(x, 0.0), lambda x: np.where(x > 0, 1.0, 0.0), (0.0,))
+    return _make("relu", lambda x: np.maximum(x, 0.0), lambda x: np.where(x > 0, 1.0, 0.0), (0.0,),
+                 smoothing=piecewise_smoothing([Piece(0.0, _INF, (Term(1.0, 1),))],
+                                               [Piece(0.0, _INF, (Term(1.0),))]))
 
 
 def _leaky_relu(slope: float = 0.01) -> Activation:
     a = check_finite("slope", slope)
+    smooth = piecewise_smoothing(
+        [Piece(-_INF, 0.0, (Term(a, 1),)), Piece(0.0, _INF, (Term(1.0, 1),))],
+        [Piece(-_INF, 0.0, (Term(a),)), Piece(0.0, _INF, (Term(1.0),))])
     return _make("leaky_relu", lambda x: np.where(x > 0, x, a * x),
-                 lambda x: np.where(x > 0, 1.0, a), (0.0,), {"slope": a})
+                 lambda x: np.where(x > 0, 1.0, a), (0.0,), {"slope": a}, smoothing=smooth)
 
 
 def _elu_builtin(alpha: float = 1.0) -> Activation:
@@ -374,12 +400,13 @@ def _elu_builtin(alpha: float = 1.0) -> Activation:
     if a < 0:
         raise InvalidParameterError("params.alpha", ">= 0", alpha)
     v, d = _elu(a)
-    return _make("elu", v, d, (0.0,), {"alpha": a})
+    return _make("elu", v, d, (0.0,), {"alpha": a}, smoothing=_elu_pieces(a))
 
 
 def _selu() -> Activation:
     v, d = _elu(SELU_ALPHA)
-    return _make("selu", lambda x: SELU_SCALE * v(x), lambda x: SELU_SCALE * d(x), (0.0,))
+    return _make("selu", lambda x: SELU_SCALE * v(x), lambda x: SELU_SCALE * d(x), (0.0,),
+                 smoothing=_elu_pieces(SELU_ALPHA, SELU_SCALE))
 
 
 def _softplus_builtin() -> Activation:
@@ -388,7 +415,8 @@ def _softplus_builtin() -> Activation:
 
 def _gelu() -> Activation:
     return _make("gelu", lambda x: x * special.ndtr(x),
-                 lambda x: special.ndtr(x) + x * _INV_SQRT_2PI * np.exp(-0.5 * _square_clipped(x)))
+                 lambda x: special.ndtr(x) + x * _INV_SQRT_2PI * np.exp(-0.5 * _square_clipped(x)),
+                 smoothing=gelu_smoothing())
 
 
 def _gelu_tanh() -> Activation:
@@ -413,12 +441,17 @@ def _mish() -> Activation:
 
 def _erf() -> Activation:
     return _make("erf", special.erf,
-                 lambda x: (2.0 / math.sqrt(math.pi)) * np.exp(-_square_clipped(x)))
+                 lambda x: (2.0 / math.sqrt(math.pi)) * np.exp(-_square_clipped(x)),
+                 smoothing=erf_smoothing())
 
 
 def _hard_tanh() -> Activation:
     return _make("hard_tanh", lambda x: np.clip(x, -1.0, 1.0),
-                 lambda x: np.where(np.abs(x) < 1.0, 1.0, 0.0), (-1.0, 1.0))
+                 lambda x: np.where(np.abs(x) < 1.0, 1.0, 0.0), (-1.0, 1.0),
+                 smoothing=piecewise_smoothing(
+                     [Piece(-_INF, -1.0, (Term(-1.0),)), Piece(-1.0, 1.0, (Term(1.0, 1),)),
+                      Piece(1.0, _INF, (Term(1.0),))],
+                     [Piece(-1.0, 1.0, (Term(1.0),))]))
 
 
 _REGISTRY: dict[str, _Factory] = {

@@ -454,13 +454,14 @@ def correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
 
 def _chaotic_fixed_point(act: Activation, sw: float, sb: float, q: float,
                          rule: QuadratureRule) -> tuple[float, float]:
-    """c* and C'(c*): from the Hermite series when its rigorous tail bound allows, else 2-D.
+    """c* and C'(c*): from the Hermite series when its rigorous tail bound allows, else by steps.
 
     The series (propcalc.hermite) needs only 1-D integrals; it is used with the
     default rule for activations at their own feature scale 1, and gives way to
     :func:`correlation_fixed_point` for c* near 1, large q or steep formulas.
     """
-    if rule == DEFAULT_RULE and act.scale == 1.0 and not act.has_jumps:
+    # with a closed-form smoothing each map evaluation is already a 1-D integral
+    if rule == DEFAULT_RULE and act.scale == 1.0 and not act.has_jumps and act.smoothing is None:
         kmax, series_rule = SERIES_PASSES[0]
         c, s, ok = series_fixed_points(act, np.array([sw]), np.array([sb]), np.array([q]),
                                        kmax, series_rule)

@@ -346,7 +346,7 @@ def relu_dropout_correlation_map(c: Any, keep_rate: float) -> np.ndarray:
     """
     rho = _keep_rate(keep_rate)
     ca = np.asarray(c, dtype=float)
-    sine = np.sqrt(np.maximum(0.0, 1.0 - ca * ca))
+    sine = np.sqrt(np.maximum(0.0, (1.0 - ca) * (1.0 + ca)))
     return rho * (sine + (math.pi - np.arccos(ca)) * ca) / math.pi
 
 

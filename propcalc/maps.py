@@ -38,7 +38,8 @@ import numpy as np
 from .activations import Activation
 from .errors import InvalidParameterError, check_nonnegative, check_positive
 from .hermite import SERIES_PASSES, hermite_coefficients
-from .quadrature import DEFAULT_RULE, QuadratureRule, bivariate_expectation, gaussian_expectation
+from .quadrature import (DEFAULT_RULE, QuadratureRule, bivariate_expectation,
+                         conditional_pair_expectation, gaussian_expectation, legendre_rule)
 
 __all__ = [
     "second_moment",
@@ -190,9 +191,77 @@ def chi_1(act: Activation, q: Any, sigma_w2: float, rule: QuadratureRule = DEFAU
 # -------------------------------------------------------------------------------------
 # pair expectations
 # -------------------------------------------------------------------------------------
+#: Below c = 1 - CONDITIONAL_GAP the pair expectation of an activation with a closed-form
+#: smoothing is one 1-D integral; its error is ~1e-16 E[phi^2] absolute, i.e. 1e-16 / (1 - C)
+#: relative in 1 - C. Closer to c = 1 the value comes from the integral of the slope, which
+#: keeps 1 - C accurate to rounding relative to itself.
+CONDITIONAL_GAP = 1e-2
+#: Gauss-Legendre nodes in u = sqrt(1 - t) for that integral (u <= 0.1; the integrand is
+#: analytic in u for |u| < sqrt(2), so 12 nodes leave (0.1 / 1.4)^24 ~ 1e-28).
+SLOPE_NODES = 12
+
+
+def _pair_conditional(act: Activation, kinds: tuple[str, ...], c: Array, q: float,
+                      rule: QuadratureRule, what: str) -> tuple[Array, ...]:
+    """E[f(u1) f(u2)] for f = phi or phi' (``kinds``) as 1-D integrals.
+
+    ``E[f(u1) f(u2)] = E[f(u1) S_f(c u1, q (1 - c^2))]`` with the closed-form
+    smoothing S_f of :mod:`propcalc.smoothing` (u2 given u1 is normal). For
+    phi near c = 1 the exact difference form by Price's theorem is used instead,
+    ``E[phi(u1) phi(u2)] = E[phi^2] - q int_c^1 E[phi'(u1) phi'(u2)](t) dt``
+    (with the Dirac terms of a jumping phi), integrated in ``u = sqrt(1 - t)``,
+    where the integrand ``2 u E[phi' phi'](1 - u^2)`` is smooth even for kinks
+    and jumps.
+    """
+    sm = act.smoothing
+    assert sm is not None
+    smooth = {"value": (act.value, sm.value), "derivative": (act.derivative, sm.derivative)}
+
+    def direct(kind_list: tuple[str, ...], cc: Array,
+               gap: Array | None = None) -> tuple[Array, ...]:
+        return conditional_pair_expectation([smooth[k] for k in kind_list], cc, q, q,
+                                            act.breakpoints, act.breakpoints, rule=rule,
+                                            what=what, gap=gap)
+
+    near = (c > 1.0 - CONDITIONAL_GAP) & np.array([k == "value" for k in kinds]).any()
+    out = list(direct(kinds, c[~near])) if np.any(~near) else [np.empty(0) for _ in kinds]
+    results = [np.empty_like(c) for _ in kinds]
+    for res, o in zip(results, out):
+        res[~near] = o
+    if np.any(near):
+        cn = c[near]
+        width = np.sqrt(1.0 - cn)  # u in [0, sqrt(1 - c)]; nothing to integrate at c = 1
+        inner = width > 0.0
+        integral = np.zeros_like(cn)
+        if np.any(inner):
+            t_gl, w_gl = legendre_rule(SLOPE_NODES)
+            wid = width[inner][:, None]
+            u = 0.5 * wid * (1.0 + t_gl)
+            # the nodes t = 1 - u^2 are passed with their exact gaps u^2: in floats, t
+            # itself would round to 1 for u < 1e-8 and 1 - t^2 would keep few digits
+            gaps = (u * u).ravel()
+            d_der = (direct(("derivative",), 1.0 - gaps, gaps)[0]
+                     + _jump_terms(act, 1.0 - gaps, q, rule, gaps))
+            integral[inner] = np.sum(wid * w_gl * u * d_der.reshape(u.shape), axis=1)
+        square = float(gaussian_expectation(lambda x: act.value(x) ** 2, q, act.breakpoints,
+                                            rule=rule, what=what))
+        for k, res in zip(kinds, results):
+            res[near] = square - q * integral if k == "value" else direct((k,), cn)[0]
+    return tuple(results)
+
+
+def _pair_any(act: Activation, kinds: tuple[str, ...], c: Array, q: float,
+              rule: QuadratureRule, what: str) -> tuple[Array, ...]:
+    """E[f(u1) f(u2)] by the fastest exact route available for ``act``."""
+    if act.smoothing is not None:
+        return _pair_conditional(act, kinds, c, q, rule, what)
+    fs = tuple(act.value if k == "value" else act.derivative for k in kinds)
+    return _pair(fs, c, q, act.breakpoints, rule, what)
+
+
 def _pair(fs: tuple[Any, ...], c: Array, q: float, bps: tuple[float, ...],
           rule: QuadratureRule, what: str) -> tuple[Array, ...]:
-    """E[f(u1) f(u2)] for each f, equal variances, on shared nodes.
+    """E[f(u1) f(u2)] for each f, equal variances, on shared nodes, by the 2-D rule.
 
     For |c| >= 1/2 the exact difference form of an exchangeable pair is used:
     ``E[f(u1) f(u2)] = E[f^2] - E[(f(u1) - f(u2))^2] / 2``; for c <= -1/2 the
@@ -237,8 +306,7 @@ def pair_expectation(act: Activation, c: Any, q: float,
     qf = float(_q_array(q))
     if qf == 0.0:
         return np.full_like(ca, float(act.value(np.array([0.0]))[0]) ** 2)
-    return _pair((act.value,), ca, qf, act.breakpoints, rule,
-                 f"{act.label}(u1) {act.label}(u2)")[0]
+    return _pair_any(act, ("value",), ca, qf, rule, f"{act.label}(u1) {act.label}(u2)")[0]
 
 
 def derivative_pair_expectation(act: Activation, c: Any, q: float,
@@ -256,18 +324,23 @@ def derivative_pair_expectation(act: Activation, c: Any, q: float,
     if qf == 0.0:
         d0 = float(act.derivative(np.array([0.0]))[0])
         return np.full_like(ca, d0 * d0)
-    out = _pair((act.derivative,), ca, qf, act.breakpoints, rule,
-                f"derivative of {act.label} at (u1, u2)")[0]
+    out = _pair_any(act, ("derivative",), ca, qf, rule,
+                    f"derivative of {act.label} at (u1, u2)")[0]
     return out + _jump_terms(act, ca, qf, rule)
 
 
-def _jump_terms(act: Activation, ca: Array, qf: float, rule: QuadratureRule) -> Array:
-    """The Dirac-mass part of E[phi'(u1) phi'(u2)] for a phi with jumps (else 0)."""
+def _jump_terms(act: Activation, ca: Array, qf: float, rule: QuadratureRule,
+                gap: Array | None = None) -> Array:
+    """The Dirac-mass part of E[phi'(u1) phi'(u2)] for a phi with jumps (else 0).
+
+    ``gap`` is 1 - c when known more precisely than c.
+    """
     out = np.zeros_like(ca)
     if not act.has_jumps:
         return out
     jumps = [(b, j) for b, j in zip(act.breakpoints, act.jumps) if j != 0.0]
-    s2 = 1.0 - ca * ca
+    # not 1 - c^2: (1 - c)(1 + c) keeps its digits near c = +-1
+    s2 = (1.0 - ca) * (1.0 + ca) if gap is None else gap * (2.0 - gap)
     with np.errstate(divide="ignore", invalid="ignore"):
         for b, j in jumps:
             p_b = math.exp(-b * b / (2 * qf)) / math.sqrt(2 * math.pi * qf)
@@ -311,7 +384,8 @@ def correlation_map(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
     if vq == 0.0:
         return np.ones_like(_c_array(c))
     ca = _c_array(c)
-    if ca.size >= 16 and qf > 0 and rule == DEFAULT_RULE and act.scale == 1.0 and not act.has_jumps:
+    if (ca.size >= 16 and qf > 0 and rule == DEFAULT_RULE and act.scale == 1.0
+            and not act.has_jumps and act.smoothing is None):
         return (sw * _pair_by_series(act, ca, qf, rule) + sb) / vq
     return (sw * pair_expectation(act, ca, qf, rule) + sb) / vq
 
@@ -356,8 +430,8 @@ def correlation_map_and_slope(act: Activation, c: Any, sigma_w2: float, sigma_b2
     if qf == 0.0 or vq == 0.0:
         return (correlation_map(act, ca, sw, sb, qf, rule),
                 correlation_map_slope(act, ca, sw, sb, qf, rule))
-    e_val, e_der = _pair((act.value, act.derivative), ca, qf, act.breakpoints, rule,
-                         f"{act.label} at (u1, u2)")
+    e_val, e_der = _pair_any(act, ("value", "derivative"), ca, qf, rule,
+                             f"{act.label} at (u1, u2)")
     e_der = e_der + _jump_terms(act, ca, qf, rule)
     return (sw * e_val + sb) / vq, sw * qf * e_der / vq
 

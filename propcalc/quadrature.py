@@ -28,6 +28,11 @@ on ``z1`` (split at the breakpoints of the first argument) and, per outer node,
 on ``z2`` with mean ``sqrt(q2) c z1`` and variance ``q2 (1 - c^2)`` (split where
 ``u2`` crosses a breakpoint of the second argument).
 
+When the inner expectation ``S(m, v) = E[g(m + sqrt(v) z)]`` is known in closed
+form (:mod:`propcalc.smoothing`), :func:`conditional_pair_expectation` does
+the outer integral only, ``E[f(u1) S(rho u1, q2 (1 - c^2))]`` with
+``rho = c sqrt(q2 / q1)``, on the same graded outer panels.
+
 Nodes and weights of the reference rules come from
 :func:`numpy.polynomial.legendre.leggauss` and
 :func:`numpy.polynomial.hermite_e.hermegauss` and are cached.
@@ -53,6 +58,7 @@ __all__ = [
     "hermite_rule",
     "gaussian_expectation",
     "bivariate_expectation",
+    "conditional_pair_expectation",
     "rule_nodes",
 ]
 
@@ -233,6 +239,12 @@ def _rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float],
     edges = np.clip(np.concatenate(pieces, axis=-1), -L, L)
     edges.sort(axis=-1)
     a, bb = edges[..., :-1], edges[..., 1:]
+    if a.size:
+        # panels of zero width in every row (an edge listed twice, e.g. a breakpoint at the
+        # zero crossing, or edges clipped to +-z_max) would only carry weight-0 nodes
+        empty = np.all(a == bb, axis=tuple(range(a.ndim - 1)))
+        if np.any(empty) and not np.all(empty):
+            a, bb = a[..., ~empty], bb[..., ~empty]
     t, wt = legendre_rule(rule.n_per_panel)
     half = 0.5 * (bb - a)
     # few passes over the big arrays, in place: this is the hot loop of the 2-D rule
@@ -408,15 +420,7 @@ def bivariate_expectation(fn: Callable[[Array, Array], Array], c: Any, q1: float
     flat = c.ravel()
     n_out = n_integrands
     out = np.empty((n_out,) + flat.shape, dtype=float)
-    s_all = np.sqrt(np.maximum(0.0, 1.0 - flat * flat))
-    # Near |c| = 1 the inner expectation E[g(u1, u2) | z1] changes over a width
-    # s / |c| in z1 where the inner mean crosses a breakpoint of the second
-    # argument (z1 = b / (c sqrt(q2))): grade the outer panels there, 2^k (s/|c|).
-    with np.errstate(divide="ignore"):
-        ratio = np.where(s_all > 0, np.abs(flat) / np.where(s_all > 0, s_all, 1.0), np.inf)
-    levels = np.zeros(flat.shape, dtype=int)
-    if bps2:
-        levels = np.clip(np.ceil(np.log2(np.maximum(ratio, 1.0))), 0, 40).astype(int)
+    levels = _crossing_levels(flat, bps2)
     for level in np.unique(levels):
         idx = np.flatnonzero(levels == level)
         _bivariate_group(fn, flat, idx, int(level), sq1, sq2, tuple(breakpoints1), bps2, rule,
@@ -436,17 +440,10 @@ def _bivariate_group(fn: Callable[[Array, Array], Array], flat: Array, idx: Arra
     for start in range(0, idx.size, step):
         sel = idx[start:start + step]
         cc = flat[sel]
-        extra = None
-        if level > 0:
-            s = np.sqrt(np.maximum(0.0, 1.0 - cc * cc))
-            width = np.where(s > 0, s / np.maximum(np.abs(cc), 1e-300), 0.0)
-            with np.errstate(divide="ignore"):
-                centers = np.asarray(bps2)[None, :] / (np.where(cc == 0, np.inf, cc)[:, None] * sq2)
-            offs = np.concatenate([sgn * 2.0 ** np.arange(level) for sgn in (-1.0, 1.0)])
-            extra = (centers[:, :, None] + width[:, None, None] * offs).reshape(cc.size, -1)
+        extra = _crossing_edges(cc, sq2, bps2, level)
         x1, w1 = rule_nodes(np.zeros(cc.size), np.full(cc.size, q1), bps1, rule, extra)
         z1 = x1 / sq1
-        s2 = np.maximum(0.0, 1.0 - cc * cc)
+        s2 = np.maximum(0.0, (1.0 - cc) * (1.0 + cc))
         mean2 = sq2 * cc[:, None] * z1
         var2 = np.broadcast_to((q2 * s2)[:, None], mean2.shape)
         fixed = not bps2 and float(np.max(q2 * s2)) <= rule.scale ** 2
@@ -472,3 +469,112 @@ def _bivariate_group(fn: Callable[[Array, Array], Array], flat: Array, idx: Arra
                 out[k, sel] = np.einsum("ij,ijk,k->i", w1, g, w2)
             else:
                 out[k, sel] = np.einsum("ij,ijk,ijk->i", w1, w2, g)
+
+
+def _sine(c: Array, gap: Array | None = None) -> Array:
+    """sqrt(1 - c^2), from the exact gap 1 - c when given (c near 1)."""
+    if gap is not None:
+        return np.sqrt(np.maximum(0.0, gap * (2.0 - gap)))
+    return np.sqrt(np.maximum(0.0, (1.0 - c) * (1.0 + c)))
+
+
+def _crossing_levels(c: Array, bps2: Sequence[float], s_all: Array | None = None) -> Array:
+    """Grading depth of the outer rule where the inner mean crosses a breakpoint.
+
+    Near |c| = 1 the inner expectation E[g(u1, u2) | z1] changes over a width
+    s / |c| in z1 (s = sqrt(1 - c^2)) where the inner mean crosses a
+    breakpoint b of the second argument, z1 = b / (c sqrt(q2)): the outer
+    panels are graded there, 2^k (s / |c|) for k < ceil(log2(|c| / s)).
+    """
+    if not len(bps2):
+        return np.zeros(c.shape, dtype=int)
+    s_all = _sine(c) if s_all is None else s_all
+    with np.errstate(divide="ignore"):
+        ratio = np.where(s_all > 0, np.abs(c) / np.where(s_all > 0, s_all, 1.0), np.inf)
+    return np.clip(np.ceil(np.log2(np.maximum(ratio, 1.0))), 0, 40).astype(int)
+
+
+def _crossing_edges(cc: Array, sq2: float, bps2: Sequence[float], level: int,
+                    s: Array | None = None) -> Array | None:
+    """The extra outer panel edges (in z1) of :func:`_crossing_levels`, shape (n, k)."""
+    if level <= 0:
+        return None
+    s = _sine(cc) if s is None else s
+    width = np.where(s > 0, s / np.maximum(np.abs(cc), 1e-300), 0.0)
+    with np.errstate(divide="ignore"):
+        centers = np.asarray(bps2)[None, :] / (np.where(cc == 0, np.inf, cc)[:, None] * sq2)
+    offs = np.concatenate([sgn * 2.0 ** np.arange(level) for sgn in (-1.0, 1.0)])
+    return (centers[:, :, None] + width[:, None, None] * offs).reshape(cc.size, -1)
+
+
+def conditional_pair_expectation(pairs: Sequence[tuple[Callable[[Array], Array],
+                                                        Callable[[Array, Array], Array]]],
+                                 c: Any, q1: float = 1.0, q2: float | None = None,
+                                 breakpoints1: Sequence[float] = (),
+                                 breakpoints2: Sequence[float] | None = None, *,
+                                 rule: QuadratureRule = DEFAULT_RULE,
+                                 chunk_elements: int = 1 << 20,
+                                 what: str = "the integrand",
+                                 gap: Any = None) -> tuple[Array, ...]:
+    """E[f(u1) g(u2)] as a 1-D integral, given S(m, v) = E[g(m + sqrt(v) z)] in closed form.
+
+    For the pair of :func:`bivariate_expectation`, ``u2 | u1`` is normal with
+    mean ``rho u1``, ``rho = c sqrt(q2 / q1)``, and variance ``q2 (1 - c^2)``, so
+    ``E[f(u1) g(u2)] = E[f(u1) S(rho u1, q2 (1 - c^2))]``. The outer rule
+    splits at ``breakpoints1`` and is graded where ``rho u1`` crosses
+    ``breakpoints2`` (there S changes over the width of the inner spread).
+
+    Parameters
+    ----------
+    pairs : sequence of (f, S)
+        Outer functions and inner smoothings, integrated on shared nodes.
+    c : array_like
+        Correlations in [-1, 1].
+    q1, q2 : float
+        Variances (q2 defaults to q1), finite and > 0.
+    breakpoints1, breakpoints2 : sequence of float
+        Breakpoints of the f's and of the g's (the second defaults to the first).
+    chunk_elements : int
+        Memory bound: correlations are processed in chunks of about this many nodes.
+    gap : array_like, optional
+        ``1 - c`` where it is known more precisely than ``c`` (near c = 1, where
+        ``1 - c^2`` computed from c would keep few digits).
+
+    Returns
+    -------
+    tuple of ndarray
+        One array of the shape of ``c`` per pair.
+    """
+    c = np.asarray(c, dtype=float)
+    q2 = q1 if q2 is None else q2
+    _validate(c, "c", lower=-1.0, upper=1.0)
+    _validate(np.asarray(q1, dtype=float), "q1", lower=0.0, strict=True)
+    _validate(np.asarray(q2, dtype=float), "q2", lower=0.0, strict=True)
+    bps2 = tuple(breakpoints1 if breakpoints2 is None else breakpoints2)
+    sq1, sq2 = math.sqrt(q1), math.sqrt(q2)
+    flat = c.ravel()
+    sine = _sine(flat, None if gap is None else np.asarray(gap, dtype=float).ravel())
+    out = np.empty((len(pairs),) + flat.shape, dtype=float)
+    levels = _crossing_levels(flat, bps2, sine)
+    bps1 = tuple(breakpoints1)
+    for level in np.unique(levels):
+        idx = np.flatnonzero(levels == level)
+        n_outer = _node_count(sq1, len(bps1) + 2 * int(level) * len(bps2), rule)
+        step = max(1, int(chunk_elements // n_outer))
+        for start in range(0, idx.size, step):
+            sel = idx[start:start + step]
+            cc = flat[sel]
+            extra = _crossing_edges(cc, sq2, bps2, int(level), sine[sel])
+            x1, w1 = rule_nodes(np.zeros(cc.size), np.full(cc.size, q1), bps1, rule, extra)
+            mean2 = (cc * (sq2 / sq1))[:, None] * x1
+            var2 = (q2 * sine[sel] ** 2)[:, None]
+            for k, (f, smooth) in enumerate(pairs):
+                with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+                    g = np.asarray(f(x1), dtype=float) * smooth(mean2, var2)
+                    res = np.einsum("ij,ij->i", w1, g)
+                if not np.all(np.isfinite(res)):
+                    g = np.where(w1 > 0, g, 0.0)  # weight-0 nodes may sit on breakpoints
+                    _check_finite(g, x1, what)
+                    res = np.einsum("ij,ij->i", w1, g)
+                out[k, sel] = res
+    return tuple(o.reshape(c.shape) for o in out)

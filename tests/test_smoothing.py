@@ -1,0 +1,233 @@
+"""Closed-form Gaussian smoothings E[phi(m + sqrt(v) z)] and the 1-D correlation-map route.
+
+Sources:
+* the reference values are mpmath quadratures at 30 digits, split at the breakpoints
+  (mpmath.quad, tanh-sinh);
+* truncated normal moments E[1{a <= z < b}] = Phi(b) - Phi(a), E[z 1{a <= z < b}] =
+  varphi(a) - varphi(b) (Johnson, Kotz & Balakrishnan 1994, vol. 1, section 10.1) are what
+  the code implements; they are not re-derived here, only checked through mpmath;
+* the map values: Cho & Saul 2009 (arc-cosine kernels) and Sheppard 1899, evaluated in mpmath;
+* scipy.integrate.dblquad for one pair expectation of each piecewise activation.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+
+import mpmath
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+from scipy import integrate
+
+import propcalc
+from propcalc import maps
+from propcalc.quadrature import bivariate_expectation, conditional_pair_expectation
+
+A = propcalc.activation
+
+SMOOTHED = [("linear", {}), ("step", {}), ("relu", {}), ("leaky_relu", {"slope": 0.2}),
+            ("elu", {}), ("elu", {"alpha": 0.5}), ("selu", {}), ("hard_tanh", {}),
+            ("gelu", {}), ("erf", {})]
+IDS = [n + "".join(f"-{k}{v}" for k, v in p.items()) for n, p in SMOOTHED]
+
+# mpmath versions of value and derivative (regular part), from the definitions
+_SELU_A = mpmath.mpf("1.6732632423543772848170429916717")
+_SELU_L = mpmath.mpf("1.0507009873554804934193349852946")
+
+
+def _mp_functions(name: str, params: dict):
+    one, zero = mpmath.mpf(1), mpmath.mpf(0)
+    if name == "linear":
+        return (lambda x: x), (lambda x: one)
+    if name == "step":
+        return (lambda x: one if x >= 0 else zero), (lambda x: zero)
+    if name == "relu":
+        return (lambda x: x if x > 0 else zero), (lambda x: one if x > 0 else zero)
+    if name == "leaky_relu":
+        a = mpmath.mpf(params["slope"])
+        return (lambda x: x if x > 0 else a * x), (lambda x: one if x > 0 else a)
+    if name in ("elu", "selu"):
+        a = _SELU_A if name == "selu" else mpmath.mpf(params.get("alpha", 1.0))
+        lam = _SELU_L if name == "selu" else one
+        return ((lambda x: lam * (x if x > 0 else a * (mpmath.exp(x) - 1))),
+                (lambda x: lam * (one if x > 0 else a * mpmath.exp(x))))
+    if name == "hard_tanh":
+        return ((lambda x: max(-one, min(one, x))), (lambda x: one if abs(x) < 1 else zero))
+    if name == "gelu":
+        return ((lambda x: x * mpmath.ncdf(x)), (lambda x: mpmath.ncdf(x) + x * mpmath.npdf(x)))
+    if name == "erf":
+        return mpmath.erf, (lambda x: 2 / mpmath.sqrt(mpmath.pi) * mpmath.exp(-x * x))
+    raise KeyError(name)
+
+
+def _mp_smooth(fn, m: float, v: float, breakpoints) -> tuple[float, float]:
+    """(E[fn(m + s z)], E[|fn(m + s z)|]) by mpmath.quad, split where m + s z crosses a breakpoint."""
+    with mpmath.workdps(30):
+        m_, s_ = mpmath.mpf(m), mpmath.sqrt(mpmath.mpf(v))
+        cuts = sorted({(mpmath.mpf(b) - m_) / s_ for b in breakpoints} | {mpmath.mpf(0)})
+        # the mass sits near z = 0 and, for the exponential pieces, near z = s
+        cuts = sorted(set(cuts) | {s_, -s_, 2 * s_})
+        pts = [-mpmath.inf] + cuts + [mpmath.inf]
+        val = mpmath.quad(lambda z: fn(m_ + s_ * z) * mpmath.npdf(z), pts)
+        mag = mpmath.quad(lambda z: abs(fn(m_ + s_ * z)) * mpmath.npdf(z), pts)
+    return float(val), float(mag)
+
+
+MV = [(0.0, 1.0), (0.3, 0.04), (-0.7, 2.5), (1.9, 0.3), (-2.5, 0.5), (0.9, 1e-6),
+      (-1.0, 1e-3), (4.0, 9.0), (-6.0, 4.0), (12.0, 30.0), (-30.0, 100.0), (0.0, 400.0)]
+
+
+@pytest.mark.parametrize("name,params", SMOOTHED, ids=IDS)
+def test_smoothing_matches_mpmath(name, params):
+    # E[phi(m + s z)] and E[phi'(m + s z)] against mpmath at 30 digits. Required: 1e-13 of
+    # E|phi(m + s z)| (what the maps need: the smoothing is multiplied by phi and summed).
+    act = A(name, **params)
+    f_mp, d_mp = _mp_functions(name, params)
+    m = np.array([p[0] for p in MV])
+    v = np.array([p[1] for p in MV])
+    for fn_mp, smooth in ((f_mp, act.smoothing.value), (d_mp, act.smoothing.derivative)):
+        got = smooth(m, v)
+        for i, (mi, vi) in enumerate(MV):
+            ref, mag = _mp_smooth(fn_mp, mi, vi, act.breakpoints)
+            # (+1e-30: below that mpmath's own quadrature of far Gaussian tails loses
+            # relative digits; scipy's ndtr there agrees with mpmath.ncdf to 2e-13)
+            assert abs(got[i] - ref) <= 1e-13 * mag + 1e-30, (mi, vi, got[i], ref)
+
+
+@pytest.mark.parametrize("name,params", SMOOTHED, ids=IDS)
+def test_smoothing_tails_and_extremes_are_finite_and_small(name, params):
+    # |m| up to 1e4 and v up to 1e4: no warning, no overflow, no NaN; far in the tails the
+    # result is accurate to rounding in absolute terms (1e-15 (1 + |m|)) against mpmath
+    act = A(name, **params)
+    f_mp, d_mp = _mp_functions(name, params)
+    m = np.array([-1e4, -300.0, -40.0, 40.0, 300.0, 1e4, -20.0, 20.0, 5e3])
+    v = np.array([1e4, 1.0, 1.0, 1.0, 1e-2, 1e4, 1.0, 1e-12, 2e3])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        vals = act.smoothing.value(m, v)
+        ders = act.smoothing.derivative(m, v)
+    assert np.all(np.isfinite(vals)) and np.all(np.isfinite(ders))
+    for i in (2, 3, 6, 7):  # moderate points where mpmath is quick
+        ref, _ = _mp_smooth(f_mp, m[i], v[i], act.breakpoints)
+        assert abs(vals[i] - ref) <= 1e-15 * (1 + abs(m[i])), (m[i], vals[i], ref)
+        ref, _ = _mp_smooth(d_mp, m[i], v[i], act.breakpoints)
+        assert abs(ders[i] - ref) <= 1e-15 * (1 + abs(m[i])), (m[i], ders[i], ref)
+
+
+@pytest.mark.parametrize("name,params", SMOOTHED, ids=IDS)
+def test_smoothing_at_zero_variance_is_the_function(name, params):
+    # E[phi(m + 0 z)] = phi(m), away from breakpoints (definition)
+    act = A(name, **params)
+    m = np.array([-3.3, -0.4, 0.25, 2.0, 7.5])
+    assert_allclose(act.smoothing.value(m, np.zeros_like(m)), act.value(m), rtol=0, atol=1e-15)
+    assert_allclose(act.smoothing.derivative(m, np.zeros_like(m)), act.derivative(m), rtol=0,
+                    atol=1e-15)
+
+
+def test_smooth_activations_without_a_closed_form_have_none():
+    # only closed forms are attached; the rest of the built-ins use the series and the 2-D rule
+    for name in ("tanh", "sigmoid", "softplus", "silu", "swish", "mish", "gelu_tanh"):
+        assert A(name).smoothing is None
+    assert propcalc.activation("max(x, 0)").smoothing is None  # typed formulas: none yet
+
+
+@pytest.mark.parametrize("name,params", [p for p in SMOOTHED if p[0] != "linear"],
+                         ids=[i for i in IDS if i != "linear"])
+def test_pair_expectation_agrees_with_dblquad(name, params):
+    # E[phi(u1) phi(u2)] at q = 1.3, c = 0.62 against scipy.integrate.dblquad over
+    # (z1, z2) in [-9, 9]^2 (mass outside ~2e-19), split at the breakpoints in z1
+    act = A(name, **params)
+    q, c = 1.3, 0.62
+    s = math.sqrt(1 - c * c)
+    sq = math.sqrt(q)
+
+    def integrand(z2, z1):
+        u1, u2 = sq * z1, sq * (c * z1 + s * z2)
+        dens = math.exp(-0.5 * (z1 * z1 + z2 * z2)) / (2 * math.pi)
+        return float(act.value(np.array([u1]))[0] * act.value(np.array([u2]))[0]) * dens
+
+    cuts = sorted({-9.0, 9.0} | {b / sq for b in act.breakpoints if abs(b / sq) < 9})
+    ref = 0.0
+    for lo, hi in zip(cuts[:-1], cuts[1:]):
+        # inner breakpoints: z2 = (b / sq - c z1) / s; dblquad splits them poorly, so the
+        # inner integral is done with quad and points
+        def inner(z1):
+            pts = [(b / sq - c * z1) / s for b in act.breakpoints]
+            pts = [p for p in pts if -9 < p < 9]
+            return integrate.quad(integrand, -9, 9, args=(z1,), points=pts or None,
+                                  epsabs=1e-14, epsrel=1e-13, limit=200)[0]
+        ref += integrate.quad(inner, lo, hi, epsabs=1e-14, epsrel=1e-13, limit=200)[0]
+    got = float(maps.pair_expectation(act, c, q))
+    assert got == pytest.approx(ref, rel=1e-10, abs=1e-12)
+
+
+@pytest.mark.parametrize("name,params", SMOOTHED, ids=IDS)
+@pytest.mark.parametrize("q", [0.2, 1.0, 9.0])
+def test_one_dimensional_route_agrees_with_the_two_dimensional_rule(name, params, q):
+    # internal consistency, two independent quadratures (no outside source): the closed-form
+    # route of conditional_pair_expectation against the 2-D rule of bivariate_expectation
+    act = A(name, **params)
+    c = np.array([-0.999, -0.8, -0.3, 0.0, 0.45, 0.7, 0.95, 0.985])
+    one = conditional_pair_expectation([(act.value, act.smoothing.value),
+                                        (act.derivative, act.smoothing.derivative)],
+                                       c, q, q, act.breakpoints)
+    two = bivariate_expectation(lambda a, b: (act.value(a) * act.value(b),
+                                              act.derivative(a) * act.derivative(b)),
+                                c, q, q, act.breakpoints, n_integrands=2)
+    scale = float(maps.second_moment(act, q)) + 1e-300
+    assert_allclose(one[0], two[0], rtol=0, atol=2e-14 * scale)
+    if not act.has_jumps:  # (a jumping phi' has Dirac masses, handled outside both rules)
+        dscale = float(maps.derivative_second_moment(act, q))
+        assert_allclose(one[1], two[1], rtol=0, atol=2e-14 * max(dscale, 1e-3))
+
+
+def _mp_one_minus_relu_kernel(gap: float) -> float:
+    with mpmath.workdps(50):
+        c = 1 - mpmath.mpf(gap)
+        return float(1 - (mpmath.sqrt(1 - c * c) + (mpmath.pi - mpmath.acos(c)) * c) / mpmath.pi)
+
+
+@pytest.mark.parametrize("gap", [9e-3, 1e-5, 1e-9, 1e-13, 2.0**-52, 2.0**-53])
+def test_relu_one_minus_c_near_one_to_rounding(gap):
+    # Cho & Saul 2009, degree 1, at sigma_w2 = 2, sigma_b2 = 0 (C = J_1(c) / pi): 1 - C(1 - d)
+    # to 1e-13 relative plus the two ulps of C itself near 1 (2.2e-16), down to d = 2^-53 (the
+    # last float below 1), where 1 - c^2 in floats keeps no digits; the route is
+    # E[phi^2] - q int_c^1 E[phi' phi'] (Price 1958)
+    c = 1.0 - gap  # a float; its exact gap 1 - c (Sterbenz) is what the references use
+    gap = 1.0 - c
+    got = 1.0 - float(maps.correlation_map(A("relu"), c, 2.0, 0.0, 1.0))
+    exact = _mp_one_minus_relu_kernel(gap)
+    assert abs(got - exact) <= 1e-13 * exact + 2.3e-16, (gap, got, exact)
+    slope = float(maps.correlation_map_slope(A("relu"), c, 2.0, 0.0, 1.0))
+    with mpmath.workdps(50):  # degree 0: C'(c) = (pi - arccos c) / pi
+        exact_slope = float(1 - mpmath.acos(1 - mpmath.mpf(gap)) / mpmath.pi)
+    assert abs(slope - exact_slope) <= 1e-15, (gap, slope, exact_slope)  # a few ulps
+
+
+@pytest.mark.parametrize("gap", [5e-3, 1e-7, 1e-12, 2.0**-53])
+def test_step_near_one_is_sheppard(gap):
+    # Sheppard 1899: P(u1 > 0, u2 > 0) = 1/4 + arcsin(c) / (2 pi); near c = 1,
+    # 1/2 - P = arccos(c) / (2 pi), computed in mpmath from the exact gap; to 1e-13 relative
+    # plus the ulp of P near 1/2 (1.1e-16)
+    step = A("step")
+    c = 1.0 - gap  # a float; its exact gap 1 - c (Sterbenz) is what the reference uses
+    gap = 1.0 - c
+    got = 0.5 - float(maps.pair_expectation(step, c, 1.7))
+    with mpmath.workdps(40):
+        exact = float(mpmath.acos(1 - mpmath.mpf(gap)) / (2 * mpmath.pi))
+    assert abs(got - exact) <= 1e-13 * exact + 1.2e-16, (gap, got, exact)
+
+
+def test_closed_form_route_is_used_for_long_maps_of_kinked_activations():
+    # the reason it exists: a 1000-point ReLU map without any 2-D evaluation away from c = 1
+    # (structure check; the speed itself is measured in tests/benchmarks/bench_engine.py)
+    relu = A("relu")
+    c = np.linspace(-1, 1, 1000)
+    got = maps.correlation_map(relu, c, 2.0, 0.0, 1.0)
+    with mpmath.workdps(30):
+        ref = np.array([float((mpmath.sqrt(1 - mpmath.mpf(x) ** 2)
+                               + (mpmath.pi - mpmath.acos(mpmath.mpf(x))) * mpmath.mpf(x))
+                              / mpmath.pi) for x in c])
+    assert_allclose(got, ref, rtol=0, atol=3e-15)
