@@ -196,9 +196,12 @@ def chi_1(act: Activation, q: Any, sigma_w2: float, rule: QuadratureRule = DEFAU
 #: relative in 1 - C. Closer to c = 1 the value comes from the integral of the slope, which
 #: keeps 1 - C accurate to rounding relative to itself.
 CONDITIONAL_GAP = 1e-2
-#: Gauss-Legendre nodes in u = sqrt(1 - t) for that integral (u <= 0.1; the integrand is
-#: analytic in u for |u| < sqrt(2), so 12 nodes leave (0.1 / 1.4)^24 ~ 1e-28).
-SLOPE_NODES = 12
+#: Gauss-Legendre nodes per panel in u = sqrt(1 - t) for that integral. For a kinked or
+#: jumping phi the integrand is analytic in u for |u| < sqrt(2); for a smooth phi at large q
+#: its nearest singularity can be as close as ~i / sqrt(2 q) (erf: (1 + 2q)^2 = 4 q^2 t^2),
+#: so the u-range is split geometrically down to that distance: each panel then sees its
+#: singularity at least a panel-width away and 8 nodes leave ~1e-15.
+SLOPE_NODES = 8
 
 
 def _pair_conditional(act: Activation, kinds: tuple[str, ...], c: Array, q: float,
@@ -234,20 +237,36 @@ def _pair_conditional(act: Activation, kinds: tuple[str, ...], c: Array, q: floa
         inner = width > 0.0
         integral = np.zeros_like(cn)
         if np.any(inner):
-            t_gl, w_gl = legendre_rule(SLOPE_NODES)
-            wid = width[inner][:, None]
-            u = 0.5 * wid * (1.0 + t_gl)
+            u, wu = _slope_nodes(width[inner], q, act.scale)
             # the nodes t = 1 - u^2 are passed with their exact gaps u^2: in floats, t
             # itself would round to 1 for u < 1e-8 and 1 - t^2 would keep few digits
             gaps = (u * u).ravel()
             d_der = (direct(("derivative",), 1.0 - gaps, gaps)[0]
                      + _jump_terms(act, 1.0 - gaps, q, rule, gaps))
-            integral[inner] = np.sum(wid * w_gl * u * d_der.reshape(u.shape), axis=1)
+            integral[inner] = np.sum(wu * 2.0 * u * d_der.reshape(u.shape), axis=1)
         square = float(gaussian_expectation(lambda x: act.value(x) ** 2, q, act.breakpoints,
                                             rule=rule, what=what))
         for k, res in zip(kinds, results):
             res[near] = square - q * integral if k == "value" else direct((k,), cn)[0]
     return tuple(results)
+
+
+def _slope_nodes(width: Array, q: float, scale: float) -> tuple[Array, Array]:
+    """Nodes and weights in u on [0, width] (one row per width), graded towards u = 0.
+
+    Panels ``[width 2^-(k+1), width 2^-k]`` down to ``delta = scale / sqrt(2 q)`` (the
+    distance of the integrand's nearest singularity for a smooth phi), then [0, last edge].
+    """
+    t_gl, w_gl = legendre_rule(SLOPE_NODES)
+    delta = scale / math.sqrt(2.0 * q)
+    levels = int(max(0, math.ceil(math.log2(max(float(np.max(width)) / delta, 1.0)))))
+    frac = np.concatenate([[0.0], 2.0 ** -np.arange(levels, -1, -1, dtype=float)])
+    edges = width[:, None] * frac  # (n, levels + 2), rows of edges in u
+    a, b = edges[:, :-1], edges[:, 1:]
+    half = 0.5 * (b - a)
+    u = ((0.5 * (a + b))[:, :, None] + half[:, :, None] * t_gl).reshape(width.size, -1)
+    w = (half[:, :, None] * w_gl).reshape(width.size, -1)
+    return u, w
 
 
 def _pair_any(act: Activation, kinds: tuple[str, ...], c: Array, q: float,

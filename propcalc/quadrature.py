@@ -513,7 +513,7 @@ def conditional_pair_expectation(pairs: Sequence[tuple[Callable[[Array], Array],
                                  breakpoints1: Sequence[float] = (),
                                  breakpoints2: Sequence[float] | None = None, *,
                                  rule: QuadratureRule = DEFAULT_RULE,
-                                 chunk_elements: int = 1 << 20,
+                                 chunk_elements: int = 1 << 13,
                                  what: str = "the integrand",
                                  gap: Any = None) -> tuple[Array, ...]:
     """E[f(u1) g(u2)] as a 1-D integral, given S(m, v) = E[g(m + sqrt(v) z)] in closed form.
@@ -535,7 +535,8 @@ def conditional_pair_expectation(pairs: Sequence[tuple[Callable[[Array], Array],
     breakpoints1, breakpoints2 : sequence of float
         Breakpoints of the f's and of the g's (the second defaults to the first).
     chunk_elements : int
-        Memory bound: correlations are processed in chunks of about this many nodes.
+        Correlations are processed in chunks of about this many nodes (the default keeps
+        the temporaries in cache: 1.5-2x faster than large chunks).
     gap : array_like, optional
         ``1 - c`` where it is known more precisely than ``c`` (near c = 1, where
         ``1 - c^2`` computed from c would keep few digits).

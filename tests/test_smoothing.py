@@ -231,3 +231,19 @@ def test_closed_form_route_is_used_for_long_maps_of_kinked_activations():
                                + (mpmath.pi - mpmath.acos(mpmath.mpf(x))) * mpmath.mpf(x))
                               / mpmath.pi) for x in c])
     assert_allclose(got, ref, rtol=0, atol=3e-15)
+
+
+@pytest.mark.parametrize("q", [1.0, 100.0, 1e4, 1e6])
+def test_erf_near_one_at_large_q_is_williams(q):
+    # Williams 1997, eq. (11) with equal variances: E[erf(u1) erf(u2)] =
+    # (2 / pi) arcsin(2 c q / (1 + 2 q)), in mpmath from the exact gap. At large q the slope
+    # integrand has a singularity ~1 / sqrt(2 q) from u = 0, which the graded u-panels must
+    # resolve: required 16 ulps of the value (the rounding of E[erf^2] itself is ~4 ulps)
+    erf = A("erf")
+    for gap in [5e-3, 1e-4, 1e-7, 1e-10, 1e-14]:
+        c = 1.0 - gap
+        with mpmath.workdps(40):
+            qq, cc = mpmath.mpf(q), 1 - (1 - mpmath.mpf(c))
+            ref = float(2 / mpmath.pi * mpmath.asin(2 * cc * qq / (1 + 2 * qq)))
+        got = float(maps.pair_expectation(erf, c, q))
+        assert abs(got - ref) <= 16 * np.spacing(ref), (q, gap, got, ref)
