@@ -565,17 +565,22 @@ def conditional_pair_expectation(pairs: Sequence[tuple[Callable[[Array], Array],
         for start in range(0, idx.size, step):
             sel = idx[start:start + step]
             cc = flat[sel]
-            extra = _crossing_edges(cc, sq2, bps2, int(level), sine[sel])
-            x1, w1 = rule_nodes(np.zeros(cc.size), np.full(cc.size, q1), bps1, rule, extra)
+            if level == 0:  # the same outer nodes for every row: cached, and f once
+                x1, w1 = rule_nodes(0.0, q1, bps1, rule)
+                x1, w1 = x1[None, :], w1[None, :]
+            else:
+                extra = _crossing_edges(cc, sq2, bps2, int(level), sine[sel])
+                x1, w1 = rule_nodes(np.zeros(cc.size), np.full(cc.size, q1), bps1, rule, extra)
             mean2 = (cc * (sq2 / sq1))[:, None] * x1
             var2 = (q2 * sine[sel] ** 2)[:, None]
             for k, (f, smooth) in enumerate(pairs):
                 with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-                    g = np.asarray(f(x1), dtype=float) * smooth(mean2, var2)
-                    res = np.einsum("ij,ij->i", w1, g)
+                    fx = np.asarray(f(x1), dtype=float)
+                    g = fx * smooth(mean2, var2)
+                    res = np.einsum("ij,ij->i", np.broadcast_to(w1, g.shape), g)
                 if not np.all(np.isfinite(res)):
                     g = np.where(w1 > 0, g, 0.0)  # weight-0 nodes may sit on breakpoints
-                    _check_finite(g, x1, what)
-                    res = np.einsum("ij,ij->i", w1, g)
+                    _check_finite(g, np.broadcast_to(x1, g.shape), what)
+                    res = np.einsum("ij,ij->i", np.broadcast_to(w1, g.shape), g)
                 out[k, sel] = res
     return tuple(o.reshape(c.shape) for o in out)
