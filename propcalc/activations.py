@@ -296,14 +296,15 @@ def _gelu_tanh_value(x: Array) -> Array:
     # written as x * sigmoid(2 u), which is the same and cannot overflow; the cubic
     # is taken of x clipped to |x| <= 1e50, where sigmoid(2 u) is already 0 or 1.
     xc = np.clip(x, -1e50, 1e50)
-    u = _SQRT_2_OVER_PI * (xc + _GELU_TANH_C * xc**3)
+    u = _SQRT_2_OVER_PI * (xc + _GELU_TANH_C * (xc * xc * xc))  # not xc**3: pow is 100x slower
     return x * special.expit(2.0 * u)
 
 
 def _gelu_tanh_deriv(x: Array) -> Array:
     xc = np.clip(x, -1e50, 1e50)
-    u = _SQRT_2_OVER_PI * (xc + _GELU_TANH_C * xc**3)
-    du = _SQRT_2_OVER_PI * (1.0 + 3.0 * _GELU_TANH_C * xc**2)
+    x2 = xc * xc
+    u = _SQRT_2_OVER_PI * (xc + _GELU_TANH_C * (x2 * xc))
+    du = _SQRT_2_OVER_PI * (1.0 + 3.0 * _GELU_TANH_C * x2)
     s = special.expit(2.0 * u)
     return s + xc * 2.0 * du * s * special.expit(-2.0 * u)
 

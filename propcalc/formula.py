@@ -924,6 +924,9 @@ def _make_closure(n: _Node, kids: list[_Fn]) -> _Fn:
             return lambda x, m: a(x, m) * b(x, m)
         if op == "div":
             return lambda x, m: a(x, m) / b(x, m)
+        expo = n.args[1]
+        if expo.op == "num" and float(expo.value).is_integer() and 1 <= abs(expo.value) <= 8:
+            return _integer_power(a, int(expo.value))
         return lambda x, m: a(x, m) ** b(x, m)
     if op == "call":
         if n.name in _FUNCTIONS_2:
@@ -958,6 +961,29 @@ def _make_closure(n: _Node, kids: list[_Fn]) -> _Fn:
         (a,) = kids
         return lambda x, m: np.logical_not(a(x, m))
     raise AssertionError(op)  # pragma: no cover
+
+
+def _integer_power(a: _Fn, k: int) -> _Fn:
+    """a**k for a small integer k by repeated multiplication (numpy's pow is ~100x slower).
+
+    Binary powering: at most 6 multiplications for |k| <= 8; negative k divides 1 by
+    the result. Overflow gives inf exactly as pow does.
+    """
+    n = abs(k)
+
+    def power(x: Any, m: dict) -> Any:
+        base = a(x, m)
+        result = None
+        e = n
+        while e:
+            if e & 1:
+                result = base if result is None else result * base
+            e >>= 1
+            if e:
+                base = base * base
+        return 1.0 / result if k < 0 else result
+
+    return power
 
 
 def _shared(fn: _Fn, key: int, uses: int) -> _Fn:

@@ -113,8 +113,9 @@ def series_fixed_points(act: Activation, sw: Array, sb: Array, q: Array, kmax: i
     rows = np.arange(n)
     val0, slope0 = value_and_slope(np.zeros(n), rows)
     zero = np.abs(val0) <= 1e-15  # as the engine: C(0) = 0 means c* = 0
-    # bracket c* on a grid of c in [0, 1): g > 0 left of c*, g < 0 between c* and 1
-    grid = np.arange(64) / 64.0
+    # bracket c* on a grid of c in [0, 1): g > 0 left of c*, g < 0 between c* and 1;
+    # the grid continues geometrically towards 1 (1 - 2^-k) for c* close to 1
+    grid = np.concatenate([np.arange(64) / 64.0, 1.0 - 2.0 ** -np.arange(7, 17)])
     with np.errstate(under="ignore"):
         powers = grid[None, :] ** k[:, None]
     g_grid = (sw[:, None] * (b @ powers) + sb[:, None]) / v[:, None] - grid

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import math
 import re
+import warnings
 
 import mpmath
 import numpy as np
@@ -27,6 +28,7 @@ from scipy import integrate, optimize
 
 import propcalc
 from propcalc import Activation, criticality, maps
+from propcalc.quadrature import DEFAULT_RULE
 
 A = propcalc.activation
 
@@ -520,3 +522,58 @@ def test_propagation_never_returns_nan(name):
     for sb in (0.0, 0.05):
         for cp in propcalc.edge_of_chaos_at_bias(act, sb):
             propcalc.jsonable(cp.to_dict())
+
+
+# ------------------------------------------------------------------------------------------
+# the chaotic fixed point near c = 1 for a smooth activation without a closed form
+# ------------------------------------------------------------------------------------------
+def _nested_quad_map(act, c, sw, sb, q):
+    """C(c) by nested scipy.integrate.quad over (z1, z2) in [-10, 10]^2, split where u1 = 0
+    and u2 = 0 (Poole et al. 2016, eq. 5)."""
+    s, sq = math.sqrt((1 - c) * (1 + c)), math.sqrt(q)
+
+    def f(z2, z1):
+        u = np.array([sq * z1, sq * (c * z1 + s * z2)])
+        v = act.value(u)
+        return float(v[0] * v[1]) * math.exp(-0.5 * (z1 * z1 + z2 * z2)) / (2 * math.pi)
+
+    def inner(z1):
+        cut = -c * z1 / s
+        return integrate.quad(f, -10, 10, args=(z1,), points=[cut] if -10 < cut < 10 else None,
+                              epsabs=1e-14, epsrel=1e-11, limit=200)[0]
+
+    with warnings.catch_warnings():  # QUADPACK's roundoff notices; its error estimate is checked
+        warnings.simplefilter("ignore", integrate.IntegrationWarning)
+        pair, err = integrate.quad(inner, -10, 10, points=[0.0], epsabs=1e-13, epsrel=1e-11,
+                                   limit=200)
+    assert err < 2e-12 * abs(pair)  # relative: E[phi^2] is ~13 at q = 26
+    second = integrate.quad(lambda z: float(act.value(np.array([sq * z]))[0]) ** 2
+                            * math.exp(-0.5 * z * z) / math.sqrt(2 * math.pi), -10, 10,
+                            epsabs=1e-14, epsrel=1e-14, limit=200)[0]
+    return (sw * pair + sb) / (sw * second + sb)
+
+
+def test_gelu_tanh_chaotic_fixed_point_near_one_is_a_fixed_point_of_dblquads_map():
+    # gelu_tanh at (1.99, 0.2): q* ~ 26 and c* ~ 0.9903, where neither Hermite pass certifies
+    # c*; the 480-term guess is polished by the 2-D rule. Checked with nested scipy quad:
+    # C(c*) - c* vanishes to its tolerance (Poole et al. 2016, eq. 5 defines C)
+    act = A("gelu_tanh")
+    p = propcalc.propagation(act, 1.99, 0.2)
+    assert 0.99 < p.c_star < 0.991
+    assert abs(_nested_quad_map(act, p.c_star, 1.99, 0.2, p.q_star) - p.c_star) < 2e-12
+
+
+@pytest.mark.parametrize("guess", [None, 0.0, 0.5, 0.98, 0.990303, 0.9903033, 0.9904, 0.999,
+                                   1.0, math.nan])
+def test_correlation_fixed_point_warm_start_reaches_the_same_root(guess):
+    # internal consistency (no outside source): any guess, left or right of the root or
+    # useless, gives the cold-start answer
+    act = A("gelu_tanh")
+    q = propcalc.propagation(act, 1.99, 0.2).q_star
+    rule = DEFAULT_RULE
+    cold = criticality.correlation_fixed_point(act, 1.99, 0.2, q, rule)
+    warm = criticality.correlation_fixed_point(act, 1.99, 0.2, q, rule, guess=guess)
+    # both stop where |C(c) - c| <= 4e-15 (the rounding floor of C), so they may differ by
+    # up to 4e-15 / (1 - C'(c*)) in c*
+    assert warm[0] == pytest.approx(cold[0], abs=4e-15 / (1 - cold[1]))
+    assert warm[1] == pytest.approx(cold[1], rel=1e-12)
