@@ -22,9 +22,17 @@ A jump J of phi at b puts ``J delta(x - b)`` into phi': then ``chi_1`` is
 infinite and ``C'(c)`` picks up the conditional and bivariate densities at the
 jumps (the step function's map has infinite slope at c = 1).
 
-For ``|c| >= 1/2`` the pair expectation is computed in the difference form
-``E[f(u1) f(u2)] = E[f^2] - E[(f(u1) - f(u2))^2] / 2`` (exchangeable pair), so
-the error of the 2-D rule is scaled by the small difference near ``c = +-1``.
+Two routes compute the pair expectation E[f(u1) f(u2)]:
+
+* with a closed-form smoothing ``S_f(m, v) = E[f(m + sqrt(v) z)]`` on the
+  activation (:mod:`propcalc.smoothing`), the 1-D integral
+  ``E[f(u1) S_f(c u1, q (1 - c^2))]`` (u2 given u1 is normal); for
+  ``1 - c < CONDITIONAL_GAP`` the value is ``E[f^2] - q int_c^1 E[f'(u1) f'(u2)](t) dt``
+  (Price's theorem), so 1 - C keeps its digits near c = 1;
+* otherwise the 2-D rule, for ``|c| >= 1/2`` in the difference form
+  ``E[f(u1) f(u2)] = E[f^2] - E[(f(u1) - f(u2))^2] / 2`` (exchangeable pair), so
+  its error is scaled by the small difference near ``c = +-1``; vectorised maps
+  of smooth activations use the Hermite series where its tail bound allows.
 """
 
 from __future__ import annotations
@@ -42,6 +50,8 @@ from .quadrature import (DEFAULT_RULE, QuadratureRule, bivariate_expectation,
                          conditional_pair_expectation, gaussian_expectation, legendre_rule)
 
 __all__ = [
+    "CONDITIONAL_GAP",
+    "SLOPE_NODES",
     "second_moment",
     "first_moment",
     "derivative_second_moment",
