@@ -227,7 +227,8 @@ def _pair_conditional(act: Activation, kinds: tuple[str, ...], c: Array, q: floa
     and jumps.
     """
     sm = act.smoothing
-    assert sm is not None
+    if sm is None:
+        raise TypeError(f"{act.label} has no closed-form smoothing")
     smooth = {"value": (act.value, sm.value), "derivative": (act.derivative, sm.derivative)}
 
     def direct(kind_list: tuple[str, ...], cc: Array,
@@ -236,7 +237,8 @@ def _pair_conditional(act: Activation, kinds: tuple[str, ...], c: Array, q: floa
                                             act.breakpoints, act.breakpoints, rule=rule,
                                             what=what, gap=gap)
 
-    near = (c > 1.0 - CONDITIONAL_GAP) & np.array([k == "value" for k in kinds]).any()
+    # only the value needs the slope integral near c = 1 (the slope itself has no cancellation)
+    near = (c > 1.0 - CONDITIONAL_GAP) if "value" in kinds else np.zeros(c.shape, dtype=bool)
     out = list(direct(kinds, c[~near])) if np.any(~near) else [np.empty(0) for _ in kinds]
     results = [np.empty_like(c) for _ in kinds]
     for res, o in zip(results, out):
