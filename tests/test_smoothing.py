@@ -130,7 +130,13 @@ def test_smooth_activations_without_a_closed_form_have_none():
     # only closed forms are attached; the rest of the built-ins use the series and the 2-D rule
     for name in ("tanh", "sigmoid", "softplus", "silu", "swish", "mish", "gelu_tanh"):
         assert A(name).smoothing is None
-    assert propcalc.activation("max(x, 0)").smoothing is None  # typed formulas: none yet
+    # typed formulas get one only when they are affine between their breakpoints
+    for text in ("x * sigmoid(x)", "max(x, 0) + 1e-3 * sin(x)", "where(x > 0, x, exp(x) - 1)",
+                 "max(x, 0)**2"):
+        assert A(text).smoothing is None, text
+    for text in ("max(x, 0)", "where(x > 0, x, 0.2 * x)", "min(max(x, -1), 1)", "abs(x)",
+                 "where(x >= 0, 1, 0)", "3 * x - 2", "relu(x) - 0.5"):
+        assert A(text).smoothing is not None, text
 
 
 @pytest.mark.parametrize("name,params", [p for p in SMOOTHED if p[0] != "linear"],
@@ -247,3 +253,30 @@ def test_erf_near_one_at_large_q_is_williams(q):
             ref = float(2 / mpmath.pi * mpmath.asin(2 * cc * qq / (1 + 2 * qq)))
         got = float(maps.pair_expectation(erf, c, q))
         assert abs(got - ref) <= 16 * np.spacing(ref), (q, gap, got, ref)
+
+
+def _mp_abs_kernel(c):
+    """E[|u1| |u2|] / q = (2 / pi) (sqrt(1 - c^2) + c arcsin c): |x| = relu(x) + relu(-x) and the
+    degree-1 arc-cosine kernel of Cho & Saul 2009 at c and -c, in mpmath."""
+    with mpmath.workdps(30):
+        return np.array([float(2 / mpmath.pi * (mpmath.sqrt(1 - mpmath.mpf(x) ** 2)
+                                                 + mpmath.mpf(x) * mpmath.asin(mpmath.mpf(x))))
+                         for x in np.ravel(c)])
+
+
+def test_typed_rectifiers_use_the_closed_form_and_match_the_kernels():
+    # typed formulas that are affine between breakpoints get the 1-D route; their maps match
+    # Cho & Saul 2009 (relu), Sheppard 1899 (a typed step) and the |x| kernel derived from them
+    c = np.concatenate([np.linspace(-1, 1, 201), [1 - 1e-9, -1 + 1e-9]])
+    with mpmath.workdps(30):
+        relu_k = np.array([float((mpmath.sqrt(1 - mpmath.mpf(x) ** 2) + (mpmath.pi
+                                  - mpmath.acos(mpmath.mpf(x))) * mpmath.mpf(x)) / mpmath.pi)
+                           for x in c])
+        orthant = np.array([float(mpmath.mpf(1) / 4 + mpmath.asin(mpmath.mpf(x)) / (2 * mpmath.pi))
+                            for x in c])
+    assert_allclose(maps.correlation_map(A("max(x, 0)"), c, 2.0, 0.0, 0.7), relu_k, rtol=0,
+                    atol=3e-14)
+    assert_allclose(maps.pair_expectation(A("where(x >= 0, 1, 0)"), c, 2.5), orthant, rtol=0,
+                    atol=3e-14)
+    assert_allclose(maps.pair_expectation(A("abs(x)"), c, 1.9) / 1.9, _mp_abs_kernel(c), rtol=0,
+                    atol=3e-14)
