@@ -26,7 +26,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 import propcalc
-from propcalc import maps
+from propcalc import Activation, maps
 from propcalc.quadrature import bivariate_expectation
 
 A = propcalc.activation
@@ -159,6 +159,20 @@ def test_erf_correlation_map_and_slope_closed_form(sw, sb, q):
                     sw * (2 / np.pi) * r / np.sqrt(1 - (r * C_GRID) ** 2) / v, rtol=1e-13)
     # E[erf'(sqrt(q) z)^2] = (4/pi) E[exp(-2 q z^2)] = (4/pi) / sqrt(1 + 4q) (Gaussian integral)
     assert_allclose(maps.chi_1(erf, q, sw), sw * 4 / np.pi / math.sqrt(1 + 4 * q), rtol=1e-14)
+
+
+@pytest.mark.parametrize("q", [1.0, 5.0, 26.0])
+def test_series_route_of_a_long_map_is_williams(q):
+    # the Hermite-series route of a vectorised map (160 terms, then 480, then the 2-D rule where
+    # neither tail bound is small enough), on erf with its closed-form smoothing removed so that
+    # it takes that route: Williams 1997 eq. (11), atol as the other map checks
+    erf = A("erf")
+    twin = Activation(name="erf", value_fn=erf.value_fn, derivative_fn=erf.derivative_fn,
+                      declared_scale=1.0)
+    c = np.concatenate([np.linspace(-1.0, 1.0, 1000), C_GRID])
+    v = float(williams(1.0, q, q))
+    got = maps.correlation_map(twin, c, 1.0, 0.0, q)
+    assert_allclose(got, williams(c, q, q) / v, rtol=0, atol=ATOL)
 
 
 # ------------------------------------------------------------------------------------------

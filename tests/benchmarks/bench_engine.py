@@ -2,25 +2,39 @@
 
 Run by hand from the repository root (not collected by pytest)::
 
-    python tests/benchmarks/bench_engine.py            # full run, about 1-3 minutes
-    python tests/benchmarks/bench_engine.py --quick    # fewer repeats, no 1000-point maps
+    python tests/benchmarks/bench_engine.py            # full run, a few minutes
+    python tests/benchmarks/bench_engine.py --quick    # fewer repeats, about half a minute
 
-What is compared, in the same process and the same run:
+What is measured, in the same process and the same run:
 
 A. One point of the correlation map, C(c) = E[phi(u1) phi(u2)] / E[phi(u1)^2] at q = 1
    (sigma_w2 = 1, sigma_b2 = 0; Poole et al. 2016, eq. 5), for tanh, relu and gelu at
    c = 0.3, 0.9, 0.99, computed by
-     * propcalc.correlation_map (one point per call; warm caches);
+     * propcalc.correlation_map, one isolated call per point (Python overhead included);
+     * propcalc.correlation_map, per point of one vectorised call on 1003 points
+       (c = linspace(-1, 1, 1000) with the three benchmark c appended, so the errors at
+       those c come from that same call): the time of the call divided by 1003;
      * scipy.integrate.dblquad over the whole plane, epsabs = epsrel = 1e-12
        (and scipy.integrate.quad for the 1-D denominator);
      * numpy Monte Carlo with 1e6 seeded samples;
-     * a plain tensor Gauss-Hermite rule without splitting at breakpoints, with the same
-       number of function evaluations as propcalc's call and with 16 times as many.
-   Also the cost per point of a 1000-point map (one vectorised propcalc call).
+     * a plain tensor Gauss-Hermite rule without splitting at breakpoints, with as many
+       phi evaluations as propcalc's isolated call and with 16 times as many.
+   relu and gelu carry a closed-form Gaussian smoothing (propcalc.smoothing), so propcalc
+   computes their pair expectation as a 1-D integral; tanh has none (2-D rule for one point,
+   Hermite series for the vectorised map). The evaluation counts are those of phi and phi'
+   (counted by wrapping them in a twin activation that keeps the smoothing and the declared
+   scale); the points at which the smoothing itself is evaluated (a few special functions
+   each) are counted apart and not added in.
+A2. A 1000-point correlation map (c = linspace(-1, 1, 1000), q = 1, sigma_w2 = 1,
+   sigma_b2 = 0) for every built-in with its default parameters, with the route it takes.
 B. A full ``propcalc.propagation`` call (q*, chi_1, c*, chi_c) against the same pipeline
    built on each baseline (Brent's method on V(q) - q and on C(c) - c, as propcalc does).
+B2. Propagation across the built-ins: for each built-in the first critical sigma_w2 at
+   sigma_b2 = 0.1 (propcalc.edge_of_chaos_at_bias), then propagation at 0.8, 1 and 1.25
+   times it (ordered side, edge, chaotic side), plus the three points of B.
+C. The targets, each judged on every row it concerns.
 
-Every number is compared with an mpmath reference (24-digit arithmetic):
+Every number of A and B is compared with an mpmath reference (24-digit arithmetic):
 relu by the arc-cosine kernels of Cho & Saul 2009 (closed form); gelu by a 1-D mpmath.quad
 whose inner Gaussian expectation is in closed form (E[X Phi(X)] for X ~ N(m, v)); tanh by a
 composite Gauss-Legendre rule in mpmath (24 nodes per panel of width 2 on [-10, 10]^2, error
@@ -45,6 +59,8 @@ from scipy import integrate, optimize, special
 
 import propcalc
 from propcalc import Activation
+from propcalc.criticality import edge_of_chaos_line_arrays
+from propcalc.smoothing import Smoothing
 
 # ---------------------------------------------------------------------------------------------
 # targets (from the project brief)
@@ -61,12 +77,22 @@ PROPAGATION_POINTS = [  # (activation, sigma_w2, sigma_b2): a chaotic, an ordere
     ("relu", 1.5, 0.2),
     ("gelu", 1.99, 0.2),
 ]
+MAP_CS = np.linspace(-1.0, 1.0, 1000)  # the 1000-point correlation map
+BUILTIN_SB2 = 0.1                      # sigma_b2 of the propagation points across the built-ins
+BUILTIN_FACTORS = ((0.8, "0.8 x critical (ordered side)"), (1.0, "critical (edge)"),
+                   (1.25, "1.25 x critical (chaotic side)"))
 SQRT_2PI = math.sqrt(2.0 * math.pi)
 
 
 # ---------------------------------------------------------------------------------------------
 # the three activations in three arithmetics
 # ---------------------------------------------------------------------------------------------
+def _np_sech2(x):
+    # sech(x)^2 = 4 e / (1 + e)^2 with e = exp(-2 |x|): no overflow of cosh at large |x|
+    e = np.exp(-2.0 * np.abs(x))
+    return 4.0 * e / (1.0 + e) ** 2
+
+
 def _np_gelu(x):
     return x * special.ndtr(x)
 
@@ -84,7 +110,7 @@ def _py_gelu_d(x):
 
 
 NUMPY = {  # (phi, phi')
-    "tanh": (np.tanh, lambda x: 1.0 / np.cosh(x) ** 2),
+    "tanh": (np.tanh, _np_sech2),
     "relu": (lambda x: np.maximum(x, 0.0), lambda x: (x > 0).astype(float)),
     "gelu": (_np_gelu, _np_gelu_d),
 }
@@ -269,8 +295,8 @@ class GaussHermite:
 def median_time(fn: Callable[[], object], repeats: int, warm: bool = True
                 ) -> tuple[float, object]:
     """Median wall time of ``repeats`` calls, after one untimed warm-up call if ``warm``
-    (propcalc caches its nodes; cheap baselines get the same courtesy, the slow adaptive
-    and sampling ones have no cache to warm)."""
+    (propcalc caches its quadrature nodes; cheap baselines get the same courtesy, the slow
+    adaptive and sampling ones have no cache to warm)."""
     out = fn() if warm else None
     times = []
     for _ in range(repeats):
@@ -281,8 +307,13 @@ def median_time(fn: Callable[[], object], repeats: int, warm: bool = True
 
 
 def counting(act: Activation) -> tuple[Activation, list[int]]:
-    """A copy of ``act`` that counts the points at which phi and phi' are evaluated."""
-    box = [0]
+    """A twin of ``act`` that counts evaluation points: ``box[0]`` of phi and phi',
+    ``box[1]`` of the closed-form smoothing (its value and its slope).
+
+    The twin keeps the smoothing and the declared scale, so propcalc takes the same route
+    for it as for ``act`` (checked by the callers: the twin's results must be identical).
+    """
+    box = [0, 0]
 
     def wrap(fn):
         def inner(x):
@@ -290,10 +321,20 @@ def counting(act: Activation) -> tuple[Activation, list[int]]:
             return fn(x)
         return inner
 
+    def wrap_smooth(fn):
+        def inner(m, v):
+            box[1] += int(np.broadcast(np.asarray(m), np.asarray(v)).size)
+            return fn(m, v)
+        return inner
+
+    sm = act.smoothing
+    twin_sm = (None if sm is None else
+               Smoothing(value=wrap_smooth(sm.value), derivative=wrap_smooth(sm.derivative)))
     twin = Activation(name=act.name, value_fn=wrap(act.value_fn),
-                      derivative_fn=wrap(act.derivative_fn), breakpoints=act.breakpoints)
-    _ = twin.jumps, twin.kinks  # profile probes are not part of the integrals
-    box[0] = 0
+                      derivative_fn=wrap(act.derivative_fn), breakpoints=act.breakpoints,
+                      params=act.params, declared_scale=act.declared_scale, smoothing=twin_sm)
+    _ = twin.jumps, twin.kinks, twin.scale  # profile probes are not part of the integrals
+    box[0] = box[1] = 0
     return twin, box
 
 
@@ -304,8 +345,10 @@ def rel_err(x: float | None, ref: float) -> float:
 
 
 def fmt_t(t: float) -> str:
+    if not math.isfinite(t):
+        return "failed"
     if t < 1e-3:
-        return f"{t * 1e6:.0f} us"
+        return f"{t * 1e6:.3g} us"
     if t < 1.0:
         return f"{t * 1e3:.2f} ms"
     return f"{t:.2f} s"
@@ -317,6 +360,17 @@ def fmt_e(e: float) -> str:
     if not math.isfinite(e):
         return "failed"
     return f"{e:.1e}"
+
+
+def fmt_r(r: float) -> str:
+    """A time ratio: thousands separators from 100x up, 2-3 digits below."""
+    if r >= 100:
+        return f"{r:,.0f}x"
+    return f"{r:.3g}x" if r >= 1 else f"{r:.2g}x"
+
+
+def fmt_g(x: float | None) -> str:
+    return "-" if x is None else f"{x:.6g}"
 
 
 def table(rows: list[list[str]], header: list[str]) -> str:
@@ -331,27 +385,50 @@ def table(rows: list[list[str]], header: list[str]) -> str:
 # ---------------------------------------------------------------------------------------------
 # A. correlation-map points
 # ---------------------------------------------------------------------------------------------
-def bench_points(repeats: int, slow_repeats: int, with_maps: bool, mc: MonteCarlo) -> dict:
-    rows, speedups, maps = [], [], {}
+def bench_points(repeats: int, slow_repeats: int, mc: MonteCarlo) -> dict:
+    rows, speedups, oddities = [], [], []
     dbl = Dblquad()
+    cs_map = np.concatenate([MAP_CS, CS])  # the benchmark c values ride along in the map
+    n_map = cs_map.size
     for name in NUMPY:
         act = propcalc.activation(name)
-        for c in CS:
+        t_map, vals_map = median_time(
+            lambda: propcalc.correlation_map(act, cs_map, 1.0, 0.0, 1.0), repeats)
+        t_map_pt = t_map / n_map
+        twin, box = counting(act)
+        twin_map = propcalc.correlation_map(twin, cs_map, 1.0, 0.0, 1.0)
+        map_evals, map_smooth = box[0] / n_map, box[1] / n_map
+        if not np.array_equal(twin_map, vals_map):
+            oddities.append(f"{name}: the counting twin's 1003-point map differs from propcalc's "
+                            "(max |diff| = "
+                            f"{float(np.max(np.abs(twin_map - vals_map))):.2e})")
+        smooth_note = (lambda k: "-") if act.smoothing is None else (lambda k: f"{k:,.0f}")
+        for i, c in enumerate(CS):
             ref = mp_correlation_point(name, c)
             t_pc, val = median_time(lambda: float(propcalc.correlation_map(act, c, 1.0, 0.0, 1.0)),
                                     repeats)
             twin, box = counting(act)
-            propcalc.correlation_map(twin, c, 1.0, 0.0, 1.0)
-            n_eval = box[0]
+            v_twin = float(propcalc.correlation_map(twin, c, 1.0, 0.0, 1.0))
+            n_eval, n_smooth = box
+            if v_twin != val:
+                oddities.append(f"{name} at c = {c:g}: the counting twin gives {v_twin!r}, "
+                                f"propcalc {val!r}")
             e_pc = rel_err(val, ref)
-            rows.append([name, f"{c:g}", "propcalc", f"{n_eval:,}", fmt_t(t_pc), fmt_e(e_pc), "1"])
+            e_map = rel_err(float(vals_map[MAP_CS.size + i]), ref)
+            rows.append([name, f"{c:g}", "propcalc, one isolated call", f"{n_eval:,}",
+                         smooth_note(n_smooth), fmt_t(t_pc), fmt_e(e_pc), "1",
+                         fmt_r(t_pc / t_map_pt)])
+            rows.append(["", "", "propcalc, per point of a 1000-point map", f"{map_evals:,.0f}",
+                         smooth_note(map_smooth), fmt_t(t_map_pt), fmt_e(e_map),
+                         fmt_r(t_map_pt / t_pc), "1"])
             # dblquad: few repeats, it is slow
             t_dq, v_dq = median_time(lambda: dbl.e2(name, 0, c, 1.0) / dbl.e1(name, 0, 1.0),
                                      slow_repeats, warm=False)
             e_dq = rel_err(v_dq, ref)
-            rows.append(["", "", dbl.label, "adaptive", fmt_t(t_dq), fmt_e(e_dq),
-                         f"{t_dq / t_pc:,.0f}x"])
-            speedups.append((name, c, t_dq / t_pc, e_pc, e_dq))
+            rows.append(["", "", dbl.label, "adaptive", "", fmt_t(t_dq), fmt_e(e_dq),
+                         fmt_r(t_dq / t_pc), fmt_r(t_dq / t_map_pt)])
+            speedups.append({"name": name, "c": c, "call": t_dq / t_pc, "map": t_dq / t_map_pt,
+                             "e_call": e_pc, "e_map": e_map, "e_dq": e_dq})
 
             def mc_point():
                 m = MonteCarlo.__new__(MonteCarlo)  # fresh seeded samples are part of the cost
@@ -360,30 +437,59 @@ def bench_points(repeats: int, slow_repeats: int, with_maps: bool, mc: MonteCarl
                 return m.e2(name, 0, c, 1.0) / m.e1(name, 0, 1.0)
 
             t_mc, v_mc = median_time(mc_point, slow_repeats, warm=False)
-            rows.append(["", "", mc.label, f"{2 * MC_SAMPLES:,}", fmt_t(t_mc),
-                         fmt_e(rel_err(v_mc, ref)), f"{t_mc / t_pc:,.0f}x"])
+            rows.append(["", "", mc.label, f"{2 * MC_SAMPLES:,}", "", fmt_t(t_mc),
+                         fmt_e(rel_err(v_mc, ref)), fmt_r(t_mc / t_pc), fmt_r(t_mc / t_map_pt)])
             n_same = max(2, math.isqrt(max(n_eval, 4)))
             for n, tag in ((n_same, "same evals"), (4 * n_same, "16x evals")):
                 gh = GaussHermite(n, n, f"n={n} ({tag})")
                 t_gh, v_gh = median_time(lambda: gh.e2(name, 0, c, 1.0) / gh.e1(name, 0, 1.0),
                                          repeats)
-                rows.append(["", "", gh.label, f"{n * n + 2 * n:,}", fmt_t(t_gh),
-                             fmt_e(rel_err(v_gh, ref)), f"{t_gh / t_pc:.2g}x"])
-        if with_maps:
-            cs = np.linspace(-1.0, 1.0, 1000)
-            t_map, _ = median_time(lambda: propcalc.correlation_map(act, cs, 1.0, 0.0, 1.0),
-                                   slow_repeats, warm=False)
-            maps[name] = t_map
+                rows.append(["", "", gh.label, f"{n * n + 2 * n:,}", "", fmt_t(t_gh),
+                             fmt_e(rel_err(v_gh, ref)), fmt_r(t_gh / t_pc),
+                             fmt_r(t_gh / t_map_pt)])
     print("A. one point of the correlation map C(c) = E[phi(u1) phi(u2)] / E[phi^2], q = 1 "
           "(error: relative, against mpmath)\n")
-    print(table(rows, ["activation", "c", "method", "evaluations", "time/point", "error",
-                       "time / propcalc"]))
-    if maps:
-        print("\n   1000-point correlation map (c = linspace(-1, 1, 1000)), one vectorised "
-              "propcalc call:")
-        for name, t in maps.items():
-            print(f"   {name:5s} {fmt_t(t):>10s}  ({fmt_t(t / 1000)} per point)")
-    return {"speedups": speedups, "maps": maps}
+    print(table(rows, ["activation", "c", "method", "evaluations", "smoothing evals",
+                       "time/point", "error", "time / one call", "time / map point"]))
+    print("\n   evaluations: points at which phi (or phi') is evaluated, per point; for the map "
+          f"row, those of the whole {n_map}-point call / {n_map}.\n"
+          "   smoothing evals: points (m, v) at which relu's and gelu's closed-form smoothing "
+          "E[phi(m + sqrt(v) z)] (or its slope) is evaluated, a few special functions each; "
+          "counted apart, not in 'evaluations' (tanh has no smoothing: '-').\n"
+          "   Gauss-Hermite 'same evals' gets n^2 ~ the phi evaluations of the isolated call, "
+          "without the smoothing's.\n"
+          f"   map row: median of one vectorised correlation_map call on c = linspace(-1, 1, "
+          f"1000) plus the three c above, after a warm-up (propcalc caches its quadrature "
+          f"nodes), divided by {n_map}; its error is read from that same call.\n"
+          "   time / one call, time / map point: this row's time over propcalc's isolated call, "
+          "and over propcalc's time per point of the map.")
+    for line in oddities:
+        print(f"   NOTE: {line}")
+    return {"speedups": speedups}
+
+
+# ---------------------------------------------------------------------------------------------
+# A2. 1000-point maps for every built-in
+# ---------------------------------------------------------------------------------------------
+def bench_maps(repeats: int) -> dict[str, float]:
+    rows, times = [], {}
+    for name in propcalc.builtin_names():
+        act = propcalc.activation(name)
+        route = ("closed-form smoothing (1-D)" if act.smoothing is not None
+                 else "Hermite series + 2-D near |c| = 1")
+        t, out = median_time(lambda: propcalc.correlation_map(act, MAP_CS, 1.0, 0.0, 1.0),
+                             repeats)
+        out = np.asarray(out)
+        times[name] = t
+        finite = bool(np.all(np.isfinite(out)))
+        rows.append([name, route, fmt_t(t), fmt_t(t / MAP_CS.size),
+                     "yes" if finite else "NO", fmt_e(abs(float(out[-1]) - 1.0))])
+    print(f"\nA2. 1000-point correlation map (c = linspace(-1, 1, 1000), q = 1, sigma_w2 = 1, "
+          f"sigma_b2 = 0, default parameters), one vectorised call; median of {repeats} after a "
+          "warm-up\n")
+    print(table(rows, ["activation", "route", "time", "time/point", "all finite",
+                       "|C(1) - 1|"]))
+    return times
 
 
 # ---------------------------------------------------------------------------------------------
@@ -412,8 +518,8 @@ def pipeline(method, name: str, sw: float, sb: float):
     return q, chi1, cstar, sw * method.e2(name, 1, cstar, q)
 
 
-def bench_propagation(repeats: int, mc: MonteCarlo) -> dict:
-    rows, times, notes = [], {}, []
+def bench_propagation(repeats: int, mc: MonteCarlo) -> None:
+    rows, notes = [], []
     guesses = {"tanh": (1.0, (0.6, 0.7)), "gelu": (20.0, (0.985, 0.995)), "relu": (1.0, ())}
     for name, sw, sb in PROPAGATION_POINTS:
         act = propcalc.activation(name)
@@ -424,16 +530,16 @@ def bench_propagation(repeats: int, mc: MonteCarlo) -> dict:
             return p.q_star, p.chi_1, p.c_star, p.chi_c
 
         t_pc, got = median_time(pc_call, repeats)
-        times[name] = t_pc
         phase = propcalc.propagation(act, sw, sb).phase
 
-        # evaluations propcalc spends on one 1-D and one 2-D expectation at this q*
+        # evaluations propcalc spends on one 1-D expectation and one correlation-map point
         twin, box = counting(act)
         propcalc.variance_map(twin, ref[0], sw, sb)
         n1 = box[0]
-        box[0] = 0
+        box[0] = box[1] = 0
         propcalc.correlation_map(twin, min(ref[2], 0.9), sw, sb, ref[0])
-        n2 = max(2, math.isqrt(max(box[0], 4)))
+        n_pair, n_smooth = box
+        n2 = max(2, math.isqrt(max(n_pair, 4)))
 
         def add(label, t, vals, ratio):
             errs = [rel_err(v, r) for v, r in zip(vals, ref)]
@@ -447,55 +553,155 @@ def bench_propagation(repeats: int, mc: MonteCarlo) -> dict:
                    (GaussHermite(4 * n2, 4 * n1, f"n={4 * n2}/{4 * n1} (16x/4x)"), repeats, True)]
         for method, rep, warm in methods:
             t, vals = median_time(lambda: pipeline(method, name, sw, sb), rep, warm)
-            add(method.label, t, vals, f"{t / t_pc:,.3g}x")
+            add(method.label, t, vals, fmt_r(t / t_pc))
+        how = ("a 1-D integral with the closed-form smoothing, "
+               f"{n_pair} phi evaluations plus {n_smooth} smoothing evaluations"
+               if act.smoothing is not None else f"the 2-D rule, {n_pair} phi evaluations")
         notes.append(f"   {name} at sigma_w2 = {sw:g}, sigma_b2 = {sb:g}: {phase}; mpmath "
                      f"q* = {ref[0]:.15g}, chi_1 = {ref[1]:.15g}, c* = {ref[2]:.15g}, "
-                     f"chi_c = {ref[3]:.15g}; propcalc used {n1} evaluations per 1-D and "
-                     f"about {n2}^2 per 2-D expectation")
+                     f"chi_c = {ref[3]:.15g}; propcalc used {n1} evaluations per 1-D "
+                     f"expectation and, per correlation-map point, {how} "
+                     f"(Gauss-Hermite 'same': n = {n2}, n^2 ~ the phi evaluations)")
     print("\nB. full propagation report: q*, chi_1, c*, chi_c (relative errors against mpmath); "
           "baselines run the same Brent pipeline on their own expectations\n")
     print(table(rows, ["activation", "sw2, sb2", "method", "time", "q*", "chi_1", "c*",
                        "chi_c", "max error", "time / propcalc"]))
     print("\n" + "\n".join(notes))
-    return times
+
+
+# ---------------------------------------------------------------------------------------------
+# B2. propagation across the built-ins
+# ---------------------------------------------------------------------------------------------
+def no_edge_reason(act: Activation, sb: float) -> str:
+    """Why edge_of_chaos_at_bias found no critical point at this sigma_b2."""
+    if act.has_jumps:
+        return "phi jumps, so chi_1 is infinite: no edge of chaos at any sigma_b2"
+    q = np.geomspace(1e-8, 1e6, 281)  # the q* range edge_of_chaos_at_bias scans
+    sw_line, sb_line = edge_of_chaos_line_arrays(act, q)
+    ok = np.isfinite(sw_line)
+    if not ok.any():
+        return "E[phi'^2] is 0 or infinite at every q*: no critical sigma_w2"
+    if np.all(np.abs(sb_line[ok]) <= 1e-10 * q[ok]):
+        return ("the edge-of-chaos line has sigma_b2 = 0 at every q* (positively homogeneous "
+                f"phi), so there is no critical point at sigma_b2 = {sb:g}")
+    lo, hi = float(np.min(sb_line[ok])), float(np.max(sb_line[ok]))
+    return (f"on the edge-of-chaos line sigma_b2 runs from {lo:.3g} to {hi:.3g} over q* in "
+            f"[1e-8, 1e6], never {sb:g}")
+
+
+def time_propagation(act: Activation, name: str, sw: float, sb: float, where: str,
+                     repeats: int) -> dict:
+    try:
+        t, p = median_time(lambda: propcalc.propagation(act, sw, sb), repeats)
+    except propcalc.PropcalcError as exc:
+        return {"name": name, "where": where, "sw": sw, "sb": sb, "phase": f"error: {exc}",
+                "q": None, "c": None, "t": math.inf}
+    return {"name": name, "where": where, "sw": sw, "sb": sb, "phase": p.phase,
+            "q": p.q_star, "c": p.c_star, "t": t}
+
+
+def bench_propagation_builtins(repeats: int) -> list[dict]:
+    results, notes = [], []
+    for name in propcalc.builtin_names():
+        act = propcalc.activation(name)
+        points = propcalc.edge_of_chaos_at_bias(act, BUILTIN_SB2)
+        if not points:
+            notes.append(f"   {name}: skipped, {no_edge_reason(act, BUILTIN_SB2)}")
+            continue
+        cp = points[0]
+        notes.append(f"   {name}: critical sigma_w2 = {cp.sigma_w2:.6g} with q* = {cp.q_star:.6g}"
+                     f" ({'attracting' if cp.stable else 'not attracting'}, chi_q = "
+                     f"{fmt_g(cp.chi_q)}); first of {len(points)} critical point(s)")
+        for factor, where in BUILTIN_FACTORS:
+            results.append(time_propagation(act, name, factor * cp.sigma_w2, BUILTIN_SB2, where,
+                                            repeats))
+    for name, sw, sb in PROPAGATION_POINTS:
+        results.append(time_propagation(propcalc.activation(name), name, sw, sb,
+                                        "point of section B", repeats))
+    rows = [[r["name"], r["where"], f"{r['sw']:.6g}, {r['sb']:g}", r["phase"], fmt_g(r["q"]),
+             fmt_g(r["c"]), fmt_t(r["t"])] for r in results]
+    print(f"\nB2. propagation across the built-ins: critical sigma_w2 at sigma_b2 = "
+          f"{BUILTIN_SB2:g} from edge_of_chaos_at_bias (first point), propagation at 0.8, 1 and "
+          f"1.25 times it, plus the points of B; median of {repeats} after a warm-up\n")
+    print(table(rows, ["activation", "point", "sw2, sb2", "phase", "q*", "c*", "time"]))
+    print("\n" + "\n".join(notes))
+    slowest = sorted(results, key=lambda r: r["t"], reverse=True)[:5]
+    print("\n   slowest rows: " + "; ".join(
+        f"{r['name']} {r['where']} {fmt_t(r['t'])} ({r['phase']})" for r in slowest))
+    return results
+
+
+# ---------------------------------------------------------------------------------------------
+# C. targets
+# ---------------------------------------------------------------------------------------------
+def speedup_verdict(speedups: list[dict], key: str, tag: str, what: str) -> None:
+    # "equal or better": propcalc's error <= dblquad's, errors below 1e-14 counting as equal
+    # (both at the rounding level of a double-precision sum of ~1e4-1e5 terms)
+    err = "e_" + key
+    ok = [s for s in speedups if s[err] <= max(s["e_dq"], 1e-14)]
+    ratios = [s[key] for s in speedups]
+    lo = min(ratios)
+    slow = [s for s in speedups if s[key] < TARGET_SPEEDUP_VS_DBLQUAD]
+    worse = [s for s in speedups if s not in ok]
+    met = lo >= TARGET_SPEEDUP_VS_DBLQUAD and not worse
+    print(f"   ({tag}) {what}: speed-up {lo:,.0f}x to "
+          f"{max(ratios):,.0f}x, >= {TARGET_SPEEDUP_VS_DBLQUAD}x at "
+          f"{len(ratios) - len(slow)}/{len(ratios)} points; error equal or better "
+          f"(<= dblquad's, or both < 1e-14) at {len(ok)}/{len(ratios)} points -> "
+          f"{'MET' if met else 'NOT MET'}")
+    if slow:
+        print("       below the speed-up: " + ", ".join(
+            f"{s['name']} c = {s['c']:g} {fmt_r(s[key])}" for s in slow))
+    if worse:
+        print("       error worse than dblquad's: " + ", ".join(
+            f"{s['name']} c = {s['c']:g} ({fmt_e(s[err])} vs {fmt_e(s['e_dq'])})" for s in worse))
+
+
+def print_targets(a: dict, maps: dict[str, float], props: list[dict]) -> None:
+    print("\nC. targets")
+    worst = max(props, key=lambda r: r["t"])
+    over = [r for r in props if not r["t"] < TARGET_PROPAGATION_S]
+    print(f"   propagation for a built-in < {fmt_t(TARGET_PROPAGATION_S)}, over all {len(props)} "
+          f"rows of B2: slowest {fmt_t(worst['t'])} ({worst['name']}, {worst['where']}); "
+          f"{len(props) - len(over)}/{len(props)} rows under -> "
+          f"{'MET' if not over else 'NOT MET'}")
+    if over:
+        print("       above: " + "; ".join(
+            f"{r['name']} at sigma_w2 = {r['sw']:.6g}, sigma_b2 = {r['sb']:g} ({r['where']}, "
+            f"{r['phase']}) {fmt_t(r['t'])}" for r in over))
+    worst_map = max(maps, key=maps.get)
+    over_map = [n for n, t in maps.items() if not t < TARGET_MAP_1000_S]
+    print(f"   1000-point correlation map < {fmt_t(TARGET_MAP_1000_S)}, over all {len(maps)} "
+          f"built-ins of A2: slowest {fmt_t(maps[worst_map])} ({worst_map}); "
+          f"{len(maps) - len(over_map)}/{len(maps)} under -> "
+          f"{'MET' if not over_map else 'NOT MET'}")
+    if over_map:
+        print("       above: " + ", ".join(f"{n} {fmt_t(maps[n])}" for n in over_map))
+    print(f"   >= {TARGET_SPEEDUP_VS_DBLQUAD}x faster than dblquad per point at equal or better "
+          "error (section A, 9 points):")
+    speedup_verdict(a["speedups"], "map", "a", "per point of a vectorised 1000-point map")
+    speedup_verdict(a["speedups"], "call", "b", "one isolated call per point")
 
 
 # ---------------------------------------------------------------------------------------------
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--quick", action="store_true", help="fewer repeats, no 1000-point maps")
+    ap.add_argument("--quick", action="store_true",
+                    help="fewer repeats (3; slow baselines and the maps of A2: 1)")
     args = ap.parse_args(argv)
     repeats, slow = (3, 1) if args.quick else (7, 3)
+    map_repeats = 1 if args.quick else repeats
     t0 = time.perf_counter()
     print(f"propcalc {propcalc.__version__}, numpy {np.__version__}, "
           f"python {sys.version.split()[0]}; medians of {repeats} repeats after a warm-up "
-          f"(per point: dblquad, Monte Carlo and the 1000-point maps {slow}, no warm-up; "
-          "baseline propagation pipelines: dblquad and Monte Carlo 1 run)\n")
+          f"(per point: dblquad and Monte Carlo {slow}, no warm-up; A2 maps {map_repeats} after "
+          "a warm-up; baseline propagation pipelines: dblquad and Monte Carlo 1 run)\n")
     mc = MonteCarlo()
-    a = bench_points(repeats, slow, not args.quick, mc)
-    prop_times = bench_propagation(repeats, mc)
-
-    print("\nC. targets")
-    worst = max(prop_times.values())
-    print(f"   propagation for a built-in < {fmt_t(TARGET_PROPAGATION_S)}: slowest "
-          f"{fmt_t(worst)} ({', '.join(f'{k} {fmt_t(v)}' for k, v in prop_times.items())}) -> "
-          f"{'MET' if worst < TARGET_PROPAGATION_S else 'NOT MET'}")
-    if a["maps"]:
-        worst_map = max(a["maps"].values())
-        print(f"   1000-point correlation map < {fmt_t(TARGET_MAP_1000_S)}: slowest "
-              f"{fmt_t(worst_map)} -> {'MET' if worst_map < TARGET_MAP_1000_S else 'NOT MET'}")
-    else:
-        print("   1000-point correlation map: not measured (--quick)")
-    # "equal or better": propcalc's error <= dblquad's, errors below 1e-14 counting as equal
-    # (both at the rounding level of a double-precision sum of ~1e4-1e5 terms)
-    ok = [(n, c, r) for n, c, r, e_pc, e_dq in a["speedups"] if e_pc <= max(e_dq, 1e-14)]
-    ratios = [r for _, _, r, _, _ in a["speedups"]]
-    lo = min(ratios)
-    print(f"   >= {TARGET_SPEEDUP_VS_DBLQUAD}x faster than dblquad per point at equal or better "
-          f"error: speed-up {lo:,.0f}x to {max(ratios):,.0f}x; error equal or better "
-          f"(<= dblquad's, or both < 1e-14) at "
-          f"{len(ok)}/{len(ratios)} points -> "
-          f"{'MET' if lo >= TARGET_SPEEDUP_VS_DBLQUAD and len(ok) == len(ratios) else 'NOT MET'}")
+    a = bench_points(repeats, slow, mc)
+    maps = bench_maps(map_repeats)
+    bench_propagation(repeats, mc)
+    props = bench_propagation_builtins(repeats)
+    print_targets(a, maps, props)
     print(f"\ntotal run time {time.perf_counter() - t0:.0f} s")
     return 0
 
