@@ -280,3 +280,28 @@ def test_typed_rectifiers_use_the_closed_form_and_match_the_kernels():
                     atol=3e-14)
     assert_allclose(maps.pair_expectation(A("abs(x)"), c, 1.9) / 1.9, _mp_abs_kernel(c), rtol=0,
                     atol=3e-14)
+
+
+@pytest.mark.parametrize("q1,q2", [(0.8, 2.5), (20.0, 0.4), (0.05, 3.0)])
+def test_conditional_route_with_unequal_variances_is_williams(q1, q2):
+    # Williams 1997, eq. (11): E[erf(u1) erf(u2)] = (2/pi) arcsin(2 c sqrt(q1 q2) /
+    # sqrt((1 + 2 q1)(1 + 2 q2))), in mpmath; through conditional_pair_expectation directly
+    erf = A("erf")
+    c = np.linspace(-0.999, 0.999, 37)
+    got = conditional_pair_expectation([(erf.value, erf.smoothing.value)], c, q1, q2)[0]
+    with mpmath.workdps(30):
+        a, b = mpmath.mpf(q1), mpmath.mpf(q2)
+        ref = [float(2 / mpmath.pi * mpmath.asin(2 * mpmath.mpf(x) * mpmath.sqrt(a * b)
+                                                 / mpmath.sqrt((1 + 2 * a) * (1 + 2 * b))))
+               for x in c]
+    assert_allclose(got, ref, rtol=0, atol=3e-15)
+    # and ReLU with unequal variances: E[relu(u1) relu(u2)] = sqrt(q1 q2) J_1(c) / (2 pi)
+    # (Cho & Saul 2009, eq. 6, degree 1)
+    relu = A("relu")
+    got = conditional_pair_expectation([(relu.value, relu.smoothing.value)], c, q1, q2,
+                                       relu.breakpoints)[0]
+    with mpmath.workdps(30):
+        ref = [float(mpmath.sqrt(mpmath.mpf(q1) * q2) / (2 * mpmath.pi)
+                     * (mpmath.sqrt(1 - mpmath.mpf(x) ** 2)
+                        + (mpmath.pi - mpmath.acos(mpmath.mpf(x))) * mpmath.mpf(x))) for x in c]
+    assert_allclose(got, ref, rtol=0, atol=3e-15 * math.sqrt(q1 * q2))
