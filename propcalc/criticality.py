@@ -108,6 +108,7 @@ def _bracketed_roots(fun: Any, grid: np.ndarray, values: np.ndarray,
             roots.append(float(optimize.brentq(fun, a, b, xtol=1e-300, rtol=4e-15, maxiter=200)))
         else:
             roots.append(a if abs(fa) < abs(fb) else b)
+    roots += _hidden_pairs(fun, grid, values, usable)
     if usable is not None:
         # a root sitting on a grid point is unresolved there: bracket it by its neighbours
         for i in range(1, len(grid) - 1):
@@ -121,6 +122,42 @@ def _bracketed_roots(fun: Any, grid: np.ndarray, values: np.ndarray,
                 else:
                     roots.append(float(grid[i]))
     return sorted(roots)
+
+
+def _hidden_pairs(fun: Any, grid: np.ndarray, values: np.ndarray,
+                  usable: np.ndarray | None) -> list[float]:
+    """Pairs of close roots between two grid points, where ``values`` keeps its sign.
+
+    Two roots closer together than the grid step leave no sign change, only a
+    local minimum of a positive function (or maximum of a negative one) on the
+    grid. At each, the function is minimised (maximised) over the two
+    neighbouring grid intervals in log scale; if it crosses zero there, Brent's
+    method finds the root on each side of the extremum. A tangential root (the
+    extremum within rounding of 0) is returned once.
+    """
+    roots: list[float] = []
+    for i in range(1, len(grid) - 1):
+        if usable is not None and not (usable[i - 1] and usable[i] and usable[i + 1]):
+            continue
+        v = values[i - 1:i + 2]
+        side = 1.0 if v.min() > 0 else (-1.0 if v.max() < 0 else 0.0)
+        if side == 0.0 or not (side * v[1] <= side * v[0] and side * v[1] <= side * v[2]):
+            continue
+        lo, hi = math.log(float(grid[i - 1])), math.log(float(grid[i + 1]))
+        res = optimize.minimize_scalar(lambda t: side * fun(math.exp(t)), bounds=(lo, hi),
+                                       method="bounded", options={"xatol": 1e-12})
+        t_min, f_min = float(res.x), side * float(res.fun)
+        q_min = math.exp(t_min)
+        if side * f_min > 1e-13 * q_min:
+            continue  # the extremum stays clear of zero: no root here
+        if abs(f_min) <= 1e-13 * q_min:
+            roots.append(q_min)  # tangential: a double root
+            continue
+        for a, b in ((float(grid[i - 1]), q_min), (q_min, float(grid[i + 1]))):
+            if fun(a) * fun(b) < 0:
+                roots.append(float(optimize.brentq(fun, a, b, xtol=1e-300, rtol=4e-15,
+                                                   maxiter=200)))
+    return roots
 
 
 def depth_scale(slope: float) -> float:

@@ -577,3 +577,27 @@ def test_correlation_fixed_point_warm_start_reaches_the_same_root(guess):
     # up to 4e-15 / (1 - C'(c*)) in c*
     assert warm[0] == pytest.approx(cold[0], abs=4e-15 / (1 - cold[1]))
     assert warm[1] == pytest.approx(cold[1], rel=1e-12)
+
+
+def test_two_fixed_points_closer_than_the_grid_step_are_both_found():
+    # mish at sigma_b2 = 0.1 near its edge: V(q) - q has two roots (1.7716, attracting, and
+    # 2.0899, repelling) inside one step of the log grid, with no sign change on the grid.
+    # Reference: Brent's method on V(q) - q with E[mish(sqrt(q) z)^2] by scipy.integrate.quad
+    act = A("mish")
+    sw, sb = 2.006854569646388, 0.1
+
+    def gap(q):
+        m2 = integrate.quad(lambda z: float(act.value(np.array([math.sqrt(q) * z]))[0]) ** 2
+                            * math.exp(-0.5 * z * z) / math.sqrt(2 * math.pi), -12, 12,
+                            points=[0.0], epsabs=1e-15, epsrel=1e-13, limit=200)[0]
+        return sw * m2 + sb - q
+
+    ref = [optimize.brentq(gap, 1.6, 1.95, xtol=1e-14), optimize.brentq(gap, 1.95, 2.2, xtol=1e-14)]
+    for q_input in (0.5, 0.9):
+        p = propcalc.propagation(act, sw, sb, q_input=q_input)
+        qs = [fp.q for fp in p.variance_fixed_points.points]
+        assert qs == pytest.approx(ref, rel=1e-12)
+        assert [fp.stable for fp in p.variance_fixed_points.points] == [True, False]
+        assert p.q_star == pytest.approx(ref[0], rel=1e-12)  # flows up to the attracting one
+    # started above the repelling one, the variance grows without bound
+    assert propcalc.propagation(act, sw, sb, q_input=1.0).q_star is None
