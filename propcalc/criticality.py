@@ -141,7 +141,9 @@ def _hidden_pairs(fun: Any, grid: np.ndarray, values: np.ndarray,
             continue
         v = values[i - 1:i + 2]
         side = 1.0 if v.min() > 0 else (-1.0 if v.max() < 0 else 0.0)
-        if side == 0.0 or not (side * v[1] <= side * v[0] and side * v[1] <= side * v[2]):
+        # a dip clear of rounding (flat stretches, e.g. V(q) - q ~ sigma_b2 at tiny q, wobble)
+        dip = 1e-12 * (float(grid[i]) + abs(float(v[1])))
+        if side == 0.0 or not (side * v[1] < side * v[0] - dip and side * v[1] < side * v[2] - dip):
             continue
         lo, hi = math.log(float(grid[i - 1])), math.log(float(grid[i + 1]))
         res = optimize.minimize_scalar(lambda t: side * fun(math.exp(t)), bounds=(lo, hi),
@@ -455,11 +457,13 @@ def correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
     root it becomes the left point; right of it, Newton's step from there lands
     left of the root (g is convex), so two or three evaluations suffice.
     """
+    v_q = float(variance_map(act, q, sw, sb, rule))
+
     def both(x: float) -> tuple[float, float]:
-        v, d = correlation_map_and_slope(act, x, sw, sb, q, rule)
+        v, d = correlation_map_and_slope(act, x, sw, sb, q, rule, v_q=v_q)
         return float(v) - x, float(d)
 
-    c1 = float(chi_1_map(act, q, sw, rule)) * q / float(variance_map(act, q, sw, sb, rule))
+    c1 = float(chi_1_map(act, q, sw, rule)) * q / v_q
     hi = 1.0  # a point known to be right of the root once found (g < 0)
     start = _warm_start(both, guess) if guess is not None else None
     if start is not None and start[0] == "root":

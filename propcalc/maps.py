@@ -457,17 +457,20 @@ def _pair_by_series(act: Activation, ca: Array, q: float, rule: QuadratureRule) 
 
 
 def correlation_map_and_slope(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
-                               q: float, rule: QuadratureRule = DEFAULT_RULE) -> tuple[Array, Array]:
+                               q: float, rule: QuadratureRule = DEFAULT_RULE, *,
+                               v_q: float | None = None) -> tuple[Array, Array]:
     """C(c) and C'(c) together, on shared quadrature nodes (about the cost of one).
 
-    See :func:`correlation_map` and :func:`correlation_map_slope`.
+    See :func:`correlation_map` and :func:`correlation_map_slope`. ``v_q`` is
+    V(q) when the caller already has it (a root finder calling at one q saves
+    a 1-D integral per call).
     """
     rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
     ca = _c_array(c)
     qf = float(_q_array(q))
-    vq = float(variance_map(act, qf, sw, sb, rule))
+    vq = float(variance_map(act, qf, sw, sb, rule)) if v_q is None else float(v_q)
     if qf == 0.0 or vq == 0.0:
         return (correlation_map(act, ca, sw, sb, qf, rule),
                 correlation_map_slope(act, ca, sw, sb, qf, rule))

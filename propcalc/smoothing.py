@@ -108,8 +108,10 @@ _DIRECT_EXPONENT = 600.0
 class _Boundaries:
     """Phi and varphi at the standardised piece boundaries t = (b - shift) / s, each once.
 
-    The lower tail ``Phi(t)`` and the upper tail ``Phi(-t)`` are computed
-    directly when needed, so a small mass keeps its relative digits.
+    One ndtr per boundary: the tail ``T = Phi(-|t|)`` gives both sides,
+    ``Phi(t) = T + [t > 0] (1 - 2 T)`` and ``Phi(-t) = T + [t <= 0] (1 - 2 T)``, so the
+    small side is T itself and keeps its relative digits, and the large side is
+    ``1 - T`` to rounding.
     """
 
     def __init__(self, m: Array, s: Array) -> None:
@@ -121,19 +123,24 @@ class _Boundaries:
 
     def _get(self, what: str, rate: float, b: float) -> Array:
         key = (what, rate, b)
-        if key not in self.cache:
-            t = self.cache.get(("t", rate, b))
-            if t is None:
-                t = self.cache[("t", rate, b)] = (b - self.shift(rate)) * self.inv_s
-            if what == "t":
-                pass
-            elif what == "lower":
-                self.cache[key] = special.ndtr(t)
-            elif what == "upper":
-                self.cache[key] = special.ndtr(-t)
-            else:  # the Gaussian factor exp(-t^2 / 2)
-                self.cache[key] = np.exp(-0.5 * t * t)
-        return self.cache[key]
+        out = self.cache.get(key)
+        if out is not None:
+            return out
+        if what == "t":
+            out = (b - self.shift(rate)) * self.inv_s
+        elif what == "tail":
+            out = special.ndtr(-np.abs(self.t(rate, b)))
+        elif what == "lower":  # Phi(t)
+            tail = self._get("tail", rate, b)
+            out = tail + (self.t(rate, b) > 0.0) * (1.0 - 2.0 * tail)
+        elif what == "upper":  # Phi(-t)
+            tail = self._get("tail", rate, b)
+            out = tail + (self.t(rate, b) <= 0.0) * (1.0 - 2.0 * tail)
+        else:  # the Gaussian factor exp(-t^2 / 2)
+            t = self.t(rate, b)
+            out = np.exp(-0.5 * t * t)
+        self.cache[key] = out
+        return out
 
     def t(self, rate: float, b: float) -> Array:
         return self._get("t", rate, b)
