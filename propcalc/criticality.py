@@ -40,6 +40,7 @@ from .formula import activation
 from .maps import (
     chi_1 as chi_1_map,
     correlation_map_and_slope,
+    correlation_map_slope,
     derivative_second_moment,
     second_moment,
     variance_collapse_rate,
@@ -442,7 +443,8 @@ class Propagation:
 
 
 def correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
-                             rule: QuadratureRule, guess: float | None = None
+                             rule: QuadratureRule, guess: float | None = None,
+                             curvature: tuple[float, float] | None = None
                              ) -> tuple[float, float]:
     """(c*, C'(c*)) in the chaotic phase: the root of g(c) = C(c) - c in [0, 1).
 
@@ -455,7 +457,13 @@ def correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
 
     A ``guess`` (c* from a truncated Hermite series) is tried first: left of the
     root it becomes the left point; right of it, Newton's step from there lands
-    left of the root (g is convex), so two or three evaluations suffice.
+    left of the root (g is convex), so two or three evaluations suffice. With
+    ``curvature = (C''(guess), M)``, M an upper bound of C'' near the guess (see
+    :func:`propcalc.hermite.series_fixed_points`), one evaluation can suffice: the
+    Newton step delta = -g / (C' - 1) from the guess lands within
+    ``M delta^2 / (2 (1 - C'))`` of the root (Taylor with the Lagrange remainder), and
+    when that is below 1e-17 and |delta| <= 1e-9 the polished point is returned with
+    ``C'(c*) = C'(guess) + C''(guess) delta``.
     """
     v_q = float(variance_map(act, q, sw, sb, rule))
 
@@ -465,7 +473,7 @@ def correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
 
     c1 = float(chi_1_map(act, q, sw, rule)) * q / v_q
     hi = 1.0  # a point known to be right of the root once found (g < 0)
-    start = _warm_start(both, guess) if guess is not None else None
+    start = _warm_start(both, guess, curvature) if guess is not None else None
     if start is not None and start[0] == "root":
         return start[1], start[2]
     if start is not None:
@@ -504,13 +512,20 @@ def correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
                            f"(bracket [{c:.17g}, {hi:.17g}])")
 
 
-def _warm_start(both: Any, guess: float) -> tuple[Any, ...] | None:
+def _warm_start(both: Any, guess: float,
+                curvature: tuple[float, float] | None = None) -> tuple[Any, ...] | None:
     """From a guess of c*: ("root", c, C'(c)), or ("left", c, g, g', hi), or None."""
     if not (math.isfinite(guess) and 0.0 < guess < 1.0):
         return None
     g, slope = both(guess)
     if abs(g) <= 4e-15:
         return ("root", guess, slope)
+    if curvature is not None and slope < 1.0:
+        delta = -g / (slope - 1.0)
+        curv, bound = curvature
+        if (abs(delta) <= 1e-9 and math.isfinite(bound) and math.isfinite(curv)
+                and bound * delta * delta / (2.0 * (1.0 - slope)) <= 1e-17):
+            return ("root", guess + delta, slope + curv * delta)
     if g > 0:
         return ("left", guess, g, slope, 1.0)
     dg = slope - 1.0
@@ -538,12 +553,14 @@ def _chaotic_fixed_point(act: Activation, sw: float, sb: float, q: float,
     # with a closed-form smoothing each map evaluation is already a 1-D integral
     if rule == DEFAULT_RULE and act.scale == 1.0 and not act.has_jumps and act.smoothing is None:
         for kmax, series_rule in SERIES_PASSES:  # 160 terms, then 480 (3 ms, < one 2-D step)
-            c, s, ok = series_fixed_points(act, np.array([sw]), np.array([sb]), np.array([q]),
-                                           kmax, series_rule)
+            c, s, ok, curv, curv_max = series_fixed_points(
+                act, np.array([sw]), np.array([sb]), np.array([q]), kmax, series_rule,
+                curvature=True)
             if bool(ok[0]):
                 return float(c[0]), float(s[0])
         # the series' c* (its tail bound not small enough) is still a close first guess
-        return correlation_fixed_point(act, sw, sb, q, rule, guess=float(c[0]))
+        return correlation_fixed_point(act, sw, sb, q, rule, guess=float(c[0]),
+                                       curvature=(float(curv[0]), float(curv_max[0])))
     return correlation_fixed_point(act, sw, sb, q, rule)
 
 
@@ -583,8 +600,9 @@ def _edge_approach(act: Activation, sw: float, sb: float, q: float, rule: Quadra
     # C'(1) = sigma_w2 q E[phi'^2] / V(q) is a 1-D integral.
     s0 = float(chi_1_map(act, q, sw, rule)) * q / float(variance_map(act, q, sw, sb, rule))
     h = 1e-3
-    d = [(s0 - float(correlation_map_and_slope(act, 1.0 - t, sw, sb, q, rule)[1])) / t
-         for t in (h, h / 4)]
+    steps = np.array([h, h / 4])
+    slopes = correlation_map_slope(act, 1.0 - steps, sw, sb, q, rule)  # one vectorised call
+    d = [(s0 - float(sl)) / t for sl, t in zip(slopes, steps)]
     curvature = (2.0 * d[1] - d[0]) if act.breakpoints else (4.0 * d[1] - d[0]) / 3.0
     if not math.isfinite(curvature):
         return "1 - c_l decays more slowly than any power law measured here"

@@ -55,6 +55,13 @@ def hermite_coefficients(act: Activation, q: Array, kmax: int,
         z = x / np.sqrt(qs)[:, None]
         wf = w * f
         m2[sel] = np.einsum("ij,ij->i", wf, f)
+        if not act.breakpoints:
+            # no breakpoints: every row has the same z-nodes (the grading depends on the
+            # chunk's largest q only), so the Hermite values are one cached matrix
+            table = _hermite_table(kmax, rule, z[0])
+            out = wf @ table.T
+            b[sel] = out * out
+            continue
         h_prev = np.ones_like(z)
         h = z.copy()
         out = np.empty((qs.size, kmax + 1))
@@ -70,9 +77,38 @@ def hermite_coefficients(act: Activation, q: Array, kmax: int,
     return b, m2
 
 
+_TABLES: dict[tuple[int, QuadratureRule, int], tuple[Array, Array]] = {}
+_TABLES_MAX = 6
+
+
+def _hermite_table(kmax: int, rule: QuadratureRule, z: Array) -> Array:
+    """h_k(z_j), k = 0..kmax, for the z-nodes of ``rule`` at this grading (cached).
+
+    The same stable three-term recurrence as :func:`hermite_coefficients`, run once
+    per (kmax, rule, number of grading levels); the nodes are checked against the
+    cached ones, so a different node set can never reuse a table.
+    """
+    key = (kmax, rule, int(z.size))
+    hit = _TABLES.get(key)
+    if hit is not None and hit[0].shape == z.shape and np.array_equal(hit[0], z):
+        return hit[1]
+    roots = np.sqrt(np.arange(kmax + 1, dtype=float))
+    table = np.empty((kmax + 1, z.size))
+    table[0] = 1.0
+    if kmax >= 1:
+        table[1] = z
+    for k in range(1, kmax):
+        table[k + 1] = (z * table[k] - roots[k] * table[k - 1]) / roots[k + 1]
+    table.setflags(write=False)
+    if len(_TABLES) >= _TABLES_MAX:
+        _TABLES.pop(next(iter(_TABLES)))
+    _TABLES[key] = (z.copy(), table)
+    return table
+
+
 def series_fixed_points(act: Activation, sw: Array, sb: Array, q: Array, kmax: int = 160,
-                         rule: QuadratureRule = SERIES_PASSES[0][1]
-                         ) -> tuple[Array, Array, Array]:
+                         rule: QuadratureRule = SERIES_PASSES[0][1], *,
+                         curvature: bool = False) -> tuple[Array, ...]:
     """Chaotic (c*, C'(c*)) from the Hermite (Mehler) series of the correlation map.
 
     With a_k the Hermite coefficients of phi(sqrt(q*) z),
@@ -92,9 +128,17 @@ def series_fixed_points(act: Activation, sw: Array, sb: Array, q: Array, kmax: i
     others (c* close to 1, where the series converges slowly) are returned
     with ``ok = False``.
 
+    With ``curvature=True`` two more arrays come back: the series' C''(c) at the
+    returned c, and an upper bound of the true C'' on ``[0, c + 1e-6]``,
+    ``sigma_w2 (sum_(k<=K) k (k-1) b_k c_+^(k-2) + D max_(k>K) k (k-1) c_+^(k-2)) / V``
+    with ``c_+ = c + 1e-6`` (every term is non-negative and increasing in c, and the
+    neglected b_k sum to at most D). A caller that polishes c with one Newton step
+    of the exact map uses them to bound that step's error.
+
     Returns
     -------
     c_star, chi_c, ok : ndarray
+        (and curvature, curvature_bound with ``curvature=True``)
     """
     b, m2 = hermite_coefficients(act, q, kmax, rule)
     k = np.arange(kmax + 1, dtype=float)
@@ -154,4 +198,17 @@ def series_fixed_points(act: Activation, sw: Array, sb: Array, q: Array, kmax: i
     c = np.where(zero, 0.0, c)
     slope = np.where(zero, slope0, slope)
     ok |= zero & np.isfinite(slope0)
-    return c, slope, ok
+    if not curvature:
+        return c, slope, ok
+    kk = k[2:] * (k[2:] - 1.0)
+    c_hi = np.minimum(c + 1e-6, 1.0)
+    with np.errstate(under="ignore", over="ignore", invalid="ignore"):
+        curv = scale * np.einsum("ij,ij->i", b[:, 2:] * kk, c[:, None] ** (k[2:] - 2.0))
+        at_hi = np.einsum("ij,ij->i", b[:, 2:] * kk, c_hi[:, None] ** (k[2:] - 2.0))
+        # max over k > K of k (k - 1) c^(k - 2): at k = K + 1, or at the interior peak
+        peak = np.where(c_hi < 1.0, -2.0 / np.log(np.where(c_hi < 1.0, c_hi, 0.5)), np.inf)
+        kt = np.maximum(kmax + 1.0, np.floor(peak))
+        tail = np.maximum.reduce([kt * (kt - 1.0) * c_hi ** (kt - 2.0),
+                                  (kt + 1.0) * kt * c_hi ** (kt - 1.0)])
+        bound = scale * (at_hi + defect * np.where(c_hi < 1.0, tail, np.inf))
+    return c, slope, ok, curv, bound
