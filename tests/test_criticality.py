@@ -601,3 +601,45 @@ def test_two_fixed_points_closer_than_the_grid_step_are_both_found():
         assert p.q_star == pytest.approx(ref[0], rel=1e-12)  # flows up to the attracting one
     # started above the repelling one, the variance grows without bound
     assert propcalc.propagation(act, sw, sb, q_input=1.0).q_star is None
+
+
+def test_series_curvature_and_its_bound_against_williams():
+    # C''(c) for erf from Williams 1997 eq. (11): C(c) = (sw (2/pi) arcsin(r c) + sb) / V with
+    # r = 2q / (1 + 2q), so C''(c) = sw (2/pi) r^3 c / (1 - r^2 c^2)^(3/2) / V. The series'
+    # curvature (erf without its closed-form smoothing, so the series is what runs) must match
+    # it and its bound must not be below the exact value a little to the right of c*.
+    from propcalc.hermite import SERIES_PASSES, series_fixed_points
+    erf = A("erf")
+    twin = Activation(name="erf", value_fn=erf.value_fn, derivative_fn=erf.derivative_fn,
+                      declared_scale=1.0)
+    for sw, sb in [(2.0, 0.1), (4.0, 0.05), (10.0, 0.3)]:
+        q = propcalc.propagation(erf, sw, sb).q_star
+        for kmax, rule in SERIES_PASSES:
+            c, slope, ok, curv, bound = series_fixed_points(
+                twin, np.array([sw]), np.array([sb]), np.array([q]), kmax, rule, curvature=True)
+            r = 2 * q / (1 + 2 * q)
+            v = sw * (2 / np.pi) * math.asin(r) + sb
+
+            def exact(x):
+                return sw * (2 / np.pi) * r**3 * x / (1 - (r * x) ** 2) ** 1.5 / v
+
+            assert float(curv[0]) == pytest.approx(exact(float(c[0])), rel=1e-6)
+            assert float(bound[0]) >= exact(float(c[0]) + 1e-6) * (1 - 1e-12)
+
+
+@pytest.mark.parametrize("name,sw,sb", [("gelu_tanh", 1.99, 0.2), ("sigmoid", 129.06, 0.1),
+                                        ("tanh", 40.0, 0.5)])
+def test_one_step_polish_reaches_the_cold_start_root(name, sw, sb):
+    # internal consistency (no outside source): the series guess polished by one Newton step
+    # under the curvature bound equals the bracketing solver from c = 0, to the stopping rule
+    from propcalc.hermite import SERIES_PASSES, series_fixed_points
+    act = A(name)
+    q = propcalc.propagation(act, sw, sb).q_star
+    kmax, rule = SERIES_PASSES[-1]
+    c, _, _, curv, bound = series_fixed_points(act, np.array([sw]), np.array([sb]),
+                                               np.array([q]), kmax, rule, curvature=True)
+    cold = criticality.correlation_fixed_point(act, sw, sb, q, DEFAULT_RULE)
+    warm = criticality.correlation_fixed_point(act, sw, sb, q, DEFAULT_RULE, guess=float(c[0]),
+                                               curvature=(float(curv[0]), float(bound[0])))
+    assert warm[0] == pytest.approx(cold[0], abs=4e-15 / (1 - cold[1]))
+    assert warm[1] == pytest.approx(cold[1], rel=1e-12)
