@@ -137,15 +137,18 @@ def _hidden_pairs(fun: Any, grid: np.ndarray, values: np.ndarray,
     extremum within rounding of 0) is returned once.
     """
     roots: list[float] = []
-    for i in range(1, len(grid) - 1):
-        if usable is not None and not (usable[i - 1] and usable[i] and usable[i + 1]):
-            continue
-        v = values[i - 1:i + 2]
-        side = 1.0 if v.min() > 0 else (-1.0 if v.max() < 0 else 0.0)
-        # a dip clear of rounding (flat stretches, e.g. V(q) - q ~ sigma_b2 at tiny q, wobble)
-        dip = 1e-12 * (float(grid[i]) + abs(float(v[1])))
-        if side == 0.0 or not (side * v[1] < side * v[0] - dip and side * v[1] < side * v[2] - dip):
-            continue
+    if len(grid) < 3:
+        return roots
+    left, mid, right = values[:-2], values[1:-1], values[2:]
+    # a dip clear of rounding (flat stretches, e.g. V(q) - q ~ sigma_b2 at tiny q, wobble)
+    dip = 1e-12 * (grid[1:-1] + np.abs(mid))
+    low = (left > 0) & (mid > 0) & (right > 0) & (mid < left - dip) & (mid < right - dip)
+    high = (left < 0) & (mid < 0) & (right < 0) & (mid > left + dip) & (mid > right + dip)
+    found = low | high
+    if usable is not None:
+        found &= usable[:-2] & usable[1:-1] & usable[2:]
+    for i in np.flatnonzero(found) + 1:
+        side = 1.0 if low[i - 1] else -1.0
         lo, hi = math.log(float(grid[i - 1])), math.log(float(grid[i + 1]))
         res = optimize.minimize_scalar(lambda t: side * fun(math.exp(t)), bounds=(lo, hi),
                                        method="bounded", options={"xatol": 1e-12})
