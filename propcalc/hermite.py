@@ -77,6 +77,20 @@ def hermite_coefficients(act: Activation, q: Array, kmax: int,
     return b, m2
 
 
+def _powers(x: Array, kmax: int) -> Array:
+    """x[:, None] ** k for k = 0..kmax by cumulative products (pow is ~50x slower).
+
+    The product of k factors is within k ulps of the power; the terms b_k x^k it
+    weights are summed with the same relative precision as the series itself.
+    """
+    out = np.empty((x.size, kmax + 1))
+    out[:, 0] = 1.0
+    if kmax:
+        out[:, 1:] = x[:, None]
+        np.cumprod(out[:, 1:], axis=1, out=out[:, 1:])
+    return out
+
+
 _TABLES: dict[tuple[int, QuadratureRule, int], tuple[Array, Array]] = {}
 _TABLES_MAX = 6
 
@@ -148,7 +162,7 @@ def series_fixed_points(act: Activation, sw: Array, sb: Array, q: Array, kmax: i
 
     def value_and_slope(cc: Array, rows: Array) -> tuple[Array, Array]:
         with np.errstate(under="ignore"):
-            pw = cc[:, None] ** k  # 0**0 = 1
+            pw = _powers(cc, kmax)
         br = b[rows]
         p = np.einsum("ij,ij->i", br, pw)
         dp = np.einsum("ij,ij->i", br[:, 1:] * k[1:], pw[:, :-1])
@@ -161,7 +175,7 @@ def series_fixed_points(act: Activation, sw: Array, sb: Array, q: Array, kmax: i
     # the grid continues geometrically towards 1 (1 - 2^-k) for c* close to 1
     grid = np.concatenate([np.arange(64) / 64.0, 1.0 - 2.0 ** -np.arange(7, 17)])
     with np.errstate(under="ignore"):
-        powers = grid[None, :] ** k[:, None]
+        powers = _powers(grid, kmax).T
     g_grid = (sw[:, None] * (b @ powers) + sb[:, None]) / v[:, None] - grid
     below = g_grid < 0
     found = below.any(axis=1) & ~zero
@@ -203,8 +217,8 @@ def series_fixed_points(act: Activation, sw: Array, sb: Array, q: Array, kmax: i
     kk = k[2:] * (k[2:] - 1.0)
     c_hi = np.minimum(c + 1e-6, 1.0)
     with np.errstate(under="ignore", over="ignore", invalid="ignore"):
-        curv = scale * np.einsum("ij,ij->i", b[:, 2:] * kk, c[:, None] ** (k[2:] - 2.0))
-        at_hi = np.einsum("ij,ij->i", b[:, 2:] * kk, c_hi[:, None] ** (k[2:] - 2.0))
+        curv = scale * np.einsum("ij,ij->i", b[:, 2:] * kk, _powers(c, kmax - 2))
+        at_hi = np.einsum("ij,ij->i", b[:, 2:] * kk, _powers(c_hi, kmax - 2))
         # max over k > K of k (k - 1) c^(k - 2): at k = K + 1, or at the interior peak
         peak = np.where(c_hi < 1.0, -2.0 / np.log(np.where(c_hi < 1.0, c_hi, 0.5)), np.inf)
         kt = np.maximum(kmax + 1.0, np.floor(peak))
