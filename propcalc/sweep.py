@@ -412,13 +412,16 @@ def _propagation_flat(act: Activation, sw: Array, sb: Array, qi: float,
             break
         # the Hermite series where it provably converges (a longer one for slow decay),
         # else the 2-D integrals point by point
-        cs, cc, ok = series_fixed_points(act, sw[need], sb[need], q[need], kmax, series_rule)
+        cs, cc, ok, curv, bound = series_fixed_points(act, sw[need], sb[need], q[need], kmax,
+                                                      series_rule, curvature=True)
         c_star[need[ok]] = cs[ok]
         chi_c[need[ok]] = cc[ok]
         retry = ~ok & (cs <= 0.97) & (n_pass + 1 < len(SERIES_PASSES))
-        for i in need[~ok & ~retry]:
-            c_star[i], chi_c[i] = _chaotic_fixed_point(act, float(sw[i]), float(sb[i]),
-                                                       float(q[i]), rule)
+        for j in np.flatnonzero(~ok & ~retry):
+            i = need[j]
+            c_star[i], chi_c[i] = _chaotic_fixed_point(
+                act, float(sw[i]), float(sb[i]), float(q[i]), rule, guess=float(cs[j]),
+                curvature=(float(curv[j]), float(bound[j])))
         need = need[retry]
     xi_c = np.where(edge, math.inf, _depth_scale(chi_c))
     xi_c = np.where(collapse & ~edge, np.where(c1 < 1, _depth_scale(c1), math.inf), xi_c)
@@ -438,8 +441,14 @@ _GUESS_RULE = QuadratureRule(n_per_panel=8, panel_width=2.0, z_max=9.0)
 
 
 def _chaotic_fixed_point(act: Activation, sw: float, sb: float, q: float,
-                         rule: QuadratureRule) -> tuple[float, float]:
+                         rule: QuadratureRule, guess: float | None = None,
+                         curvature: tuple[float, float] | None = None) -> tuple[float, float]:
     """(c*, C'(c*)) in the chaotic phase: a cheap guess, then Newton steps with ``rule``.
+
+    With a usable ``guess`` (the Hermite series' c*, in (0, 1)) and its
+    ``curvature`` the engine's solver polishes that guess instead (one exact
+    evaluation when the guess is within 1e-9; see
+    :func:`propcalc.criticality.correlation_fixed_point`).
 
     The guess is the engine's own solver run with an 8-node rule (about a
     fifth of the 2-D nodes; c* to ~1e-9). From there Newton's method on
@@ -449,8 +458,10 @@ def _chaotic_fixed_point(act: Activation, sw: float, sb: float, q: float,
     and falls back to the engine's solver on anything unusual (a non-finite
     value, a step leaving [0, 1), no convergence in 6 steps).
     """
-    guess, _ = correlation_fixed_point(act, sw, sb, q, _GUESS_RULE)
-    c = float(guess)
+    if guess is not None and math.isfinite(guess) and 0.0 < guess < 1.0:
+        return correlation_fixed_point(act, sw, sb, q, rule, guess=guess, curvature=curvature)
+    first, _ = correlation_fixed_point(act, sw, sb, q, _GUESS_RULE)
+    c = float(first)
     for _ in range(6):
         val, slope = (float(v) for v in correlation_map_and_slope(act, c, sw, sb, q, rule))
         g = val - c

@@ -31,7 +31,10 @@ from concurrent.futures import ProcessPoolExecutor  # noqa: E402
 import numpy as np  # noqa: E402
 
 import propcalc  # noqa: E402
-import propcalc.sweep as sweep_module  # noqa: E402
+import importlib  # noqa: E402
+
+# the module, not the function propcalc.sweep that the package exports under the same name
+sweep_module = importlib.import_module("propcalc.sweep")
 from propcalc.sweep import QUANTITIES, sweep  # noqa: E402
 
 
@@ -73,7 +76,7 @@ def main() -> None:
     print(f"serial (vectorised):       {t_serial:8.1f} s   (CPU {cpu_serial:.1f} s)   phases: "
           + ", ".join(f"{p} {c}" for p, c in zip(phases, counts)))
     rest = t_serial - spent[0]
-    print(f"   of which chaotic c* left to the 2-D solver: {spent[0]:.1f} s for {spent[1]} "
+    print(f"   of which chaotic c* polished or solved by exact evaluations: {spent[0]:.1f} s for {spent[1]} "
           f"points ({1e3 * spent[0] / max(spent[1], 1):.1f} ms each); everything else "
           f"(fixed points, chi_1, phases, series c*): {rest:.1f} s for {n} points "
           f"({1e3 * rest / n:.2f} ms each)")
