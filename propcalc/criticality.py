@@ -553,8 +553,10 @@ def _chaotic_fixed_point(act: Activation, sw: float, sb: float, q: float,
     default rule for activations at their own feature scale 1, and gives way to
     :func:`correlation_fixed_point` for c* near 1, large q or steep formulas.
     """
-    # with a closed-form smoothing each map evaluation is already a 1-D integral
-    if rule == DEFAULT_RULE and act.scale == 1.0 and not act.has_jumps and act.smoothing is None:
+    # the series serves smooth activations (with a closed-form smoothing too: its guess then
+    # saves 1-D steps); for kinked ones it converges slowly and the 1-D steps go alone
+    smooth = not act.breakpoints or act.smoothing is None
+    if rule == DEFAULT_RULE and act.scale == 1.0 and not act.has_jumps and smooth:
         for kmax, series_rule in SERIES_PASSES:  # 160 terms, then 480 (3 ms, < one 2-D step)
             c, s, ok, curv, curv_max = series_fixed_points(
                 act, np.array([sw]), np.array([sb]), np.array([q]), kmax, series_rule,
