@@ -150,6 +150,12 @@ def _hidden_pairs(fun: Any, grid: np.ndarray, values: np.ndarray,
     for i in np.flatnonzero(found) + 1:
         side = 1.0 if low[i - 1] else -1.0
         lo, hi = math.log(float(grid[i - 1])), math.log(float(grid[i + 1]))
+        # a coarse search first (about half the evaluations): a minimum clearly above zero
+        # (by 1% of the grid value; V is smooth on this scale) ends the matter
+        coarse = optimize.minimize_scalar(lambda t: side * fun(math.exp(t)), bounds=(lo, hi),
+                                          method="bounded", options={"xatol": 1e-3})
+        if float(coarse.fun) > 0.01 * side * float(values[i]):
+            continue
         res = optimize.minimize_scalar(lambda t: side * fun(math.exp(t)), bounds=(lo, hi),
                                        method="bounded", options={"xatol": 1e-12})
         t_min, f_min = float(res.x), side * float(res.fun)
