@@ -177,10 +177,44 @@ def _node_count(sqrt_q: float, n_extra: int, rule: QuadratureRule) -> int:
     return (n_edges - 1) * rule.n_per_panel
 
 
+@lru_cache(maxsize=64)
+def _grading_offsets(rule: QuadratureRule, n_levels: int) -> Array:
+    """Panel edges around the zero crossing: 0 and +-2^-k, from half a uniform panel
+    (with ``grade_out``) down to 2^-n_levels (cached, read-only)."""
+    top = max(0, int(math.floor(math.log2(rule.panel_width / 2.0)))) if rule.grade_out else -1
+    offsets = np.asarray([0.0] + [s * 2.0**-k for k in range(-top, n_levels + 1)
+                                  if k != 0 or top >= 0 for s in (-1.0, 1.0)])
+    offsets.setflags(write=False)
+    return offsets
+
+
+@lru_cache(maxsize=64)
+def _uniform_edges(rule: QuadratureRule) -> Array:
+    edges = rule.uniform_edges
+    edges.setflags(write=False)
+    return edges
+
+
 @lru_cache(maxsize=256)
 def _scalar_nodes(mean: float, q: float, breakpoints: tuple[float, ...],
                   rule: QuadratureRule) -> tuple[Array, Array]:
-    x, w = _rule_nodes(mean, q, breakpoints, rule, None)
+    if not (q > 0.0 and math.isfinite(q) and math.isfinite(mean)):
+        x, w = _rule_nodes(mean, q, breakpoints, rule, None)
+    else:
+        # the same panels as _rule_nodes builds for one row, without its broadcasting
+        sq = math.sqrt(q)
+        inv = 1.0 / sq
+        parts = [_uniform_edges(rule),
+                 -mean * inv + _grading_offsets(rule, _grading_levels(sq, rule.scale))]
+        if breakpoints:
+            parts.append((np.asarray(breakpoints) - mean) * inv)
+        edges = np.unique(np.clip(np.concatenate(parts), -rule.z_max, rule.z_max))
+        a, b = edges[:-1], edges[1:]
+        t, wt = legendre_rule(rule.n_per_panel)
+        half = 0.5 * (b - a)
+        z = (half[:, None] * t + (0.5 * (a + b))[:, None]).ravel()
+        w = (half[:, None] * wt).ravel() * _INV_SQRT_2PI * np.exp(-0.5 * z * z)
+        x = mean + sq * z
     x.setflags(write=False)
     w.setflags(write=False)
     return x, w
@@ -222,12 +256,10 @@ def _rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float],
         center = np.where(sq > 0, -mean * inv, np.where(mean > 0, -np.inf, np.inf))
         center = np.where((sq == 0) & (mean == 0), 0.0, center)
     n_levels = _grading_levels(float(np.max(sq)) if sq.size else 0.0, rule.scale)
-    pieces = [np.broadcast_to(rule.uniform_edges, sq.shape + rule.uniform_edges.shape)]
+    uniform = _uniform_edges(rule)
+    pieces = [np.broadcast_to(uniform, sq.shape + uniform.shape)]
     # geometric grading (ratio 2) from 2^-n_levels up to half a uniform panel
-    top = max(0, int(math.floor(math.log2(rule.panel_width / 2.0)))) if rule.grade_out else -1
-    offsets = [0.0] + [s * 2.0**-k for k in range(-top, n_levels + 1) if k != 0 or top >= 0
-                       for s in (-1.0, 1.0)]
-    pieces.append(center[..., None] + np.asarray(offsets))
+    pieces.append(center[..., None] + _grading_offsets(rule, n_levels))
     if len(breakpoints):
         b = np.asarray(breakpoints, dtype=float)
         with np.errstate(invalid="ignore"):
