@@ -438,6 +438,18 @@ def _scalar_expectation(fn: Callable[[Array], Array], q: float, mean: float,
     return np.float64(total)
 
 
+def _pair_arguments(c: Any, q1: float, q2: float | None, breakpoints1: Sequence[float],
+                    breakpoints2: Sequence[float] | None
+                    ) -> tuple[Array, float, tuple[float, ...]]:
+    """Validated (c, q2, breakpoints2) of a pair expectation (q2 and breakpoints2 defaulted)."""
+    c = np.asarray(c, dtype=float)
+    q2 = q1 if q2 is None else q2
+    _validate(c, "c", lower=-1.0, upper=1.0)
+    _validate(np.asarray(q1, dtype=float), "q1", lower=0.0, strict=True)
+    _validate(np.asarray(q2, dtype=float), "q2", lower=0.0, strict=True)
+    return c, float(q2), tuple(breakpoints1 if breakpoints2 is None else breakpoints2)
+
+
 def bivariate_expectation(fn: Callable[[Array, Array], Array], c: Any, q1: float = 1.0,
                           q2: float | None = None, breakpoints1: Sequence[float] = (),
                           breakpoints2: Sequence[float] | None = None, *,
@@ -473,12 +485,7 @@ def bivariate_expectation(fn: Callable[[Array, Array], Array], c: Any, q1: float
     -------
     ndarray or tuple of ndarray
     """
-    c = np.asarray(c, dtype=float)
-    q2 = q1 if q2 is None else q2
-    _validate(c, "c", lower=-1.0, upper=1.0)
-    _validate(np.asarray(q1, dtype=float), "q1", lower=0.0, strict=True)
-    _validate(np.asarray(q2, dtype=float), "q2", lower=0.0, strict=True)
-    bps2 = tuple(breakpoints1 if breakpoints2 is None else breakpoints2)
+    c, q2, bps2 = _pair_arguments(c, q1, q2, breakpoints1, breakpoints2)
     sq1, sq2 = math.sqrt(q1), math.sqrt(q2)
     flat = c.ravel()
     n_out = n_integrands
@@ -609,12 +616,7 @@ def conditional_pair_expectation(pairs: Sequence[tuple[Callable[[Array], Array],
     tuple of ndarray
         One array of the shape of ``c`` per pair.
     """
-    c = np.asarray(c, dtype=float)
-    q2 = q1 if q2 is None else q2
-    _validate(c, "c", lower=-1.0, upper=1.0)
-    _validate(np.asarray(q1, dtype=float), "q1", lower=0.0, strict=True)
-    _validate(np.asarray(q2, dtype=float), "q2", lower=0.0, strict=True)
-    bps2 = tuple(breakpoints1 if breakpoints2 is None else breakpoints2)
+    c, q2, bps2 = _pair_arguments(c, q1, q2, breakpoints1, breakpoints2)
     sq1, sq2 = math.sqrt(q1), math.sqrt(q2)
     flat = c.ravel()
     sine = _sine(flat, None if gap is None else np.asarray(gap, dtype=float).ravel())

@@ -688,25 +688,18 @@ def speedup_verdict(speedups: list[dict], key: str, tag: str, what: str) -> None
 
 def print_targets(a: dict, maps: dict[str, float], props: list[dict]) -> None:
     print("\nC. targets")
-    worst = max(props, key=lambda r: r["t"])
-    over = [r for r in props if not r["t"] < TARGET_PROPAGATION_S]
-    print(f"   propagation for a built-in < {fmt_t(TARGET_PROPAGATION_S)}, over all {len(props)} "
-          f"rows of B2: slowest {fmt_t(worst['t'])} ({worst['name']}, {worst['where']}); "
-          f"{len(props) - len(over)}/{len(props)} rows under -> "
-          f"{'MET' if not over else 'NOT MET'}")
-    if over:
-        print("       above: " + "; ".join(
-            f"{r['name']} at sigma_w2 = {r['sw']:.6g}, sigma_b2 = {r['sb']:g} ({r['where']}, "
-            f"{r['phase']}) {fmt_t(r['t'])}" for r in over))
-    over_first = [r for r in props if not r["first"] < TARGET_PROPAGATION_S]
-    worst_first = max(props, key=lambda r: r["first"])
-    print(f"   the same, first call at each point (node cache emptied): slowest "
-          f"{fmt_t(worst_first['first'])} ({worst_first['name']}, {worst_first['where']}); "
-          f"{len(props) - len(over_first)}/{len(props)} rows under -> "
-          f"{'MET' if not over_first else 'NOT MET'}")
-    if over_first:
-        print("       above: " + "; ".join(
-            f"{r['name']} {r['where']} {fmt_t(r['first'])}" for r in over_first))
+    for key, what in (("t", f"propagation for a built-in < {fmt_t(TARGET_PROPAGATION_S)}, over "
+                            f"all {len(props)} rows of B2 (median)"),
+                      ("first", "the same, first call at each point (node cache emptied)")):
+        worst = max(props, key=lambda r: r[key])
+        over = [r for r in props if not r[key] < TARGET_PROPAGATION_S]
+        print(f"   {what}: slowest {fmt_t(worst[key])} ({worst['name']}, {worst['where']}); "
+              f"{len(props) - len(over)}/{len(props)} rows under -> "
+              f"{'MET' if not over else 'NOT MET'}")
+        if over:
+            print("       above: " + "; ".join(
+                f"{r['name']} at sigma_w2 = {r['sw']:.6g}, sigma_b2 = {r['sb']:g} ({r['where']}, "
+                f"{r['phase']}) {fmt_t(r[key])}" for r in over))
     worst_map = max(maps, key=maps.get)
     over_map = [n for n, t in maps.items() if not t < TARGET_MAP_1000_S]
     print(f"   1000-point correlation map < {fmt_t(TARGET_MAP_1000_S)}, over all {len(maps)} "
