@@ -154,10 +154,12 @@ class _Boundaries:
             return self._get("lower", rate, hi) if hi != math.inf else np.ones(self.m.shape)
         if hi == math.inf:
             return self._get("upper", rate, lo)
-        # both ends above the mean: the difference of upper tails keeps the digits
-        return np.where(self.t(rate, lo) > 0.0,
-                        self._get("upper", rate, lo) - self._get("upper", rate, hi),
-                        self._get("lower", rate, hi) - self._get("lower", rate, lo))
+        # from the two tails: both ends above the mean, both below, or one on each side
+        # (a difference of small tails keeps its digits; only the middle case is 1 - ...)
+        t_lo, t_hi = self.t(rate, lo), self.t(rate, hi)
+        tail_lo, tail_hi = self._get("tail", rate, lo), self._get("tail", rate, hi)
+        return np.where(t_lo >= 0.0, tail_lo - tail_hi,
+                        np.where(t_hi <= 0.0, tail_hi - tail_lo, 1.0 - tail_lo - tail_hi))
 
 
 def _piece_term(term: Term, lo: float, hi: float, bd: _Boundaries) -> Array:
