@@ -263,7 +263,9 @@ def _square_clipped(x: Array) -> Array:
 
 
 def _sigmoid_prime(x: Array) -> Array:
-    return special.expit(x) * special.expit(-x)
+    """sigmoid'(x) = e^{-|x|} / (1 + e^{-|x|})^2: one exp, no overflow, relative accuracy in the tails."""
+    e = np.exp(-np.abs(x))
+    return e / ((1.0 + e) * (1.0 + e))
 
 
 def _softplus(x: Array) -> Array:
@@ -285,8 +287,9 @@ def _swish(beta: float) -> tuple[ArrayFn, ArrayFn]:
         return x * special.expit(beta * x)
 
     def deriv(x: Array) -> Array:
-        s = special.expit(beta * x)
-        return s + beta * x * s * special.expit(-beta * x)
+        # s + beta x s (1 - s), with s (1 - s) = sigmoid'(beta x) in its one-exp form
+        bx = beta * x
+        return special.expit(bx) + bx * _sigmoid_prime(bx)
 
     return value, deriv
 
@@ -305,8 +308,8 @@ def _gelu_tanh_deriv(x: Array) -> Array:
     x2 = xc * xc
     u = _SQRT_2_OVER_PI * (xc + _GELU_TANH_C * (x2 * xc))
     du = _SQRT_2_OVER_PI * (1.0 + 3.0 * _GELU_TANH_C * x2)
-    s = special.expit(2.0 * u)
-    return s + xc * 2.0 * du * s * special.expit(-2.0 * u)
+    # s + 2 x u' s (1 - s) with s = sigmoid(2u), s (1 - s) in its one-exp form
+    return special.expit(2.0 * u) + xc * 2.0 * du * _sigmoid_prime(2.0 * u)
 
 
 def _mish_value(x: Array) -> Array:
