@@ -46,11 +46,13 @@ Nothing is asserted: the script prints the targets and whether each is met.
 from __future__ import annotations
 
 import argparse
+import contextlib
+import gc
 import math
 import statistics
 import sys
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 
 import mpmath as mp
 import numpy as np
@@ -299,14 +301,28 @@ def median_time(fn: Callable[[], object], repeats: int, warm: bool = True
                 ) -> tuple[float, object]:
     """Median wall time of ``repeats`` calls, after one untimed warm-up call if ``warm``
     (propcalc caches its quadrature nodes; cheap baselines get the same courtesy, the slow
-    adaptive and sampling ones have no cache to warm)."""
+    adaptive and sampling ones have no cache to warm). The garbage collector is paused
+    during each timed call, as :mod:`timeit` does, for every method alike: this process
+    holds many mpmath objects whose collection would otherwise land in random calls."""
     out = fn() if warm else None
     times = []
     for _ in range(repeats):
-        t0 = time.perf_counter()
-        out = fn()
-        times.append(time.perf_counter() - t0)
+        with _no_gc():
+            t0 = time.perf_counter()
+            out = fn()
+            times.append(time.perf_counter() - t0)
     return statistics.median(times), out
+
+
+@contextlib.contextmanager
+def _no_gc() -> Iterator[None]:
+    was = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if was:
+            gc.enable()
 
 
 def counting(act: Activation) -> tuple[Activation, list[int]]:
@@ -613,9 +629,10 @@ def time_propagation(act: Activation, name: str, sw: float, sb: float, where: st
     """
     try:
         quadrature._scalar_nodes.cache_clear()
-        t0 = time.perf_counter()
-        propcalc.propagation(act, sw, sb)
-        first = time.perf_counter() - t0
+        with _no_gc():
+            t0 = time.perf_counter()
+            propcalc.propagation(act, sw, sb)
+            first = time.perf_counter() - t0
         t, p = median_time(lambda: propcalc.propagation(act, sw, sb), repeats)
     except propcalc.PropcalcError as exc:
         return {"name": name, "where": where, "sw": sw, "sb": sb, "phase": f"error: {exc}",
