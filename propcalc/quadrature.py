@@ -504,7 +504,7 @@ def _bivariate_group(fn: Callable[[Array, Array], Array], flat: Array, idx: Arra
                      sq1: float, sq2: float, bps1: tuple[float, ...], bps2: tuple[float, ...],
                      rule: QuadratureRule, chunk_elements: int, what: str, out: Array) -> None:
     q1, q2 = sq1 * sq1, sq2 * sq2
-    n_outer = _node_count(sq1, len(bps1) + 2 * level * len(bps2), rule)
+    n_outer = _node_count(sq1, len(bps1) + 2 * (level + CROSSING_OUTWARD) * len(bps2), rule)
     n_inner = _node_count(sq2, len(bps2), rule)
     step = max(1, int(chunk_elements // max(1, n_outer * n_inner)))
     for start in range(0, idx.size, step):
@@ -548,6 +548,12 @@ def _sine(c: Array, gap: Array | None = None) -> Array:
     return np.sqrt(np.maximum(0.0, (1.0 - c) * (1.0 + c)))
 
 
+#: Levels of the crossing grading beyond the ceil(log2(|c| / s)) that reach its finest panel:
+#: the inner expectation's transition has Gaussian tails over about 8 widths s / |c|, which
+#: the graded panels must cover (up to about 2 in z) before the uniform panels take over.
+CROSSING_OUTWARD = 2
+
+
 def _crossing_levels(c: Array, bps2: Sequence[float], s_all: Array | None = None) -> Array:
     """Grading depth of the outer rule where the inner mean crosses a breakpoint.
 
@@ -573,7 +579,8 @@ def _crossing_edges(cc: Array, sq2: float, bps2: Sequence[float], level: int,
     width = np.where(s > 0, s / np.maximum(np.abs(cc), 1e-300), 0.0)
     with np.errstate(divide="ignore"):
         centers = np.asarray(bps2)[None, :] / (np.where(cc == 0, np.inf, cc)[:, None] * sq2)
-    offs = np.concatenate([sgn * 2.0 ** np.arange(level) for sgn in (-1.0, 1.0)])
+    offs = np.concatenate([sgn * 2.0 ** np.arange(level + CROSSING_OUTWARD)
+                           for sgn in (-1.0, 1.0)])
     return (centers[:, :, None] + width[:, None, None] * offs).reshape(cc.size, -1)
 
 
@@ -625,7 +632,8 @@ def conditional_pair_expectation(pairs: Sequence[tuple[Callable[[Array], Array],
     bps1 = tuple(breakpoints1)
     for level in np.unique(levels):
         idx = np.flatnonzero(levels == level)
-        n_outer = _node_count(sq1, len(bps1) + 2 * int(level) * len(bps2), rule)
+        n_outer = _node_count(sq1, len(bps1) + 2 * (int(level) + CROSSING_OUTWARD) * len(bps2),
+                              rule)
         step = max(1, int(chunk_elements // n_outer))
         for start in range(0, idx.size, step):
             sel = idx[start:start + step]

@@ -199,15 +199,17 @@ def _piece_term(term: Term, lo: float, hi: float, bd: _Boundaries) -> Array:
 
 
 def _eval_pieces(pieces: Sequence[Piece], x: Array) -> Array:
+    """The piecewise function itself (the smoothing at v = 0); outside a piece its terms
+    may overflow (e^745 * 0), which np.where then discards."""
     out = np.zeros_like(x)
-    for p in pieces:
-        inside = (x >= p.lo) & (x < p.hi)
-        val = np.zeros_like(x)
-        for t in p.terms:
-            with np.errstate(over="ignore", invalid="ignore"):
+    with np.errstate(over="ignore", invalid="ignore"):
+        for p in pieces:
+            inside = (x >= p.lo) & (x < p.hi)
+            val = np.zeros_like(x)
+            for t in p.terms:
                 e = np.exp(t.rate * x) if t.rate != 0.0 else 1.0
-            val = val + t.coef * (x if t.power == 1 else 1.0) * e
-        out = np.where(inside, val, out)
+                val = val + t.coef * (x if t.power == 1 else 1.0) * e
+            out = np.where(inside, val, out)
     return out
 
 

@@ -23,7 +23,7 @@ from scipy import integrate
 
 import propcalc
 from propcalc import maps
-from propcalc.quadrature import bivariate_expectation, conditional_pair_expectation
+from propcalc.quadrature import QuadratureRule, bivariate_expectation, conditional_pair_expectation
 
 A = propcalc.activation
 
@@ -305,3 +305,112 @@ def test_conditional_route_with_unequal_variances_is_williams(q1, q2):
                      * (mpmath.sqrt(1 - mpmath.mpf(x) ** 2)
                         + (mpmath.pi - mpmath.acos(mpmath.mpf(x))) * mpmath.mpf(x))) for x in c]
     assert_allclose(got, ref, rtol=0, atol=3e-15 * math.sqrt(q1 * q2))
+
+
+def _mp_clip_pair(c, q, lo, hi):
+    """E[clip(u1) clip(u2)] for clip to [lo, hi]: a 1-D mpmath quadrature (30 digits) of
+    clip(u1) S(c u1, q (1 - c^2)), S(m, v) = E[clip(m + sqrt(v) z)] from the truncated normal
+    moments (Johnson, Kotz & Balakrishnan 1994, section 10.1), split at every kink and crossing."""
+    with mpmath.workdps(30):
+        c, q = mpmath.mpf(c), mpmath.mpf(q)
+        lo, hi = mpmath.mpf(lo), mpmath.mpf(hi)
+        s = mpmath.sqrt(q * (1 - c) * (1 + c))
+
+        def smooth(m):
+            a, b = (lo - m) / s, (hi - m) / s
+            mid = m * (mpmath.ncdf(b) - mpmath.ncdf(a)) + s * (mpmath.npdf(a) - mpmath.npdf(b))
+            return lo * mpmath.ncdf(a) + mid + hi * (1 - mpmath.ncdf(b))
+
+        def clip(x):
+            return min(max(x, lo), hi)
+
+        sq = mpmath.sqrt(q)
+        cuts = {lo / sq, hi / sq}
+        for b in (lo, hi):
+            for k in (-4, -2, -1, 0, 1, 2, 4):
+                cuts.add((b + k * s) / (c * sq))
+        pts = [-mpmath.inf] + sorted(cuts) + [mpmath.inf]
+        return float(mpmath.quad(lambda z: clip(sq * z) * smooth(c * sq * z) * mpmath.npdf(z),
+                                 pts))
+
+
+@pytest.mark.parametrize("text,lo,hi,q", [("hard_tanh", -1, 1, 46.42), ("hard_tanh", -1, 1, 0.3),
+                                          ("min(max(x, -0.1), 0.1)", -0.1, 0.1, 42.17),
+                                          ("min(max(x, 0), 2)", 0, 2, 1.0)])
+def test_two_breakpoints_near_one_and_across_the_route_switch(text, lo, hi, q):
+    # activations with two breakpoints: E[phi phi] just below and above c = 0.99 (where the
+    # route changes to the slope integral) and closer to 1, against the mpmath quadrature above;
+    # also C continuous and non-decreasing across the switch. Required 2e-15 of E[phi^2].
+    act = A(text)
+    c = np.array([0.985, 0.99, np.nextafter(0.99, 1.0), 0.9905, 0.992, 0.995, 0.999, 0.99999])
+    got = maps.pair_expectation(act, c, q)
+    scale = float(maps.second_moment(act, q))
+    ref = np.array([_mp_clip_pair(x, q, lo, hi) for x in c])
+    assert_allclose(got, ref, rtol=0, atol=2e-15 * scale)
+    # non-decreasing up to a few ulps (0.99 and the next float differ by less than an ulp of C)
+    assert np.all(np.diff(got) >= -1e-15 * scale)
+
+
+def test_two_jumps_near_one_keep_their_digits():
+    # two jumps (at -1 and 1): the Dirac cross terms of the slope near c = 1 are formed as
+    # (b1 - b2)^2 + 2 b1 b2 (1 - c), not b1^2 - 2 c b1 b2 + b2^2. E[phi phi] with
+    # phi = H(x - 1) + H(x + 1) from Sheppard-type orthant probabilities: for thresholds h, k
+    # P(u1 > h, u2 > k) by scipy's bivariate normal CDF (scipy.stats.multivariate_normal)
+    from scipy import stats
+    act = A("where(x >= 1, 1, 0) + where(x >= -1, 1, 0)")
+    q = 1.0
+    for gap in (5e-3, 1e-4, 1e-6, 1e-9):
+        c = 1.0 - gap
+        cov = [[q, c * q], [c * q, q]]
+        total = 0.0
+        for h in (1.0, -1.0):
+            for k in (1.0, -1.0):
+                # P(u1 > h, u2 > k) = P(-u1 < -h, -u2 < -k)
+                total += float(stats.multivariate_normal(mean=[0, 0], cov=cov).cdf([-h, -k]))
+        got = float(maps.pair_expectation(act, c, q))
+        # scipy's CDF is accurate to about 1e-8 (its default abseps): the check is loose, the
+        # sharp one against the fine rule follows
+        assert got == pytest.approx(total, abs=1e-7)
+    fine = QuadratureRule(n_per_panel=32, panel_width=0.5)
+    c = 1.0 - np.array([5e-3, 1e-4, 1e-6, 1e-9])
+    direct = conditional_pair_expectation([(act.value, act.smoothing.value)], c, q, q,
+                                          act.breakpoints, rule=fine)[0]
+    # internal consistency at 2e-15 (no outside source): the slope route against the direct
+    # 1-D route on a much finer rule
+    assert_allclose(maps.pair_expectation(act, c, q), direct, rtol=0,
+                    atol=2e-15 * float(maps.second_moment(act, q)))
+
+
+def test_breakpoint_off_zero_is_graded_where_the_inner_mean_crosses_it():
+    # max(x - 2, 0) - max(x, 0) (kinks at 0 and 2) at q = 1 just above c = 0.99: the inner
+    # expectation's transition at c u1 = 2 has Gaussian tails over ~8 widths s / c, which the
+    # crossing grading must cover (it did not, by 2e-13). Reference: mpmath at 30 digits of
+    # E[phi(u1) S(c u1, 1 - c^2)] with S from the truncated normal moments
+    act = A("max(x - 2, 0) - max(x, 0)")
+    with mpmath.workdps(30):
+        def ref(cf):
+            c = mpmath.mpf(cf)
+            s = mpmath.sqrt((1 - c) * (1 + c))
+
+            def smooth(m):
+                a0, a2 = -m / s, (2 - m) / s
+                inside = m * (mpmath.ncdf(a2) - mpmath.ncdf(a0)) + s * (mpmath.npdf(a0)
+                                                                       - mpmath.npdf(a2))
+                return -inside - 2 * (1 - mpmath.ncdf(a2))
+
+            def phi(x):
+                return (x - 2 if x > 2 else 0) - (x if x > 0 else 0)
+
+            pts = [-mpmath.inf, 0, 2] + [(2 + k * s) / c for k in (-4, -1, 0, 1, 4)] + [mpmath.inf]
+            return float(mpmath.quad(lambda z: phi(z) * smooth(c * z) * mpmath.npdf(z),
+                                     sorted(set(pts))))
+
+        c = np.array([0.93, 0.959, 0.969, 0.9905, 0.992])
+        expected = np.array([ref(x) for x in c])
+    got_1d = conditional_pair_expectation([(act.value, act.smoothing.value)], c, 1.0, 1.0,
+                                          act.breakpoints)[0]
+    got_2d = bivariate_expectation(lambda a, b: act.value(a) * act.value(b), c, 1.0, 1.0,
+                                   act.breakpoints)
+    scale = float(maps.second_moment(act, 1.0))
+    assert_allclose(got_1d, expected, rtol=0, atol=3e-15 * scale)
+    assert_allclose(got_2d, expected, rtol=0, atol=3e-15 * scale)
