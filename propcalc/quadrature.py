@@ -195,11 +195,43 @@ def _uniform_edges(rule: QuadratureRule) -> Array:
     return edges
 
 
+@lru_cache(maxsize=64)
+def _centred_nodes(n_levels: int, break_at_zero: bool,
+                   rule: QuadratureRule) -> tuple[Array, Array]:
+    """Standard-normal nodes and weights of the rule for a zero mean (cached, read-only).
+
+    With mean 0 and no breakpoint other than 0 the panels in z do not depend on q
+    beyond the grading depth ``n_levels``: the nodes in x are ``sqrt(q) z``.
+    """
+    parts = [_uniform_edges(rule), _grading_offsets(rule, n_levels)]
+    if break_at_zero:
+        parts.append(np.zeros(1))
+    edges = np.unique(np.clip(np.concatenate(parts), -rule.z_max, rule.z_max))
+    a, b = edges[:-1], edges[1:]
+    t, wt = legendre_rule(rule.n_per_panel)
+    half = 0.5 * (b - a)
+    z = (half[:, None] * t + (0.5 * (a + b))[:, None]).ravel()
+    w = (half[:, None] * wt).ravel() * _INV_SQRT_2PI * np.exp(-0.5 * z * z)
+    z.setflags(write=False)
+    w.setflags(write=False)
+    return z, w
+
+
+def _centred(mean: Any, breakpoints: Sequence[float]) -> bool:
+    """True when the nodes can come from :func:`_centred_nodes` (zero mean, breaks at 0 only)."""
+    return (all(b == 0.0 for b in breakpoints)
+            and (mean == 0.0 if np.ndim(mean) == 0 else not np.any(mean)))
+
+
 @lru_cache(maxsize=256)
 def _scalar_nodes(mean: float, q: float, breakpoints: tuple[float, ...],
                   rule: QuadratureRule) -> tuple[Array, Array]:
     if not (q > 0.0 and math.isfinite(q) and math.isfinite(mean)):
         x, w = _rule_nodes(mean, q, breakpoints, rule, None)
+    elif _centred(mean, breakpoints):
+        sq = math.sqrt(q)
+        z, w = _centred_nodes(_grading_levels(sq, rule.scale), bool(breakpoints), rule)
+        x = sq * z
     else:
         # the same panels as _rule_nodes builds for one row, without its broadcasting
         sq = math.sqrt(q)
@@ -250,6 +282,13 @@ def _rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float],
                 rule: QuadratureRule, extra_edges: Array | None) -> tuple[Array, Array]:
     mean, q = np.broadcast_arrays(np.asarray(mean, dtype=float), np.asarray(q, dtype=float))
     sq = np.sqrt(q)
+    if (extra_edges is None and sq.size and _centred(mean, breakpoints)
+            and np.all((sq > 0) & np.isfinite(sq))):
+        # every row has the same panels in z: one cached set, scaled (no per-row work)
+        z, w = _centred_nodes(_grading_levels(float(np.max(sq)), rule.scale),
+                              bool(len(breakpoints)), rule)
+        x = sq[..., None] * z
+        return x, np.broadcast_to(w, x.shape)
     L = rule.z_max
     with np.errstate(divide="ignore", invalid="ignore"):
         inv = np.where(sq > 0, 1.0 / np.where(sq > 0, sq, 1.0), np.inf)
