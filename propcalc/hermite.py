@@ -13,13 +13,16 @@ back to the 2-D quadrature.
 
 from __future__ import annotations
 
+from functools import lru_cache
+
 import numpy as np
 
 from .activations import Activation
 from .errors import ComputationError
 from .quadrature import QuadratureRule, rule_nodes
 
-__all__ = ["SERIES_PASSES", "hermite_coefficients", "series_fixed_points"]
+__all__ = ["SERIES_PASSES", "hermite_coefficients", "coefficients_at", "series_sum",
+           "series_fixed_points"]
 
 Array = np.ndarray
 
@@ -75,6 +78,27 @@ def hermite_coefficients(act: Activation, q: Array, kmax: int,
             out[:, k + 1] = np.einsum("ij,ij->i", wf, h)
         b[sel] = out * out
     return b, m2
+
+
+@lru_cache(maxsize=32)
+def coefficients_at(act: Activation, q: float, kmax: int,
+                    rule: QuadratureRule) -> tuple[Array, float]:
+    """:func:`hermite_coefficients` at one variance, cached per (act, q, kmax, rule).
+
+    A correlation map evaluated point by point at one q (iterating c_l layer by
+    layer) then pays for the 1-D integrals once. Activations compare by identity,
+    so the key is exact. The coefficients come back read-only.
+    """
+    b, m2 = hermite_coefficients(act, np.array([float(q)]), kmax, rule)
+    row = b[0].copy()
+    row.setflags(write=False)
+    return row, float(m2[0])
+
+
+def series_sum(b: Array, c: Array) -> Array:
+    """sum_k b_k c^k for every entry of ``c`` (powers by cumulative products)."""
+    with np.errstate(under="ignore"):
+        return _powers(np.ravel(c), b.size - 1) @ b
 
 
 def _powers(x: Array, kmax: int) -> Array:

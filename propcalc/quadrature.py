@@ -233,23 +233,31 @@ def _scalar_nodes(mean: float, q: float, breakpoints: tuple[float, ...],
         z, w = _centred_nodes(_grading_levels(sq, rule.scale), bool(breakpoints), rule)
         x = sq * z
     else:
-        # the same panels as _rule_nodes builds for one row, without its broadcasting
-        sq = math.sqrt(q)
-        inv = 1.0 / sq
-        parts = [_uniform_edges(rule),
-                 -mean * inv + _grading_offsets(rule, _grading_levels(sq, rule.scale))]
-        if breakpoints:
-            parts.append((np.asarray(breakpoints) - mean) * inv)
-        edges = np.unique(np.clip(np.concatenate(parts), -rule.z_max, rule.z_max))
-        a, b = edges[:-1], edges[1:]
-        t, wt = legendre_rule(rule.n_per_panel)
-        half = 0.5 * (b - a)
-        z = (half[:, None] * t + (0.5 * (a + b))[:, None]).ravel()
-        w = (half[:, None] * wt).ravel() * _INV_SQRT_2PI * np.exp(-0.5 * z * z)
-        x = mean + sq * z
+        x, w = _row_nodes(mean, q, breakpoints, rule)
     x.setflags(write=False)
     w.setflags(write=False)
     return x, w
+
+
+def _row_nodes(mean: float, q: float, breakpoints: Sequence[float], rule: QuadratureRule,
+               extra: Array | None = None) -> tuple[Array, Array]:
+    """The panels :func:`_rule_nodes` builds for one row (finite mean, q > 0), without
+    its broadcasting; ``extra`` are more edges in z."""
+    sq = math.sqrt(q)
+    inv = 1.0 / sq
+    parts = [_uniform_edges(rule),
+             -mean * inv + _grading_offsets(rule, _grading_levels(sq, rule.scale))]
+    if len(breakpoints):
+        parts.append((np.asarray(breakpoints, dtype=float) - mean) * inv)
+    if extra is not None:
+        parts.append(extra)
+    edges = np.unique(np.clip(np.concatenate(parts), -rule.z_max, rule.z_max))
+    a, b = edges[:-1], edges[1:]
+    t, wt = legendre_rule(rule.n_per_panel)
+    half = 0.5 * (b - a)
+    z = (half[:, None] * t + (0.5 * (a + b))[:, None]).ravel()
+    w = (half[:, None] * wt).ravel() * _INV_SQRT_2PI * np.exp(-0.5 * z * z)
+    return mean + sq * z, w
 
 
 def rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float] = (),
@@ -289,6 +297,11 @@ def _rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float],
                               bool(len(breakpoints)), rule)
         x = sq[..., None] * z
         return x, np.broadcast_to(w, x.shape)
+    if sq.size == 1 and math.isfinite(float(mean.flat[0])) and 0 < float(sq.flat[0]) < math.inf:
+        # one row (an isolated pair expectation): sorted unique edges, no broadcasting
+        extra = None if extra_edges is None else np.ravel(extra_edges)
+        x, w = _row_nodes(float(mean.flat[0]), float(q.flat[0]), breakpoints, rule, extra)
+        return x.reshape(sq.shape + x.shape), w.reshape(sq.shape + w.shape)
     L = rule.z_max
     with np.errstate(divide="ignore", invalid="ignore"):
         inv = np.where(sq > 0, 1.0 / np.where(sq > 0, sq, 1.0), np.inf)

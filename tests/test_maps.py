@@ -175,6 +175,26 @@ def test_series_route_of_a_long_map_is_williams(q):
     assert_allclose(got, williams(c, q, q) / v, rtol=0, atol=ATOL)
 
 
+@pytest.mark.parametrize("q", [1.0, 5.0, 26.0])
+def test_series_route_point_by_point_is_williams(q):
+    # one c per call (iterating c_l layer by layer): the same series route, with the
+    # coefficients cached per (activation, q); Williams 1997 eq. (11) on the erf twin as above.
+    # C(1) = 1 exactly (it is V(q) / V(q) on the same nodes).
+    erf = A("erf")
+    twin = Activation(name="erf", value_fn=erf.value_fn, derivative_fn=erf.derivative_fn,
+                      declared_scale=1.0)
+    v = float(williams(1.0, q, q))
+    for c in list(C_GRID[::3]) + [1.0, -1.0]:
+        got = maps.correlation_map(twin, float(c), 1.0, 0.0, q)
+        assert np.ndim(got) == 0
+        assert abs(float(got) - float(williams(c, q, q)) / v) <= ATOL, c
+    assert float(maps.correlation_map(twin, 1.0, 2.0, 0.3, q)) == 1.0
+    # the cache: a second pass at this q reuses the same coefficient arrays
+    from propcalc.hermite import SERIES_PASSES, coefficients_at
+    kmax, rule = SERIES_PASSES[0]
+    assert coefficients_at(twin, q, kmax, rule)[0] is coefficients_at(twin, q, kmax, rule)[0]
+
+
 # ------------------------------------------------------------------------------------------
 # step: Sheppard 1899
 # ------------------------------------------------------------------------------------------

@@ -403,3 +403,30 @@ def test_bivariate_vectorised_over_c_matches_scalar_calls():
     for c, v in zip(cs.ravel(), grid.ravel()):
         assert_allclose(v, float(bivariate_expectation(g, c, 0.8, 1.7, act.breakpoints)),
                         rtol=1e-14, atol=1e-16)
+
+
+def test_node_shortcuts_match_the_general_builder():
+    # The zero-mean shortcut (one cached set in z, breakpoints at 0 only) and the one-row
+    # builder (sorted unique edges) must give the same rule as the general broadcasting
+    # builder, up to panels of zero width (weight-0 nodes) and rounding: compared through
+    # two integrands with a kink at 0 (a consistency check between builders; the accuracy
+    # of the rule itself is checked against closed forms and mpmath above).
+    from propcalc import quadrature as quad
+
+    rng = np.random.default_rng(7)
+    funcs = [lambda x: np.abs(x) ** 3, lambda x: np.maximum(x, 0.0) * np.exp(np.minimum(x, 5.0))]
+    q = np.array([1e-4, 0.7, 3.0, 900.0])
+    for bps in [(), (0.0,)]:
+        x, w = quad.rule_nodes(np.zeros(q.size), q, bps)
+        assert not w.flags.writeable  # the shared weights cannot be modified by a caller
+        x_gen, w_gen = quad._rule_nodes(np.zeros(q.size), q, bps, quad.DEFAULT_RULE,
+                                        np.zeros((q.size, 0)))
+        for f in funcs:
+            assert_allclose(np.sum(w * f(x), -1), np.sum(w_gen * f(x_gen), -1), rtol=1e-14)
+    # one row with extra edges: as the same row inside a batch of two
+    extra = rng.normal(size=(1, 6))
+    x1, w1 = quad.rule_nodes(np.array([0.3]), np.array([2.0]), (-1.0, 1.0), extra_edges=extra)
+    x2, w2 = quad.rule_nodes(np.array([0.3, 0.3]), np.array([2.0, 2.0]), (-1.0, 1.0),
+                             extra_edges=np.vstack([extra, extra]))
+    for f in funcs:
+        assert_allclose(np.sum(w1 * f(x1), -1), np.sum(w2 * f(x2), -1)[:1], rtol=1e-14)
