@@ -563,7 +563,7 @@ def _chaotic_fixed_point(act: Activation, sw: float, sb: float, q: float,
     # saves 1-D steps); for kinked ones it converges slowly and the 1-D steps go alone
     smooth = not act.breakpoints or act.smoothing is None
     if rule == DEFAULT_RULE and act.scale == 1.0 and not act.has_jumps and smooth:
-        for kmax, series_rule in SERIES_PASSES:  # 160 terms, then 480 (under 1 ms each)
+        for kmax, series_rule in SERIES_PASSES:  # 160 terms, then 640 (under 1 ms each)
             c, s, ok, curv, curv_max = series_fixed_points(
                 act, np.array([sw]), np.array([sb]), np.array([q]), kmax, series_rule,
                 curvature=True)

@@ -436,7 +436,7 @@ def correlation_map(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
     return (sw * pair_expectation(act, ca, qf, rule) + sb) / vq
 
 
-#: A vectorised map tries the 480-term Hermite pass when the 160-term one leaves more than
+#: A vectorised map tries the 640-term Hermite pass when the 160-term one leaves more than
 #: this many points to the 2-D rule (each costs about as much as a tenth of that pass).
 SERIES_SPARE_POINTS = 8
 
@@ -444,7 +444,7 @@ SERIES_SPARE_POINTS = 8
 def _pair_by_series(act: Activation, ca: Array, q: float, rule: QuadratureRule) -> Array:
     """E[phi(u1) phi(u2)] from the Hermite series where its tail bound is below 1e-14 E[phi^2].
 
-    The 160-term pass first, the 480-term pass if the first leaves more than
+    The 160-term pass first, the 640-term pass if the first leaves more than
     SERIES_SPARE_POINTS points to the 2-D rule (or any, in a call of at most that
     many points). The coefficients are cached per (act, q), so a map evaluated
     point by point at one q pays for them once. Mehler's formula ``sum_k a_k^2 c^k`` (see propcalc.hermite): every term is

@@ -555,7 +555,7 @@ def _nested_quad_map(act, c, sw, sb, q):
 
 def test_gelu_tanh_chaotic_fixed_point_near_one_is_a_fixed_point_of_scipys_map():
     # gelu_tanh at (1.99, 0.2): q* ~ 26 and c* ~ 0.9903, where neither Hermite pass certifies
-    # c*; the 480-term guess is polished by the 2-D rule. Checked with nested scipy quad:
+    # c*; the 640-term guess is polished by the 2-D rule. Checked with nested scipy quad:
     # C(c*) - c* vanishes to its tolerance (Poole et al. 2016, eq. 5 defines C)
     act = A("gelu_tanh")
     p = propcalc.propagation(act, 1.99, 0.2)

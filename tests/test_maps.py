@@ -163,7 +163,7 @@ def test_erf_correlation_map_and_slope_closed_form(sw, sb, q):
 
 @pytest.mark.parametrize("q", [1.0, 5.0, 26.0])
 def test_series_route_of_a_long_map_is_williams(q):
-    # the Hermite-series route of a vectorised map (160 terms, then 480, then the 2-D rule where
+    # the Hermite-series route of a vectorised map (160 terms, then 640, then the 2-D rule where
     # neither tail bound is small enough), on erf with its closed-form smoothing removed so that
     # it takes that route: Williams 1997 eq. (11), atol as the other map checks
     erf = A("erf")

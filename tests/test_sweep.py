@@ -335,7 +335,7 @@ def test_hermite_series_agrees_with_the_2d_integrals(name):
                 pts.append((sw, sb, p.q_star, p.c_star, p.chi_c))
     a = np.array(pts)
     accepted = 0
-    for kmax, rule in _SERIES_PASSES:  # 160 terms, then 480 on finer panels
+    for kmax, rule in _SERIES_PASSES:  # 160 terms, then 640 on finer panels
         c, chi, ok = _series_fixed_points(act, a[:, 0], a[:, 1], a[:, 2], kmax, rule)
         np.testing.assert_allclose(c[ok], a[ok, 3], rtol=0, atol=1e-11)
         np.testing.assert_allclose(chi[ok], a[ok, 4], rtol=1e-11)
