@@ -472,7 +472,8 @@ def correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
     Newton step delta = -g / (C' - 1) from the guess lands within
     ``M delta^2 / (2 (1 - C'))`` of the root (Taylor with the Lagrange remainder), and
     when that is below 1e-17 and |delta| <= 1e-9 the polished point is returned with
-    ``C'(c*) = C'(guess) + C''(guess) delta``.
+    ``C'(c*) = C'(guess) + C''(guess) delta``. A guess already at the rounding floor of
+    C (|g| <= 4e-15, yet up to 4e-15 / (1 - C') from c*) gets that same free step.
     """
     v_q = float(variance_map(act, q, sw, sb, rule))
 
@@ -528,6 +529,12 @@ def _warm_start(both: Any, guess: float,
         return None
     g, slope = both(guess)
     if abs(g) <= 4e-15:
+        # at the rounding floor of C, but c* is still only within 4e-15 / (1 - C') of the
+        # guess (3e-13 at c* = 0.99): the free Newton step from it removes most of that
+        if slope < 1.0:
+            delta = -g / (slope - 1.0)
+            curv = curvature[0] if curvature is not None and math.isfinite(curvature[0]) else 0.0
+            return ("root", guess + delta, slope + curv * delta)
         return ("root", guess, slope)
     if curvature is not None and slope < 1.0:
         delta = -g / (slope - 1.0)

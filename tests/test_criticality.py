@@ -563,6 +563,18 @@ def test_gelu_tanh_chaotic_fixed_point_near_one_is_a_fixed_point_of_scipys_map()
     assert abs(_nested_quad_map(act, p.c_star, 1.99, 0.2, p.q_star) - p.c_star) < 2e-12
 
 
+def test_gelu_chaotic_fixed_point_near_one_to_rounding():
+    # gelu at (1.99, 0.2): q* ~ 26, c* ~ 0.9903, 1 - C'(c*) ~ 0.012, so a point where
+    # C(c) - c sits at its rounding floor (4e-15) can still be 3e-13 from c*; the engine takes
+    # the Newton step from there. Reference: mpmath at 24 digits (a 1-D mpmath.quad whose inner
+    # Gaussian expectation E[X Phi(X)], X normal, is in closed form; Brent's method on
+    # C(c) - c), the reference of tests/benchmarks/bench_engine.py section B, printed there to
+    # 15 digits
+    p = propcalc.propagation(A("gelu"), 1.99, 0.2)
+    assert p.c_star == pytest.approx(0.990304334649275, rel=2e-14)
+    assert p.chi_c == pytest.approx(0.987646376955238, rel=3e-14)
+
+
 @pytest.mark.parametrize("guess", [None, 0.0, 0.5, 0.98, 0.990303, 0.9903033, 0.9904, 0.999,
                                    1.0, math.nan])
 def test_correlation_fixed_point_warm_start_reaches_the_same_root(guess):
