@@ -642,7 +642,7 @@ def conditional_pair_expectation(pairs: Sequence[tuple[Callable[[Array], Array],
                                  breakpoints1: Sequence[float] = (),
                                  breakpoints2: Sequence[float] | None = None, *,
                                  rule: QuadratureRule = DEFAULT_RULE,
-                                 chunk_elements: int = 1 << 13,
+                                 chunk_elements: int = 1 << 14,
                                  what: str = "the integrand",
                                  gap: Any = None) -> tuple[Array, ...]:
     """E[f(u1) g(u2)] as a 1-D integral, given S(m, v) = E[g(m + sqrt(v) z)] in closed form.
@@ -665,7 +665,8 @@ def conditional_pair_expectation(pairs: Sequence[tuple[Callable[[Array], Array],
         Breakpoints of the f's and of the g's (the second defaults to the first).
     chunk_elements : int
         Correlations are processed in chunks of about this many nodes (the default keeps
-        the temporaries in cache: 1.5-2x faster than large chunks).
+        the temporaries in cache: 1.5-2x faster than chunks of 65536, and 10-20% faster
+        than 8192 on the development machine).
     gap : array_like, optional
         ``1 - c`` where it is known more precisely than ``c`` (near c = 1, where
         ``1 - c^2`` computed from c would keep few digits).
