@@ -173,7 +173,7 @@ def _plain_nodes(rule: QuadratureRule) -> tuple[Array, Array]:
 
 
 def _node_count(sqrt_q: float, n_extra: int, rule: QuadratureRule) -> int:
-    n_edges = rule.uniform_edges.size + 5 + 2 * _grading_levels(sqrt_q, rule.scale) + n_extra
+    n_edges = _uniform_edges(rule).size + 5 + 2 * _grading_levels(sqrt_q, rule.scale) + n_extra
     return (n_edges - 1) * rule.n_per_panel
 
 
@@ -497,8 +497,9 @@ def _pair_arguments(c: Any, q1: float, q2: float | None, breakpoints1: Sequence[
     c = np.asarray(c, dtype=float)
     q2 = q1 if q2 is None else q2
     _validate(c, "c", lower=-1.0, upper=1.0)
-    _validate(np.asarray(q1, dtype=float), "q1", lower=0.0, strict=True)
-    _validate(np.asarray(q2, dtype=float), "q2", lower=0.0, strict=True)
+    for value, field in ((q1, "q1"), (q2, "q2")):
+        if not (isinstance(value, float) and 0.0 < value < math.inf):  # the common case, fast
+            _validate(np.asarray(value, dtype=float), field, lower=0.0, strict=True)
     return c, float(q2), tuple(breakpoints1 if breakpoints2 is None else breakpoints2)
 
 
