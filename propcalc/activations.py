@@ -223,6 +223,32 @@ class Activation:
             return 1.0
         return float(min(1.0, max(1e-3, top / curv)))
 
+    @cached_property
+    def exact_parity(self) -> str | None:
+        """"odd" or "even" when phi(-x) is -phi(x) or phi(x) bit for bit, else None.
+
+        Checked on 4002 points from 1e-8 to 1e4 in magnitude (and at 0 for "odd"),
+        off the breakpoints, which must themselves be symmetric. Stricter than
+        ``properties.parity`` (a tolerance of 1e-12): the maps use it to compute
+        E[phi(u1) phi(u2)] at -c from c (Mehler: odd phi has odd coefficients only).
+        """
+        bps = np.asarray(self.breakpoints, dtype=float)
+        if not np.array_equal(np.sort(-bps), bps):
+            return None
+        x = np.concatenate([np.geomspace(1e-8, 1e4, 2001), np.linspace(0.0, 12.0, 2001)[1:]])
+        x = x[np.all(np.abs(x[:, None] - np.abs(bps)[None, :]) > 1e-9 * np.maximum(1.0, x[:, None]),
+                     axis=1)] if bps.size else x
+        with np.errstate(all="ignore"):
+            f, fm = self.value(x), self.value(-x)
+            f0 = self.value(np.zeros(1))[0]
+        if not np.all(np.isfinite(f)) or not np.all(np.isfinite(fm)):
+            return None
+        if np.array_equal(fm, -f) and (f0 == 0.0 or 0.0 in self.breakpoints):
+            return "odd"
+        if np.array_equal(fm, f):
+            return "even"
+        return None
+
     @property
     def has_jumps(self) -> bool:
         """True if phi itself is discontinuous somewhere."""

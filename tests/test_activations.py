@@ -545,3 +545,32 @@ def test_to_dict_is_json_ready():
         d = propcalc.jsonable(activation(name).to_dict())
         text = json.dumps(d, allow_nan=False)
         assert json.loads(text)["name"] == name
+
+
+def test_exact_parity_is_bitwise():
+    # The maps compute E[phi(u1) phi(u2)] at -c from c only for an exactly odd or even phi
+    # (for odd phi the Hermite expansion has odd terms only: Mehler's formula, Daniely et al.
+    # 2016, section 6). Odd by definition: linear, tanh, erf, hard_tanh; the rest are not.
+    odd = {"linear", "tanh", "erf", "hard_tanh"}
+    for name in propcalc.builtin_names():
+        assert propcalc.activation(name).exact_parity == ("odd" if name in odd else None), name
+    from propcalc.formula import formula_activation
+    assert formula_activation("x / (1 + abs(x))").exact_parity == "odd"
+    assert formula_activation("x**2 - 3").exact_parity == "even"
+    # odd to 1e-13 but not exactly: the tolerant profile says odd, the maps must not
+    near = formula_activation("tanh(x) + 1e-13")
+    assert near.exact_parity is None
+
+
+def test_map_of_an_odd_activation_by_symmetry_matches_direct_points():
+    # internal consistency (the closed-form checks of the odd erf over c in [-1, 1] are in
+    # test_maps.py, Williams 1997): hard_tanh's vectorised map (half of it by symmetry) against
+    # one-point pair expectations at negative c
+    from propcalc import maps
+    act = propcalc.activation("hard_tanh")
+    c = np.linspace(-1.0, 1.0, 401)
+    got = maps.correlation_map(act, c, 1.3, 0.1, 0.8)
+    v = float(maps.variance_map(act, 0.8, 1.3, 0.1))
+    for i in range(0, 200, 17):
+        one = float(maps.pair_expectation(act, np.array([c[i]]), 0.8)[0])
+        assert abs(got[i] - (1.3 * one + 0.1) / v) <= 1e-15
