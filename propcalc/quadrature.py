@@ -206,12 +206,7 @@ def _centred_nodes(n_levels: int, break_at_zero: bool,
     parts = [_uniform_edges(rule), _grading_offsets(rule, n_levels)]
     if break_at_zero:
         parts.append(np.zeros(1))
-    edges = np.unique(np.clip(np.concatenate(parts), -rule.z_max, rule.z_max))
-    a, b = edges[:-1], edges[1:]
-    t, wt = legendre_rule(rule.n_per_panel)
-    half = 0.5 * (b - a)
-    z = (half[:, None] * t + (0.5 * (a + b))[:, None]).ravel()
-    w = (half[:, None] * wt).ravel() * _INV_SQRT_2PI * np.exp(-0.5 * z * z)
+    z, w = _panel_nodes(parts, rule)
     z.setflags(write=False)
     w.setflags(write=False)
     return z, w
@@ -251,13 +246,20 @@ def _row_nodes(mean: float, q: float, breakpoints: Sequence[float], rule: Quadra
         parts.append((np.asarray(breakpoints, dtype=float) - mean) * inv)
     if extra is not None:
         parts.append(extra)
+    z, w = _panel_nodes(parts, rule)
+    return mean + sq * z, w
+
+
+def _panel_nodes(parts: list[Array], rule: QuadratureRule) -> tuple[Array, Array]:
+    """Standard-normal nodes and weights on the panels between the sorted distinct edges
+    in ``parts`` (clipped to +-z_max)."""
     edges = np.unique(np.clip(np.concatenate(parts), -rule.z_max, rule.z_max))
     a, b = edges[:-1], edges[1:]
     t, wt = legendre_rule(rule.n_per_panel)
     half = 0.5 * (b - a)
     z = (half[:, None] * t + (0.5 * (a + b))[:, None]).ravel()
     w = (half[:, None] * wt).ravel() * _INV_SQRT_2PI * np.exp(-0.5 * z * z)
-    return mean + sq * z, w
+    return z, w
 
 
 def rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float] = (),
