@@ -565,16 +565,18 @@ def _chaotic_fixed_point(act: Activation, sw: float, sb: float, q: float,
     The series (propcalc.hermite) needs only 1-D integrals; it is used with the
     default rule for activations at their own feature scale 1, and gives way to
     :func:`correlation_fixed_point` for c* near 1, large q or steep formulas.
+    A kinked activation with a closed-form smoothing takes only the series' first
+    pass, as the guess of :func:`correlation_fixed_point`: its coefficients decay
+    slowly, so an accepted series answer would be 10-100x less accurate than the
+    exact 1-D route, which from the guess needs one to three evaluations.
     """
-    # the series serves smooth activations (with a closed-form smoothing too: its guess then
-    # saves 1-D steps); for kinked ones it converges slowly and the 1-D steps go alone
-    smooth = not act.breakpoints or act.smoothing is None
-    if rule == DEFAULT_RULE and act.scale == 1.0 and not act.has_jumps and smooth:
-        for kmax, series_rule in SERIES_PASSES:  # 160 terms, then 640 (under 1 ms each)
+    kinked = bool(act.breakpoints) and act.smoothing is not None
+    if rule == DEFAULT_RULE and act.scale == 1.0 and not act.has_jumps:
+        for kmax, series_rule in SERIES_PASSES[:1] if kinked else SERIES_PASSES:
             c, s, ok, curv, curv_max = series_fixed_points(
                 act, np.array([sw]), np.array([sb]), np.array([q]), kmax, series_rule,
                 curvature=True)
-            if bool(ok[0]):
+            if bool(ok[0]) and not kinked:
                 return float(c[0]), float(s[0])
         # the series' c* (its tail bound not small enough) is still a close first guess
         return correlation_fixed_point(act, sw, sb, q, rule, guess=float(c[0]),

@@ -61,9 +61,9 @@ def hermite_coefficients(act: Activation, q: Array, kmax: int,
         z = x / np.sqrt(qs)[:, None]
         wf = w * f
         m2[sel] = np.einsum("ij,ij->i", wf, f)
-        if not act.breakpoints:
-            # no breakpoints: every row has the same z-nodes (the grading depends on the
-            # chunk's largest q only), so the Hermite values are one cached matrix
+        if all(bp == 0.0 for bp in act.breakpoints):
+            # no breakpoints but 0: every row has the same z-nodes (the grading depends on
+            # the chunk's largest q only), so the Hermite values are one cached matrix
             table = _hermite_table(kmax, rule, z[0])
             out = wf @ table.T
             b[sel] = out * out

@@ -163,3 +163,19 @@ def test_critical_point_at_unit_fixed_point(label):
         assert_matches(cp.chi_q, ref["chi_q"], rtol, f"{label} critical chi_q", floor=1.0)
     else:
         assert cp.sigma_b2 is None and float(ref["sigma_b2_needed"]) < 0
+
+
+@pytest.mark.parametrize("label", ["elu", "selu", "hard_tanh"])
+def test_kinked_chaotic_fixed_points_to_rounding(label):
+    # The kinked activations with a closed-form smoothing find c* from a Hermite-series guess
+    # polished by the exact 1-D route: c* and chi_c = C'(c*) (Schoenholz et al. 2017, eq. 9)
+    # against the mpmath table well inside its 1e-10 piecewise tolerance (measured: <= 2e-14)
+    entry = ENTRIES[label]
+    act = _activation(entry)
+    chaotic = [p for p in entry["points"] if p["phase"] == "chaotic" and p["c_star"] is not None]
+    assert chaotic
+    for point in chaotic:
+        p = propcalc.propagation(act, float(point["sigma_w2"]), float(point["sigma_b2"]))
+        name = f"{label} ({point['sigma_w2']}, {point['sigma_b2']})"
+        assert_matches(p.c_star, point["c_star"], 1e-13, f"{name} c*")
+        assert_matches(p.chi_c, point["chi_c"], 1e-13, f"{name} chi_c")
