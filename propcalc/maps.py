@@ -39,6 +39,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from collections.abc import Iterator
 from typing import Any
 
 import numpy as np
@@ -460,8 +461,9 @@ def _pair_by_series(act: Activation, ca: Array, q: float, rule: QuadratureRule) 
     The 160-term pass first, the 640-term pass if the first leaves more than
     SERIES_SPARE_POINTS points to the 2-D rule (or any, in a call of at most that
     many points). The coefficients are cached per (act, q), so a map evaluated
-    point by point at one q pays for them once. Mehler's formula ``sum_k a_k^2 c^k`` (see propcalc.hermite): every term is
-    >= 0 and they sum to E[phi^2], so after K terms the error at c is at most
+    point by point at one q pays for them once. Mehler's formula ``sum_k a_k^2 c^k``
+    (see propcalc.hermite): every term is >= 0 and they sum to E[phi^2], so after K
+    terms the error at c is at most
     ``|c|^(K+1) (E[phi^2] - sum_(k<=K) a_k^2)``. Points where that bound is not
     small enough (|c| near 1) are done by the 2-D rule.
     """
@@ -469,20 +471,17 @@ def _pair_by_series(act: Activation, ca: Array, q: float, rule: QuadratureRule) 
         x = float(ca)
         if x == 1.0:
             return second_moment(act, q, rule)  # as V(q): C(1) = 1 exactly
-        for kmax, series_rule in SERIES_PASSES:
-            b, m2 = coefficients_at(act, q, kmax, series_rule)
-            rest = m2 - float(b.sum())
-            if not (math.isfinite(rest) and rest >= -1e-12 * m2 and m2 > 0):
+        for one in _series_passes(act, q):
+            if one is None:
                 break
-            if abs(x) ** (kmax + 1) * (max(rest, 0.0) + 1e-13 * m2) <= 1e-14 * m2:
+            kmax, b, m2, defect = one
+            if abs(x) ** (kmax + 1) * defect <= 1e-14 * m2:
                 return np.float64(series_sum(b, ca)[0])
         return pair_expectation(act, ca, q, rule)
-    for kmax, series_rule in SERIES_PASSES:
-        b, m2 = coefficients_at(act, q, kmax, series_rule)
-        rest = m2 - float(b.sum())
-        if not (math.isfinite(rest) and rest >= -1e-12 * m2 and m2 > 0):
+    for one in _series_passes(act, q):
+        if one is None:
             return pair_expectation(act, ca, q, rule)
-        defect = max(rest, 0.0) + 1e-13 * m2  # plus the rounding of the coefficients
+        kmax, b, m2, defect = one
         with np.errstate(under="ignore"):
             bound = np.abs(ca) ** (kmax + 1) * defect
         good = bound <= 1e-14 * m2
@@ -497,6 +496,18 @@ def _pair_by_series(act: Activation, ca: Array, q: float, rule: QuadratureRule) 
     if np.any(~good):
         out[~good] = pair_expectation(act, ca[~good], q, rule)
     return out
+
+
+def _series_passes(act: Activation, q: float) -> Iterator[tuple[int, Array, float, float] | None]:
+    """(terms, coefficients, E[phi^2], tail mass) of each Hermite pass at q, in order; None (and
+    no further pass) when a pass's coefficients fail Parseval's check sum_k b_k <= E[phi^2]."""
+    for kmax, series_rule in SERIES_PASSES:
+        b, m2 = coefficients_at(act, q, kmax, series_rule)
+        rest = m2 - float(b.sum())
+        if not (math.isfinite(rest) and rest >= -1e-12 * m2 and m2 > 0):
+            yield None
+            return
+        yield kmax, b, m2, max(rest, 0.0) + 1e-13 * m2  # plus the rounding of the coefficients
 
 
 def correlation_map_and_slope(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
