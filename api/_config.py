@@ -46,7 +46,7 @@ PLAN_Q_INPUT_MIN = 1e-12
 PARAM_ABS_MAX = 1e6
 #: dropout and alpha-dropout keep rates lie in [KEEP_RATE_MIN, 1] (keep rate 1: no dropout).
 KEEP_RATE_MIN = 1e-3
-#: largest maxout rank (the engine's own bound, propcalc.maxout.MAX_RANK).
+#: largest maxout rank (the engine's own bound, propcalc.variants.maxout.MAX_RANK).
 MAXOUT_MAX_RANK = 1024
 #: |omega| (sum of a unit's incoming weights) of the mean-variance map is at most this ...
 OMEGA_ABS_MAX = 100.0
@@ -59,16 +59,16 @@ SMALL_VARIANCE_MIN = 1e-6
 ALPHA_PRIME_ABS_MAX = 1e3
 #: target normalised spectral variance of the isometry advice is at most this.
 SPECTRAL_VARIANCE_MAX = 1e6
-#: most softmax classes (the engine's own bound, propcalc.output_layer.MAX_CLASSES).
+#: most softmax classes (the engine's own bound, propcalc.variants.output_layer.MAX_CLASSES).
 MAX_CLASSES = 10**7
-#: largest logit variance (the engine's own bound, propcalc.output_layer.MAX_LOGIT_VARIANCE).
+#: largest logit variance (the engine's own bound, propcalc.variants.output_layer.MAX_LOGIT_VARIANCE).
 LOGIT_VARIANCE_MAX = 1e4
 #: allowed excess of the initial loss over ln K, in nats: [MARGIN_MIN, MARGIN_MAX].
 MARGIN_MIN = 1e-6
 MARGIN_MAX = 10.0
 #: most Monte Carlo draws of the largest class probability ...
 MAX_SAMPLES = 10**6
-#: ... and of draws times classes (the engine's own bound in propcalc.output_layer).
+#: ... and of draws times classes (the engine's own bound in propcalc.variants.output_layer).
 MC_MAX_ELEMENTS = 5 * 10**7
 #: largest seed of the seeded computations (simulation, Monte Carlo).
 SEED_MAX = 2**32 - 1
@@ -79,14 +79,14 @@ SIMULATION_MAX_REPETITIONS = 1000
 SIMULATION_MAX_PAIRS = 256
 #: ... and a deviation tolerance in [TOLERANCE_MIN, 1].
 TOLERANCE_MIN = 1e-6
-#: image formats of the /v1/plots endpoints (propcalc.plots.FORMATS) ...
+#: image formats of the /v1/plots endpoints (propcalc.output.plots.FORMATS) ...
 PLOT_FORMATS = ("png", "svg")
 #: ... and the resolution of PNG images, in [PLOT_DPI_MIN, PLOT_DPI_MAX] (default 100: the
 #: figures are 7.2 x 5.2 or 6.4 x 5.2 inches, so 720 x 520 pixels)
 PLOT_DPI_MIN = 50
 PLOT_DPI_MAX = 300
 PLOT_DPI_DEFAULT = 100
-#: points per axis of a phase diagram are at most this (propcalc.plots' own bound; also at
+#: points per axis of a phase diagram are at most this (propcalc.output.plots' own bound; also at
 #: most MAX_GRID_POINTS)
 PHASE_GRID_MAX = 2000
 #: the top of the depth-scales axis (xi_max) is at most this

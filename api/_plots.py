@@ -1,8 +1,8 @@
 """The image computations: validated requests in, PNG or SVG bytes out.
 
-No Flask here. Every figure is drawn by :mod:`propcalc.plots` (matplotlib's
+No Flask here. Every figure is drawn by :mod:`propcalc.output.plots` (matplotlib's
 ``Figure`` built directly, never pyplot, so no GUI backend and no global
-figure registry) and written by :func:`propcalc.plots.save_figure`, whose
+figure registry) and written by :func:`propcalc.output.plots.save_figure`, whose
 bytes are a function of the request: a fixed SVG hash salt, no date or
 software metadata, text drawn as paths. Each computation checks its
 estimated cost against the work budget (:mod:`propcalc_api._budget`) before
@@ -54,9 +54,9 @@ _RENDER_LOCK = threading.Lock()
 
 
 def plots_module() -> ModuleType:
-    """:mod:`propcalc.plots`, imported on first use (501 when matplotlib is missing)."""
+    """:mod:`propcalc.output.plots`, imported on first use (501 when matplotlib is missing)."""
     try:
-        return importlib.import_module("propcalc.plots")
+        return importlib.import_module("propcalc.output.plots")
     except ImportError:
         raise Problem(501, "this service cannot draw images: matplotlib (the 'plot' extra) is "
                       f"not installed where it runs; {PLOT_EXTRA}") from None

@@ -21,8 +21,8 @@ your own model before relying on them.
 
 from __future__ import annotations
 
-from .activations import Activation, ActivationProperties, builtin_names
-from .criticality import (
+from .activations.base import Activation, ActivationProperties, builtin_names
+from .meanfield.criticality import (
     CriticalPoint,
     FixedPoint,
     Propagation,
@@ -33,8 +33,8 @@ from .criticality import (
     propagation,
     variance_fixed_points,
 )
-from .dropout import DropoutPropagation, DropoutSweep, dropout_propagation, dropout_sweep
-from .maxout import (
+from .variants.dropout import DropoutPropagation, DropoutSweep, dropout_propagation, dropout_sweep
+from .variants.maxout import (
     MaxMoments,
     MaxoutLayer,
     MaxoutPropagation,
@@ -42,7 +42,7 @@ from .maxout import (
     maxout_layer,
     maxout_propagation,
 )
-from .output_layer import (
+from .variants.output_layer import (
     InitialLoss,
     MaxProbability,
     OutputLayerScale,
@@ -51,7 +51,7 @@ from .output_layer import (
     output_layer_for_plan,
     output_layer_scale,
 )
-from .selfnorm import (
+from .variants.selfnorm import (
     AlphaDropout,
     MeanVarianceFixedPoint,
     SelfNormalization,
@@ -60,8 +60,8 @@ from .selfnorm import (
     mean_variance_map,
     self_normalization,
 )
-from .simulate import LayerMeasurement, Simulation, mean_field_trajectory, simulate, simulate_plan
-from .spectrum import (
+from .meanfield.simulate import LayerMeasurement, Simulation, mean_field_trajectory, simulate, simulate_plan
+from .variants.spectrum import (
     IsometryAdvice,
     JacobianSpectrum,
     SampledSpectrum,
@@ -69,8 +69,8 @@ from .spectrum import (
     jacobian_spectrum,
     sample_jacobian_spectrum,
 )
-from .draw import LayerArrays, PlanArrays, draw_plan
-from .sweep import EdgeSweepResult, SweepResult, propagation_arrays, sweep, sweep_edge
+from .init.draw import LayerArrays, PlanArrays, draw_plan
+from .meanfield.sweep import EdgeSweepResult, SweepResult, propagation_arrays, sweep, sweep_edge
 from .errors import (
     ComputationError,
     FormulaError,
@@ -78,17 +78,17 @@ from .errors import (
     PropcalcError,
     UnknownActivationError,
 )
-from .formula import LIMITS as FORMULA_LIMITS, FormulaLimits, activation, formula_activation
+from .activations.formula import LIMITS as FORMULA_LIMITS, FormulaLimits, activation, formula_activation
 from .jsonable import jsonable
-from .maps import (
+from .meanfield.maps import (
     chi_1,
     correlation_map,
     correlation_map_slope,
     variance_map,
     variance_map_slope,
 )
-from .quadrature import QuadratureRule, bivariate_expectation, gaussian_expectation
-from .recommend import Gains, InitPlan, Layer, LayerInit, gains, recommend
+from .numerics.quadrature import QuadratureRule, bivariate_expectation, gaussian_expectation
+from .init.recommend import Gains, InitPlan, Layer, LayerInit, gains, recommend
 
 __version__ = "0.1.0"
 

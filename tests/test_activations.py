@@ -1,4 +1,4 @@
-"""Tests of the built-in activations (propcalc.activations, through the public ``activation``).
+"""Tests of the built-in activations (propcalc.activations.base, through the public ``activation``).
 
 References used here, each named beside its check:
 
@@ -32,7 +32,7 @@ from propcalc import (
     activation,
     builtin_names,
 )
-from propcalc.activations import SELU_ALPHA, SELU_SCALE
+from propcalc.activations.base import SELU_ALPHA, SELU_SCALE
 
 # ---------------------------------------------------------------------------------------------
 # mpmath references: the textbook definition of each built-in, written independently
@@ -152,7 +152,7 @@ def test_large_arguments_match_mpmath(case):
 @pytest.mark.parametrize("name", builtin_names())
 def test_any_finite_argument_evaluates_without_warnings(name):
     # "Every built-in evaluates without overflow warnings or NaN for |x| up to 1e4 and beyond"
-    # (module docstring of propcalc.activations): beyond includes every finite double.
+    # (module docstring of propcalc.activations.base): beyond includes every finite double.
     act = activation(name)
     x = np.array([-1e300, -1e200, -1e155, -1e103, 1e103, 1e155, 1e200, 1e300])
     with warnings.catch_warnings():
@@ -554,7 +554,7 @@ def test_exact_parity_is_bitwise():
     odd = {"linear", "tanh", "erf", "hard_tanh"}
     for name in propcalc.builtin_names():
         assert propcalc.activation(name).exact_parity == ("odd" if name in odd else None), name
-    from propcalc.formula import formula_activation
+    from propcalc.activations.formula import formula_activation
     assert formula_activation("x / (1 + abs(x))").exact_parity == "odd"
     assert formula_activation("x**2 - 3").exact_parity == "even"
     # odd to 1e-13 but not exactly: the tolerant profile says odd, the maps must not
@@ -566,7 +566,7 @@ def test_map_of_an_odd_activation_by_symmetry_matches_direct_points():
     # internal consistency (the closed-form checks of the odd erf over c in [-1, 1] are in
     # test_maps.py, Williams 1997): hard_tanh's vectorised map (half of it by symmetry) against
     # one-point pair expectations at negative c
-    from propcalc import maps
+    from propcalc.meanfield import maps
     act = propcalc.activation("hard_tanh")
     c = np.linspace(-1.0, 1.0, 401)
     got = maps.correlation_map(act, c, 1.3, 0.1, 0.8)

@@ -355,7 +355,7 @@ def test_a_computation_error_anywhere_exits_1(monkeypatch):
     def broken(*args, **kwargs):
         raise ComputationError("the quadrature did not converge (simulated)")
 
-    monkeypatch.setattr(cli, "propagation", broken)
+    monkeypatch.setattr(cli.command, "propagation", broken)
     code, out, err = run("report", "tanh", "-w", "1")
     assert (code, out) == (1, "")
     assert err == "propcalc: computation failed: the quadrature did not converge (simulated)\n"

@@ -5,7 +5,7 @@ pytest's ``tmp_path``. The figures themselves (their numbers, markers and determ
 tested in test_plots.py; here: the file exists in the format its extension names (the PNG
 signature of the PNG specification, ISO/IEC 15948:2004 section 5.2; SVG parses as XML in the
 SVG namespace), the same command gives the same bytes, the CLI hands the right arguments to
-propcalc.plots, errors are one line with exit status 2, and the help goes to the given stream.
+propcalc.output.plots, errors are one line with exit status 2, and the help goes to the given stream.
 Grids are small so that the whole module runs in a few seconds.
 """
 
@@ -21,7 +21,8 @@ import pytest
 pytest.importorskip("matplotlib")
 
 import propcalc  # noqa: E402
-from propcalc import cli, plots  # noqa: E402
+from propcalc import cli  # noqa: E402
+from propcalc.output import plots  # noqa: E402
 from cli_helpers import run  # noqa: E402
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948:2004), section 5.2
@@ -36,13 +37,13 @@ def svg_root(data: bytes) -> ET.Element:
 
 
 def has_user_marker(svg: bytes) -> bool:
-    """propcalc.plots gives the user's marker the gid USER_POINT_GID: an element id in SVG."""
+    """propcalc.output.plots gives the user's marker the gid USER_POINT_GID: an element id in SVG."""
     return any(el.get("id") == plots.USER_POINT_GID for el in svg_root(svg).iter())
 
 
 @pytest.fixture()
 def calls(monkeypatch):
-    """Record the keyword arguments the CLI hands to each propcalc.plots figure."""
+    """Record the keyword arguments the CLI hands to each propcalc.output.plots figure."""
     seen: dict[str, dict] = {}
     for name in ("plot_phase_diagram", "plot_variance_map", "plot_correlation_map",
                  "plot_depth_scales"):
@@ -240,12 +241,12 @@ def test_usage_errors_exit_2_with_one_line(tmp_path, argv, needle):
 
 
 def test_without_matplotlib_one_line_exit_2_before_any_work(tmp_path, monkeypatch):
-    monkeypatch.setitem(sys.modules, "propcalc.plots", None)  # importing it now fails
+    monkeypatch.setitem(sys.modules, "propcalc.output.plots", None)  # importing it now fails
 
     def no_work(*args, **kwargs):
         raise AssertionError("computed although the picture cannot be drawn")
 
-    monkeypatch.setattr(cli, "propagation", no_work)
+    monkeypatch.setattr(cli.command, "propagation", no_work)
     for argv in (["phase", "tanh"], ["report", "tanh", "-w", "1"], ["edge", "tanh"],
                  ["depth-scales", "tanh"]):
         code, out, err = run(*argv, "--plot", str(tmp_path / "x.png"))
@@ -255,7 +256,7 @@ def test_without_matplotlib_one_line_exit_2_before_any_work(tmp_path, monkeypatc
     assert list(tmp_path.iterdir()) == []
     # without --plot nothing needs matplotlib
     monkeypatch.undo()
-    monkeypatch.setitem(sys.modules, "propcalc.plots", None)
+    monkeypatch.setitem(sys.modules, "propcalc.output.plots", None)
     assert run("report", "tanh", "-w", "1")[0] == 0
 
 

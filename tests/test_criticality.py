@@ -1,4 +1,4 @@
-"""Tests of propcalc.criticality: fixed points, phases, depth scales, the edge of chaos.
+"""Tests of propcalc.meanfield.criticality: fixed points, phases, depth scales, the edge of chaos.
 
 References used below
 ---------------------
@@ -27,8 +27,9 @@ from numpy.testing import assert_allclose
 from scipy import integrate, optimize
 
 import propcalc
-from propcalc import Activation, criticality, maps
-from propcalc.quadrature import DEFAULT_RULE
+from propcalc import Activation
+from propcalc.meanfield import criticality, maps
+from propcalc.numerics.quadrature import DEFAULT_RULE
 
 A = propcalc.activation
 
@@ -384,7 +385,7 @@ def test_smooth_edge_approach_constant_to_printed_precision():
 
 @pytest.mark.parametrize("name,q", [("tanh", 1.0), ("erf", 1.0), ("gelu", 8.772172)])
 def test_smooth_edge_approach_against_iterating_the_map(name, q):
-    # iterate propcalc.maps.correlation_map at the edge for 400 layers from c_0 = 0; with
+    # iterate propcalc.meanfield.maps.correlation_map at the edge for 400 layers from c_0 = 0; with
     # eps_l ~ beta / l, 1 / (1/eps_{l+1} - 1/eps_l) -> beta, within ~2.6 / l of it (measured:
     # 0.64 % tanh, 0.45 % erf, 0.85 % gelu at l = 400)
     act, cp, p = _edge_report(name, q)
@@ -620,7 +621,7 @@ def test_series_curvature_and_its_bound_against_williams():
     # r = 2q / (1 + 2q), so C''(c) = sw (2/pi) r^3 c / (1 - r^2 c^2)^(3/2) / V. The series'
     # curvature (erf without its closed-form smoothing, so the series is what runs) must match
     # it and its bound must not be below the exact value a little to the right of c*.
-    from propcalc.hermite import SERIES_PASSES, series_fixed_points
+    from propcalc.numerics.hermite import SERIES_PASSES, series_fixed_points
     erf = A("erf")
     twin = Activation(name="erf", value_fn=erf.value_fn, derivative_fn=erf.derivative_fn,
                       declared_scale=1.0)
@@ -644,7 +645,7 @@ def test_series_curvature_and_its_bound_against_williams():
 def test_one_step_polish_reaches_the_cold_start_root(name, sw, sb):
     # internal consistency (no outside source): the series guess polished by one Newton step
     # under the curvature bound equals the bracketing solver from c = 0, to the stopping rule
-    from propcalc.hermite import SERIES_PASSES, series_fixed_points
+    from propcalc.numerics.hermite import SERIES_PASSES, series_fixed_points
     act = A(name)
     q = propcalc.propagation(act, sw, sb).q_star
     kmax, rule = SERIES_PASSES[-1]

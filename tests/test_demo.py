@@ -1,4 +1,4 @@
-"""Tests of the built-in demo scenario (propcalc.demo, ``propcalc demo``).
+"""Tests of the built-in demo scenario (propcalc.cli.demo, ``propcalc demo``).
 
 The scenario is invented (a fictional company, no data read). Its claims are checked against
 closed forms and the papers: tanh is critical at sigma_w2 = 1, sigma_b2 = 0 since tanh'(0) = 1
@@ -17,7 +17,8 @@ import re
 
 import pytest
 
-from propcalc import cli, demo, jsonable
+from propcalc import cli, jsonable
+from propcalc.cli import demo
 
 
 @pytest.fixture(scope="module")

@@ -1,4 +1,4 @@
-"""Tests of propcalc.draw: arrays drawn from an initialisation plan.
+"""Tests of propcalc.init.draw: arrays drawn from an initialisation plan.
 
 Sampling tolerances. For n independent draws w_i with mean 0, variance s^2
 and kurtosis k, the mean square m = mean(w_i^2) has mean s^2 and variance
@@ -21,7 +21,7 @@ from scipy import stats
 
 import propcalc
 from propcalc import InvalidParameterError, Layer, recommend
-from propcalc.draw import (
+from propcalc.init.draw import (
     BIAS_DISTRIBUTIONS,
     PlanArrays,
     draw_layer,
@@ -29,7 +29,7 @@ from propcalc.draw import (
     semi_orthogonal,
     truncated_normal,
 )
-from propcalc.recommend import TRUNCATION, truncated_normal_factor
+from propcalc.init.recommend import TRUNCATION, truncated_normal_factor
 
 TANH = propcalc.activation("tanh")
 LAYERS = [Layer.dense(200, 500), Layer.dense(500, 300), Layer.conv(16, 32, (3, 3)),

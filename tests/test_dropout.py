@@ -1,4 +1,4 @@
-"""Tests of propcalc.dropout: closed forms (arc-cosine kernel), limits and seeded networks."""
+"""Tests of propcalc.variants.dropout: closed forms (arc-cosine kernel), limits and seeded networks."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ from numpy.testing import assert_allclose
 from scipy import optimize
 
 import propcalc
-from propcalc.dropout import (
+from propcalc.variants.dropout import (
     dropout_propagation,
     dropout_sweep,
     relu_dropout_correlation_map,
@@ -88,7 +88,7 @@ def test_diagonal_map_uses_sigma_w2_over_rho():
     assert_allclose(float(propcalc.variance_map(tanh, rep.q_star, 1.2 / 0.75, 0.1)), rep.q_star,
                     rtol=1e-12)
     # off-diagonal unchanged: C(c*) = (sigma_w2 E[phi phi] + sigma_b2) / q* = c*
-    from propcalc.maps import pair_expectation
+    from propcalc.meanfield.maps import pair_expectation
     c_map = (1.2 * float(pair_expectation(tanh, rep.c_star, rep.q_star)) + 0.1) / rep.q_star
     assert_allclose(c_map, rep.c_star, atol=1e-12)
 
@@ -113,7 +113,7 @@ def test_seeded_network_with_dropout_follows_the_maps():
     pre-activations stays at q*(rho), and the correlation of one input under two
     independent masks follows C(c) = (sigma_w2 E[phi phi] + sigma_b2) / q* from
     c = 1 down towards c* (Schoenholz et al. 2017)."""
-    from propcalc.maps import pair_expectation
+    from propcalc.meanfield.maps import pair_expectation
     tanh = propcalc.activation("tanh")
     sw, sb, rho = 1.5, 0.05, 0.8
     rep = dropout_propagation(tanh, sw, sb, rho)

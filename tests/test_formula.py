@@ -24,7 +24,7 @@ from numpy.testing import assert_allclose
 from scipy import integrate
 
 import propcalc
-from propcalc import formula as formula_module
+from propcalc.activations import formula as formula_module
 from propcalc.errors import FormulaError
 
 mp.mp.dps = 30
@@ -540,14 +540,14 @@ def test_relu_formula_against_closed_forms() -> None:
 @pytest.mark.parametrize("text, moment", [("x**2", 3.0), ("x**3", 15.0)])
 def test_polynomial_second_moments(text: str, moment: float) -> None:
     # Abramowitz & Stegun 1964, 26.2.1 (from memory): E[z^4] = 3, E[z^6] = 15
-    from propcalc.maps import second_moment
+    from propcalc.meanfield.maps import second_moment
 
     assert float(second_moment(propcalc.activation(text), 1.0)) == pytest.approx(moment, rel=1e-13)
 
 
 def test_second_moment_against_scipy_quad() -> None:
     # reference: scipy.integrate.quad of phi(z)^2 times the standard normal density
-    from propcalc.maps import second_moment
+    from propcalc.meanfield.maps import second_moment
 
     act = propcalc.activation("x * sigmoid(beta * x) + 0.1 * sin(x)", beta=1.7)
 

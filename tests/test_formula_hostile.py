@@ -323,7 +323,7 @@ def test_non_string_specs_and_bare_unknown_names() -> None:
         propcalc.activation(b"x")  # type: ignore[arg-type]
     with pytest.raises(UnknownActivationError, match=r"unknown activation 'tanhh' \(did you mean tanh\?\)"):
         propcalc.activation("tanhh")
-    from propcalc.formula import formula_activation
+    from propcalc.activations.formula import formula_activation
 
     with pytest.raises(FormulaError, match="a formula must be a string, got int"):
         formula_activation(3)  # type: ignore[arg-type]

@@ -1,4 +1,4 @@
-"""Tests of propcalc.maps against closed forms from the literature and exact properties.
+"""Tests of propcalc.meanfield.maps against closed forms from the literature and exact properties.
 
 References used below
 ---------------------
@@ -26,8 +26,9 @@ import pytest
 from numpy.testing import assert_allclose
 
 import propcalc
-from propcalc import Activation, maps
-from propcalc.quadrature import bivariate_expectation
+from propcalc import Activation
+from propcalc.meanfield import maps
+from propcalc.numerics.quadrature import bivariate_expectation
 
 A = propcalc.activation
 
@@ -190,7 +191,7 @@ def test_series_route_point_by_point_is_williams(q):
         assert abs(float(got) - float(williams(c, q, q)) / v) <= ATOL, c
     assert float(maps.correlation_map(twin, 1.0, 2.0, 0.3, q)) == 1.0
     # the cache: a second pass at this q reuses the same coefficient arrays
-    from propcalc.hermite import SERIES_PASSES, coefficients_at
+    from propcalc.numerics.hermite import SERIES_PASSES, coefficients_at
     kmax, rule = SERIES_PASSES[0]
     assert coefficients_at(twin, q, kmax, rule)[0] is coefficients_at(twin, q, kmax, rule)[0]
 

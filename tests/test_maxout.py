@@ -1,4 +1,4 @@
-"""Tests of propcalc.maxout against closed forms, published values and seeded sampling."""
+"""Tests of propcalc.variants.maxout against closed forms, published values and seeded sampling."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ from numpy.testing import assert_allclose
 from scipy import integrate, special, stats
 
 import propcalc
-from propcalc.maxout import (
+from propcalc.variants.maxout import (
     bivariate_normal_cdf,
     max_moments,
     maxout_correlation_map,
@@ -26,7 +26,7 @@ from propcalc.maxout import (
 def _k2_closed(c):
     # k = 2: max = (a1 + a2)/2 + |a1 - a2|/2 with independent sums and differences;
     # E|z1||z2| = (2/pi)(sqrt(1 - c^2) + c arcsin c) for a standard pair (closed form,
-    # derived in the propcalc.maxout docstring)
+    # derived in the propcalc.variants.maxout docstring)
     c = np.asarray(c, dtype=float)
     return (c + (2.0 / math.pi) * (np.sqrt(1.0 - c * c) + c * np.arcsin(c))) / 2.0
 

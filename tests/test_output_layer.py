@@ -1,4 +1,4 @@
-"""Tests of propcalc.output_layer against 1-D quadrature, mpmath, an expansion and sampling."""
+"""Tests of propcalc.variants.output_layer against 1-D quadrature, mpmath, an expansion and sampling."""
 
 from __future__ import annotations
 
@@ -12,7 +12,7 @@ from numpy.testing import assert_allclose
 from scipy import integrate, special, stats
 
 import propcalc
-from propcalc.output_layer import (
+from propcalc.variants.output_layer import (
     expected_initial_loss,
     initial_loss,
     max_class_probability,
@@ -72,8 +72,8 @@ def test_loss_starts_at_log_k_and_increases():
 
 def test_large_variance_approaches_the_expected_maximum():
     # for large s2 the log-sum-exp is dominated by the largest logit:
-    # E[loss] ~ sqrt(s2) E[max of K normals] (property; E[max] from propcalc.maxout)
-    from propcalc.maxout import max_moments
+    # E[loss] ~ sqrt(s2) E[max of K normals] (property; E[max] from propcalc.variants.maxout)
+    from propcalc.variants.maxout import max_moments
     s2 = 1e4
     val = expected_initial_loss(10, s2)
     assert abs(val / (math.sqrt(s2) * max_moments(10).mean) - 1) < 0.01

@@ -1,4 +1,4 @@
-"""Tests of propcalc.plots: every figure renders, deterministically, with the user's marker.
+"""Tests of propcalc.output.plots: every figure renders, deterministically, with the user's marker.
 
 Warnings are errors (pytest configuration and the explicit filter below), so
 "no warnings" is part of every rendering check. Grids are kept small: the
@@ -22,7 +22,7 @@ from matplotlib.lines import Line2D  # noqa: E402
 
 import propcalc  # noqa: E402
 from propcalc import InvalidParameterError  # noqa: E402
-from propcalc.plots import (  # noqa: E402
+from propcalc.output.plots import (  # noqa: E402
     USER_POINT_GID,
     plot_correlation_map,
     plot_depth_scales,
@@ -30,7 +30,7 @@ from propcalc.plots import (  # noqa: E402
     plot_variance_map,
     save_figure,
 )
-from propcalc.sweep import sweep  # noqa: E402
+from propcalc.meanfield.sweep import sweep  # noqa: E402
 
 TANH = propcalc.activation("tanh")
 SMALL = dict(n_grid=(9, 7))
@@ -171,7 +171,7 @@ def test_bad_points_and_ranges():
 
 def test_no_pyplot_state_is_used():
     # figures are built with matplotlib.figure.Figure directly: pyplot is never imported
-    code = ("import sys, propcalc; from propcalc.plots import plot_variance_map, save_figure; "
+    code = ("import sys, propcalc; from propcalc.output.plots import plot_variance_map, save_figure; "
             "save_figure(plot_variance_map(propcalc.activation('tanh'), (1.5, 0.05)), None, 'png');"
             "assert 'matplotlib.pyplot' not in sys.modules")
     subprocess.run([sys.executable, "-c", code], check=True, timeout=120)

@@ -1,4 +1,4 @@
-"""Tests of propcalc.quadrature: the 1-D and 2-D Gaussian expectation rules.
+"""Tests of propcalc.numerics.quadrature: the 1-D and 2-D Gaussian expectation rules.
 
 References used below
 ---------------------
@@ -25,7 +25,7 @@ from scipy import integrate
 
 import propcalc
 from propcalc import ComputationError
-from propcalc.quadrature import (
+from propcalc.numerics.quadrature import (
     QuadratureRule,
     bivariate_expectation,
     gaussian_expectation,
@@ -260,10 +260,10 @@ def test_piecewise_against_mpmath(name, q):
     defs = {
         "relu": (lambda x: max(x, 0), lambda x: 1 if x > 0 else 0),
         "hard_tanh": (lambda x: max(-1, min(1, x)), lambda x: 1 if abs(x) < 1 else 0),
-        "selu": (lambda x: propcalc.activations.SELU_SCALE
-                 * (x if x > 0 else propcalc.activations.SELU_ALPHA * mpmath.expm1(x)),
-                 lambda x: propcalc.activations.SELU_SCALE
-                 * (1 if x > 0 else propcalc.activations.SELU_ALPHA * mpmath.exp(x))),
+        "selu": (lambda x: propcalc.activations.base.SELU_SCALE
+                 * (x if x > 0 else propcalc.activations.base.SELU_ALPHA * mpmath.expm1(x)),
+                 lambda x: propcalc.activations.base.SELU_SCALE
+                 * (1 if x > 0 else propcalc.activations.base.SELU_ALPHA * mpmath.exp(x))),
         "leaky_relu": (lambda x: x if x > 0 else 0.01 * x, lambda x: 1 if x > 0 else 0.01),
         "step": (lambda x: 1 if x >= 0 else 0, lambda x: 0),
     }
@@ -411,7 +411,7 @@ def test_node_shortcuts_match_the_general_builder():
     # builder, up to panels of zero width (weight-0 nodes) and rounding: compared through
     # two integrands with a kink at 0 (a consistency check between builders; the accuracy
     # of the rule itself is checked against closed forms and mpmath above).
-    from propcalc import quadrature as quad
+    from propcalc.numerics import quadrature as quad
 
     rng = np.random.default_rng(7)
     funcs = [lambda x: np.abs(x) ** 3, lambda x: np.maximum(x, 0.0) * np.exp(np.minimum(x, 5.0))]

@@ -1,4 +1,4 @@
-"""Tests of gains and initialisation plans (propcalc.recommend).
+"""Tests of gains and initialisation plans (propcalc.init.recommend).
 
 References, each named beside its check:
 
@@ -37,7 +37,7 @@ from propcalc import (
     propagation,
     recommend,
 )
-from propcalc.recommend import COMMON_GAINS, TRUNCATION, truncated_normal_factor
+from propcalc.init.recommend import COMMON_GAINS, TRUNCATION, truncated_normal_factor
 
 
 @pytest.fixture(autouse=True, scope="module")

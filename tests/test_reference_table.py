@@ -28,7 +28,7 @@ from pathlib import Path
 import pytest
 
 import propcalc
-from propcalc import maps
+from propcalc.meanfield import maps
 
 TABLE_PATH = Path(__file__).parent / "reference" / "table.json"
 TABLE = json.loads(TABLE_PATH.read_text(encoding="utf-8"))

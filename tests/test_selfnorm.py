@@ -1,4 +1,4 @@
-"""Tests of propcalc.selfnorm against Klambauer et al. 2017, mpmath and seeded sampling."""
+"""Tests of propcalc.variants.selfnorm against Klambauer et al. 2017, mpmath and seeded sampling."""
 
 from __future__ import annotations
 
@@ -11,8 +11,8 @@ import pytest
 from numpy.testing import assert_allclose
 
 import propcalc
-from propcalc.activations import SELU_ALPHA, SELU_SCALE
-from propcalc.selfnorm import (
+from propcalc.activations.base import SELU_ALPHA, SELU_SCALE
+from propcalc.variants.selfnorm import (
     ALPHA_PRIME_SELU,
     alpha_dropout,
     mean_variance_jacobian,

@@ -1,4 +1,4 @@
-"""Tests of propcalc.simulate: mean-field predictions against seeded finite-width networks."""
+"""Tests of propcalc.meanfield.simulate: mean-field predictions against seeded finite-width networks."""
 
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ import pytest
 from numpy.testing import assert_allclose
 
 import propcalc
-from propcalc.simulate import mean_field_trajectory, simulate, simulate_plan
+from propcalc.meanfield.simulate import mean_field_trajectory, simulate, simulate_plan
 
 
 @pytest.mark.parametrize("name", ["tanh", "relu", "gelu"])
@@ -120,7 +120,7 @@ def test_regenerating_weights_gives_the_same_networks(monkeypatch):
     # large networks regenerate W_l in the backward pass from the same seed streams
     import sys
 
-    sim_mod = sys.modules["propcalc.simulate"]  # the package exports the function under this name
+    sim_mod = sys.modules["propcalc.meanfield.simulate"]  # the package exports the function under this name
     tanh = propcalc.activation("tanh")
     kw = dict(width=30, depth=4, repetitions=2, seed=5)
     stored = simulate(tanh, 1.4, 0.1, **kw).to_dict()

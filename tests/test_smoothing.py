@@ -22,8 +22,8 @@ from numpy.testing import assert_allclose
 from scipy import integrate
 
 import propcalc
-from propcalc import maps
-from propcalc.quadrature import QuadratureRule, bivariate_expectation, conditional_pair_expectation
+from propcalc.meanfield import maps
+from propcalc.numerics.quadrature import QuadratureRule, bivariate_expectation, conditional_pair_expectation
 
 A = propcalc.activation
 

@@ -1,4 +1,4 @@
-"""Tests of propcalc.sweep: grids of propagation quantities, tables, executors.
+"""Tests of propcalc.meanfield.sweep: grids of propagation quantities, tables, executors.
 
 The reference is propcalc.propagation itself, point by point (the engine,
 whose numbers are checked against papers and mpmath in its own tests).
@@ -26,7 +26,7 @@ import pytest
 
 import propcalc
 from propcalc import Activation, InvalidParameterError
-from propcalc.sweep import (
+from propcalc.meanfield.sweep import (
     QUANTITIES,
     EdgeSweepResult,
     SweepResult,
@@ -324,7 +324,7 @@ def test_step_closed_form_including_a_root_on_a_round_number():
 def test_hermite_series_agrees_with_the_2d_integrals(name):
     # Mehler's formula E[phi(u1) phi(u2)] = sum_k a_k^2 c^k (Daniely, Frostig & Singer 2016,
     # section 6) against the engine's 2-D quadrature at the chaotic fixed point c*
-    from propcalc.hermite import SERIES_PASSES as _SERIES_PASSES, series_fixed_points as _series_fixed_points
+    from propcalc.numerics.hermite import SERIES_PASSES as _SERIES_PASSES, series_fixed_points as _series_fixed_points
 
     act = propcalc.activation(name)
     pts = []

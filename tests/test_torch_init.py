@@ -1,4 +1,4 @@
-"""Tests of propcalc.torch_init: applying a plan to a PyTorch module.
+"""Tests of propcalc.init.torch_adapter: applying a plan to a PyTorch module.
 
 Skipped cleanly where torch is absent (pytest.importorskip), except the check
 that importing the module never needs torch.
@@ -33,14 +33,14 @@ import pytest
 
 import propcalc
 from propcalc import Layer
-from propcalc.maps import variance_map, variance_map_slope
+from propcalc.meanfield.maps import variance_map, variance_map_slope
 
 TANH = propcalc.activation("tanh")
 
 
 def test_module_imports_without_torch():
     code = ("import sys; sys.modules['torch'] = None\n"
-            "import propcalc.torch_init as t\n"
+            "import propcalc.init.torch_adapter as t\n"
             "assert 'torch' not in [m for m in sys.modules if sys.modules[m] is not None]\n"
             "plan = __import__('propcalc').recommend(__import__('propcalc').activation('tanh'), "
             "depth=2)\n"
@@ -63,7 +63,7 @@ def _mlp(torch, widths, act=None, dtype=None, bias=True):
     ("normal", 3.0), ("uniform", 9.0 / 5.0), ("orthogonal", None)])
 def test_applied_weights_have_the_planned_std(distribution, kurtosis):
     torch = pytest.importorskip("torch")
-    from propcalc.torch_init import apply_plan, module_layers
+    from propcalc.init.torch_adapter import apply_plan, module_layers
 
     net = torch.nn.Sequential(torch.nn.Conv2d(3, 16, 3), torch.nn.Tanh(),
                               torch.nn.Conv2d(16, 32, (3, 5)), torch.nn.Tanh(),
@@ -95,8 +95,8 @@ def test_applied_weights_have_the_planned_std(distribution, kurtosis):
 
 def test_seeded_application_is_reproducible():
     torch = pytest.importorskip("torch")
-    from propcalc.draw import draw_plan
-    from propcalc.torch_init import apply_plan
+    from propcalc.init.draw import draw_plan
+    from propcalc.init.torch_adapter import apply_plan
 
     a, b = _mlp(torch, [20, 30, 5]), _mlp(torch, [20, 30, 5])
     plan = propcalc.recommend(TANH, widths=[20, 30, 5])
@@ -111,7 +111,7 @@ def test_seeded_application_is_reproducible():
 
 def test_forward_pass_follows_the_predicted_variances():
     torch = pytest.importorskip("torch")
-    from propcalc.torch_init import apply_plan, module_layers
+    from propcalc.init.torch_adapter import apply_plan, module_layers
 
     width, depth, batch, repeats = 512, 20, 64, 8
     net = _mlp(torch, [width] * (depth + 1), dtype=torch.float64)
@@ -147,7 +147,7 @@ def test_forward_pass_follows_the_predicted_variances():
 
 def test_depth_only_plan_takes_the_module_shapes():
     torch = pytest.importorskip("torch")
-    from propcalc.torch_init import apply_plan
+    from propcalc.init.torch_adapter import apply_plan
 
     net = _mlp(torch, [40, 60, 60, 3])
     plan = propcalc.recommend(TANH, depth=3)
@@ -158,7 +158,7 @@ def test_depth_only_plan_takes_the_module_shapes():
 
 def test_mismatches_name_the_layer_and_both_shapes():
     torch = pytest.importorskip("torch")
-    from propcalc.torch_init import PlanMismatchError, apply_plan
+    from propcalc.init.torch_adapter import PlanMismatchError, apply_plan
 
     net = _mlp(torch, [20, 30, 5])
     before = [p.detach().clone() for p in net.parameters()]
@@ -187,7 +187,7 @@ def test_mismatches_name_the_layer_and_both_shapes():
 
 def test_grouped_and_3d_convolutions():
     torch = pytest.importorskip("torch")
-    from propcalc.torch_init import apply_plan, module_layers
+    from propcalc.init.torch_adapter import apply_plan, module_layers
 
     net = torch.nn.Sequential(torch.nn.Conv3d(2, 4, 3), torch.nn.Conv2d(8, 16, 3, groups=4))
     layers = module_layers(net)

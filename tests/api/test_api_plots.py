@@ -1,7 +1,7 @@
 """The image endpoints (/v1/plots/...): formats, negotiation, errors, budget, ETags, determinism.
 
-The figures themselves are propcalc.plots' (tested in tests/test_plots.py); here the service
-must hand them over faithfully: the body is the PNG or SVG that ``propcalc.plots.save_figure``
+The figures themselves are propcalc.output.plots' (tested in tests/test_plots.py); here the service
+must hand them over faithfully: the body is the PNG or SVG that ``propcalc.output.plots.save_figure``
 writes for the same call, chosen by ``format`` or the Accept header (RFC 9110, section 12.5.1),
 406 when neither image type is acceptable (RFC 9110, section 15.5.7), strong ETags with 304 on
 GET (RFC 9110, section 13.1.2), problem details (RFC 9457) for every error, the work budget
@@ -23,7 +23,7 @@ import requests
 pytest.importorskip("matplotlib")
 
 import propcalc  # noqa: E402
-from propcalc import plots  # noqa: E402
+from propcalc.output import plots  # noqa: E402
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 SVG_NAMESPACE = "{http://www.w3.org/2000/svg}"
@@ -323,7 +323,7 @@ def test_image_cache_is_bounded_in_bytes(make_client):
 
 
 def test_501_without_matplotlib(make_client, monkeypatch):
-    monkeypatch.setitem(sys.modules, "propcalc.plots", None)  # importing it now fails
+    monkeypatch.setitem(sys.modules, "propcalc.output.plots", None)  # importing it now fails
     c = make_client()
     body = problem(c.post(PHASE, json=SMALL_PHASE), 501)
     assert 'pip install "propcalc[plot]"' in body["detail"]

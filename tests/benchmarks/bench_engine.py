@@ -20,7 +20,7 @@ A. One point of the correlation map, C(c) = E[phi(u1) phi(u2)] / E[phi(u1)^2] at
      * numpy Monte Carlo with 1e6 seeded samples;
      * a plain tensor Gauss-Hermite rule without splitting at breakpoints, with as many
        phi evaluations as propcalc's isolated call and with 16 times as many.
-   relu and gelu carry a closed-form Gaussian smoothing (propcalc.smoothing), so propcalc
+   relu and gelu carry a closed-form Gaussian smoothing (propcalc.numerics.smoothing), so propcalc
    computes their pair expectation as a 1-D integral; tanh has none: it takes the Hermite
    series where the series' tail bound allows (all three c here), whose coefficients (1-D
    integrals) propcalc caches per (activation, q). So tanh's isolated call is timed twice:
@@ -65,9 +65,11 @@ from mpmath.calculus.quadrature import GaussLegendre
 from scipy import integrate, optimize, special
 
 import propcalc
-from propcalc import Activation, hermite, maps as pc_maps, quadrature
-from propcalc.criticality import edge_of_chaos_line_arrays
-from propcalc.smoothing import Smoothing
+from propcalc import Activation
+from propcalc.meanfield import maps as pc_maps
+from propcalc.numerics import hermite, quadrature
+from propcalc.meanfield.criticality import edge_of_chaos_line_arrays
+from propcalc.numerics.smoothing import Smoothing
 
 # ---------------------------------------------------------------------------------------------
 # targets (from the project brief)

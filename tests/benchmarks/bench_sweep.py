@@ -3,7 +3,7 @@
     python tests/benchmarks/bench_sweep.py            # 200 x 200 tanh grid (several minutes)
     python tests/benchmarks/bench_sweep.py --grid 60  # a quick look
 
-1. serial:     propcalc.sweep.sweep(...) in this process (vectorised fixed points,
+1. serial:     propcalc.meanfield.sweep.sweep(...) in this process (vectorised fixed points,
                Hermite-series c*);
 2. processes:  the same with a ProcessPoolExecutor of --workers workers (default 2);
 3. loop:       the loop a user would write by hand, propcalc.propagation at every
@@ -33,9 +33,9 @@ import numpy as np  # noqa: E402
 import propcalc  # noqa: E402
 import importlib  # noqa: E402
 
-# the module, not the function propcalc.sweep that the package exports under the same name
-sweep_module = importlib.import_module("propcalc.sweep")
-from propcalc.sweep import QUANTITIES, sweep  # noqa: E402
+# the module, not the function propcalc.meanfield.sweep that the package exports under the same name
+sweep_module = importlib.import_module("propcalc.meanfield.sweep")
+from propcalc.meanfield.sweep import QUANTITIES, sweep  # noqa: E402
 
 
 def main() -> None:

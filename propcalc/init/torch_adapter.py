@@ -19,7 +19,7 @@ from __future__ import annotations
 from typing import Any
 
 from .draw import SeedLike, draw_plan
-from .errors import PropcalcError
+from ..errors import PropcalcError
 from .recommend import InitPlan, Layer
 
 __all__ = ["PlanMismatchError", "module_layers", "apply_plan", "TORCH_INSTALL_HINT"]

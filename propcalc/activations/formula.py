@@ -44,15 +44,15 @@ from typing import Any
 import numpy as np
 from scipy import optimize, special
 
-from .activations import (
+from .base import (
     SELU_ALPHA,
     SELU_SCALE,
     Activation,
     builtin_activation,
     builtin_names,
 )
-from .errors import FormulaError, UnknownActivationError, check_finite
-from .smoothing import Piece, Smoothing, Term, piecewise_smoothing
+from ..errors import FormulaError, UnknownActivationError, check_finite
+from ..numerics.smoothing import Piece, Smoothing, Term, piecewise_smoothing
 
 __all__ = [
     "activation",

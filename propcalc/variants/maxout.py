@@ -94,9 +94,9 @@ from typing import Any
 import numpy as np
 from scipy import special
 
-from .criticality import TRAINABLE_DEPTH_FACTOR, depth_scale, gradient_growth
-from .errors import InvalidParameterError, check_int, check_nonnegative, check_positive
-from .quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation, legendre_rule
+from ..meanfield.criticality import TRAINABLE_DEPTH_FACTOR, depth_scale, gradient_growth
+from ..errors import InvalidParameterError, check_int, check_nonnegative, check_positive
+from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation, legendre_rule
 
 __all__ = [
     "MAX_RANK",

@@ -57,17 +57,17 @@ from typing import Any
 import numpy as np
 from scipy import optimize
 
-from .activations import Activation
-from .criticality import edge_of_chaos
-from .errors import (
+from ..activations.base import Activation
+from ..meanfield.criticality import edge_of_chaos
+from ..errors import (
     ComputationError,
     InvalidParameterError,
     check_int,
     check_nonnegative,
     check_positive,
 )
-from .maps import derivative_second_moment
-from .quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation
+from ..meanfield.maps import derivative_second_moment
+from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation
 
 __all__ = [
     "DEFAULT_MAX_VARIANCE",

@@ -46,8 +46,8 @@ from typing import Any
 
 import numpy as np
 
-from .activations import Activation
-from .errors import (
+from ..activations.base import Activation
+from ..errors import (
     ComputationError,
     InvalidParameterError,
     check_finite,
@@ -57,7 +57,7 @@ from .errors import (
 )
 from .maps import chi_1 as chi_1_map
 from .maps import correlation_map, variance_map
-from .quadrature import DEFAULT_RULE, QuadratureRule
+from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 
 __all__ = [
     "MAX_SIMULATION_WORK",

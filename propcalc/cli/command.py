@@ -65,7 +65,7 @@ from collections.abc import Sequence
 from types import ModuleType
 from typing import Any, NoReturn, TextIO
 
-from . import (
+from .. import (
     ComputationError,
     Layer,
     PropcalcError,
@@ -309,7 +309,7 @@ def _plot_target(path: str) -> tuple[str, str]:
 def _plots_module() -> ModuleType:
     """:mod:`propcalc.plots`, or a usage error when matplotlib (the plot extra) is missing."""
     try:
-        return importlib.import_module("propcalc.plots")
+        return importlib.import_module("propcalc.output.plots")
     except ImportError:
         raise UsageError('--plot needs matplotlib, which is not installed: '
                          'pip install "propcalc[plot]"') from None

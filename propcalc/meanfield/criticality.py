@@ -28,15 +28,15 @@ from typing import Any
 import numpy as np
 from scipy import optimize
 
-from .activations import Activation
-from .errors import (
+from ..activations.base import Activation
+from ..errors import (
     ComputationError,
     InvalidParameterError,
     check_int,
     check_nonnegative,
     check_positive,
 )
-from .formula import activation
+from ..activations.formula import activation
 from .maps import (
     chi_1 as chi_1_map,
     correlation_map_and_slope,
@@ -48,8 +48,8 @@ from .maps import (
     variance_map,
     variance_map_slope,
 )
-from .hermite import SERIES_PASSES, series_fixed_points
-from .quadrature import DEFAULT_RULE, QuadratureRule
+from ..numerics.hermite import SERIES_PASSES, series_fixed_points
+from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 
 __all__ = [
     "EDGE_TOLERANCE",

@@ -52,16 +52,16 @@ from typing import Any
 import numpy as np
 from scipy import optimize, special
 
-from .activations import Activation
-from .errors import (
+from ..activations.base import Activation
+from ..errors import (
     ComputationError,
     InvalidParameterError,
     check_int,
     check_nonnegative,
     check_positive,
 )
-from .maps import second_moment
-from .quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation, legendre_rule
+from ..meanfield.maps import second_moment
+from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation, legendre_rule
 
 __all__ = [
     "MAX_CLASSES",

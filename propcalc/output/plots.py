@@ -41,19 +41,19 @@ try:
 except ImportError as exc:  # pragma: no cover - exercised only without the extra
     raise ImportError("propcalc.plots needs matplotlib: pip install 'propcalc[plot]'") from exc
 
-from .activations import Activation
-from .criticality import (
+from ..activations.base import Activation
+from ..meanfield.criticality import (
     CriticalPoint,
     Propagation,
     edge_of_chaos_at_bias,
     edge_of_chaos_line_arrays,
     propagation,
 )
-from .errors import InvalidParameterError, check_int, check_nonnegative, check_positive
-from .maps import correlation_map, variance_map
-from .quadrature import DEFAULT_RULE, QuadratureRule
-from .recommend import InitPlan
-from .sweep import SweepResult, sweep
+from ..errors import InvalidParameterError, check_int, check_nonnegative, check_positive
+from ..meanfield.maps import correlation_map, variance_map
+from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
+from ..init.recommend import InitPlan
+from ..meanfield.sweep import SweepResult, sweep
 
 __all__ = [
     "FORMATS",

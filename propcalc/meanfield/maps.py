@@ -44,10 +44,10 @@ from typing import Any
 
 import numpy as np
 
-from .activations import Activation
-from .errors import InvalidParameterError, check_nonnegative, check_positive
-from .hermite import SERIES_PASSES, coefficients_at, series_sum
-from .quadrature import (DEFAULT_RULE, QuadratureRule, bivariate_expectation,
+from ..activations.base import Activation
+from ..errors import InvalidParameterError, check_nonnegative, check_positive
+from ..numerics.hermite import SERIES_PASSES, coefficients_at, series_sum
+from ..numerics.quadrature import (DEFAULT_RULE, QuadratureRule, bivariate_expectation,
                          conditional_pair_expectation, gaussian_expectation, legendre_rule)
 
 __all__ = [

@@ -18,8 +18,8 @@ from typing import Any
 import numpy as np
 from scipy import special
 
-from .activations import Activation
-from .criticality import (
+from ..activations.base import Activation
+from ..meanfield.criticality import (
     CriticalPoint,
     Propagation,
     edge_of_chaos,
@@ -27,16 +27,16 @@ from .criticality import (
     edge_of_chaos_line_arrays,
     propagation,
 )
-from .errors import (
+from ..errors import (
     ComputationError,
     InvalidParameterError,
     check_int,
     check_nonnegative,
     check_positive,
 )
-from .formula import activation
-from .maps import derivative_second_moment, second_moment, variance_map_slope
-from .quadrature import DEFAULT_RULE, QuadratureRule
+from ..activations.formula import activation
+from ..meanfield.maps import derivative_second_moment, second_moment, variance_map_slope
+from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 
 __all__ = [
     "COMMON_GAINS",

@@ -20,8 +20,8 @@ from typing import Any
 import numpy as np
 from scipy import special
 
-from .errors import InvalidParameterError, UnknownActivationError, check_finite
-from .smoothing import (Piece, Smoothing, Term, erf_smoothing, gelu_smoothing, linear_smoothing,
+from ..errors import InvalidParameterError, UnknownActivationError, check_finite
+from ..numerics.smoothing import (Piece, Smoothing, Term, erf_smoothing, gelu_smoothing, linear_smoothing,
                         piecewise_smoothing)
 
 __all__ = [

@@ -14,7 +14,7 @@ import json
 import sys
 from typing import Any, TextIO
 
-from . import InitPlan, activation, jsonable, propagation, recommend
+from .. import InitPlan, activation, jsonable, propagation, recommend
 
 __all__ = ["SCENARIO", "WIDTHS", "run", "plans"]
 

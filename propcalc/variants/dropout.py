@@ -43,14 +43,14 @@ from typing import Any
 import numpy as np
 from scipy import optimize
 
-from .activations import Activation
-from .criticality import (
+from ..activations.base import Activation
+from ..meanfield.criticality import (
     TRAINABLE_DEPTH_FACTOR,
     depth_scale,
     gradient_growth,
     variance_fixed_points,
 )
-from .errors import (
+from ..errors import (
     ComputationError,
     InvalidParameterError,
     check_finite,
@@ -58,9 +58,9 @@ from .errors import (
     check_nonnegative,
     check_positive,
 )
-from .maps import chi_1 as chi_1_map
-from .maps import derivative_pair_expectation, pair_expectation, second_moment
-from .quadrature import DEFAULT_RULE, QuadratureRule
+from ..meanfield.maps import chi_1 as chi_1_map
+from ..meanfield.maps import derivative_pair_expectation, pair_expectation, second_moment
+from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 
 __all__ = [
     "DropoutPropagation",

@@ -43,7 +43,7 @@ from typing import Any
 
 import numpy as np
 
-from .errors import InvalidParameterError
+from ..errors import InvalidParameterError
 from .recommend import (
     DISTRIBUTIONS,
     TRUNCATION,

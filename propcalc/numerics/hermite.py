@@ -17,8 +17,8 @@ from functools import lru_cache
 
 import numpy as np
 
-from .activations import Activation
-from .errors import ComputationError
+from ..activations.base import Activation
+from ..errors import ComputationError
 from .quadrature import QuadratureRule, rule_nodes
 
 __all__ = ["SERIES_PASSES", "hermite_coefficients", "coefficients_at", "series_sum",

@@ -49,7 +49,7 @@ from typing import Any
 import numpy as np
 from numpy.polynomial import hermite_e, legendre
 
-from .errors import ComputationError, InvalidParameterError
+from ..errors import ComputationError, InvalidParameterError
 
 __all__ = [
     "QuadratureRule",

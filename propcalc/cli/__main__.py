@@ -1,0 +1,7 @@
+"""``python -m propcalc.cli``."""
+
+import sys
+
+from .command import main
+
+sys.exit(main())
