@@ -21,7 +21,7 @@ your own model before relying on them.
 
 from __future__ import annotations
 
-from .activations.base import Activation, ActivationProperties, builtin_names
+from .activations import Activation, ActivationProperties, builtin_names, nearest_name, resolve
 from .meanfield.criticality import (
     CriticalPoint,
     FixedPoint,
@@ -72,13 +72,14 @@ from .variants.spectrum import (
 from .init.draw import LayerArrays, PlanArrays, draw_plan
 from .meanfield.sweep import EdgeSweepResult, SweepResult, propagation_arrays, sweep, sweep_edge
 from .errors import (
+    ActivationTypeError,
     ComputationError,
     FormulaError,
     InvalidParameterError,
     PropcalcError,
     UnknownActivationError,
 )
-from .activations.formula import LIMITS as FORMULA_LIMITS, FormulaLimits, activation, formula_activation
+from .activations import LIMITS as FORMULA_LIMITS, FormulaLimits, activation, formula_activation
 from .jsonable import jsonable
 from .meanfield.maps import (
     chi_1,
@@ -138,6 +139,7 @@ __all__ = [
     "sample_jacobian_spectrum",
     "Activation",
     "ActivationProperties",
+    "ActivationTypeError",
     "ComputationError",
     "CriticalPoint",
     "FixedPoint",
@@ -169,6 +171,8 @@ __all__ = [
     "jsonable",
     "propagation",
     "recommend",
+    "resolve",
+    "nearest_name",
     "variance_fixed_points",
     "variance_map",
     "variance_map_slope",

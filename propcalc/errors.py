@@ -22,6 +22,7 @@ __all__ = [
     "UnknownActivationError",
     "FormulaError",
     "ComputationError",
+    "ActivationTypeError",
     "check_finite",
     "check_positive",
     "check_nonnegative",
@@ -78,6 +79,14 @@ class FormulaError(PropcalcError, ValueError):
 
 class ComputationError(PropcalcError, ArithmeticError):
     """A numerical computation could not produce a trustworthy number."""
+
+
+class ActivationTypeError(InvalidParameterError, UnknownActivationError, TypeError):
+    """An activation argument is neither a name, a formula text nor an Activation.
+
+    It is an :class:`InvalidParameterError` (``field`` names the argument) and an
+    :class:`UnknownActivationError`, so handlers of either catch it.
+    """
 
 
 def check_finite(field: str, value: Any) -> float:

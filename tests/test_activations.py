@@ -442,7 +442,7 @@ def test_builtin_names_are_stable_and_complete():
         assert isinstance(act, Activation) and act.name == n and act.description
 
 
-@pytest.mark.parametrize("spec", ["tanhh", "TANH", "Relu", "softmax", "leaky_rel"])
+@pytest.mark.parametrize("spec", ["tanhh", "softmax", "leaky_rel", "tanh_x", "relu6"])
 def test_unknown_names_raise_with_the_choices(spec):
     with pytest.raises(UnknownActivationError) as info:
         activation(spec)
@@ -574,3 +574,35 @@ def test_map_of_an_odd_activation_by_symmetry_matches_direct_points():
     for i in range(0, 200, 17):
         one = float(maps.pair_expectation(act, np.array([c[i]]), 0.8)[0])
         assert abs(got[i] - (1.3 * one + 0.1) / v) <= 1e-15
+
+
+def test_builtin_cache_is_bounded_and_keeps_identity_while_cached():
+    # issue 11 section 4: every distinct leaky_relu slope was kept forever (about 7 MB per
+    # 1,000 slopes per worker); the cache is now an LRU with a bound (common practice, no source)
+    from propcalc.activations.builtins import BUILTIN_CACHE
+
+    BUILTIN_CACHE.clear()
+    first = activation("leaky_relu", slope=0.5)
+    assert activation("leaky_relu", slope=0.5) is first  # same name and params, same object
+    for k in range(3 * BUILTIN_CACHE.max_entries):
+        activation("leaky_relu", slope=1e-3 * (k + 1))
+        assert len(BUILTIN_CACHE) <= BUILTIN_CACHE.max_entries
+    assert len(BUILTIN_CACHE) == BUILTIN_CACHE.max_entries
+    again = activation("leaky_relu", slope=0.5)  # evicted long ago: rebuilt, equal in value
+    assert again is not first and again.params == first.params
+    assert activation("leaky_relu", slope=0.5) is again
+    tanh = activation("tanh")
+    for k in range(10):
+        activation("elu", alpha=1.0 + k)
+    assert activation("tanh") is tanh  # recently used entries stay
+
+
+def test_clear_activation_caches_empties_every_activation_cache():
+    from propcalc.activations import activation_caches, clear_activation_caches
+
+    activation("leaky_relu", slope=0.3)
+    activation("x * sigmoid(x) + 0.125 * x")
+    assert {c.name for c in activation_caches()} >= {"built-in activations", "typed formulas"}
+    assert sum(len(c) for c in activation_caches()) >= 2
+    clear_activation_caches()
+    assert all(len(c) == 0 for c in activation_caches())

@@ -25,6 +25,10 @@ from scipy import integrate
 
 import propcalc
 from propcalc.activations import formula as formula_module
+from propcalc.activations.formula.differentiator import Differentiator
+from propcalc.activations.formula.printer import to_text
+from propcalc.activations.formula.reader import Reader, parse
+from propcalc.activations.formula.tree import Builder
 from propcalc.errors import FormulaError
 
 mp.mp.dps = 30
@@ -67,12 +71,12 @@ def test_same_input_same_object_and_params_key_the_cache() -> None:
 
 def test_cache_is_bounded(monkeypatch: pytest.MonkeyPatch) -> None:
     # a service taking formulas from anyone must not grow without bound
-    monkeypatch.setattr(formula_module, "_CACHE_SIZE", 3)
+    monkeypatch.setattr(formula_module.FORMULA_CACHE, "max_entries", 3)
     formula_module.clear_formula_cache()
     first = propcalc.activation("x + 1")
     for k in range(2, 6):
         propcalc.activation(f"x + {k}")
-    assert len(formula_module._CACHE) == 3
+    assert len(formula_module.FORMULA_CACHE) == 3
     assert propcalc.activation("x + 1") is not first  # evicted, rebuilt
     formula_module.clear_formula_cache()
 
@@ -265,9 +269,9 @@ def test_derivative_text_is_simplified(text: str, derivative: str) -> None:
     if text == "sin(x) / x**2":
         with pytest.raises(FormulaError, match=r"divides by zero"):
             propcalc.activation(text)
-        b = formula_module._Builder()
-        root = formula_module._Reader(text, {}, b).expr(formula_module._parse(text))
-        assert formula_module._to_text(formula_module._Differentiator(b)(root)) == derivative
+        b = Builder()
+        root = Reader(text, {}, b).expr(parse(text))
+        assert to_text(Differentiator(b)(root)) == derivative
         return
     act = propcalc.activation(text, **params)
     assert act.derivative_formula == derivative

@@ -1,1 +1,46 @@
-"""activations"""
+"""Activation functions: the type, the built-ins, typed formulas and the resolver.
+
+Modules, bottom up:
+
+* :mod:`.profile`: the measured property profile (:class:`ActivationProperties`);
+* :mod:`.base`: :class:`Activation` (value, exact derivative, breakpoints);
+* :mod:`.cache`: bounded LRU caches of built activations;
+* :mod:`.builtins`: the built-in activations and their registry;
+* :mod:`.names`: spellings of built-in names and the nearest name for a typo;
+* :mod:`.formula`: typed formulas, compiled by stage;
+* :mod:`.resolver`: :func:`resolve` and :func:`activation` (a name, a formula or an
+  Activation, resolved once at the boundary of every analysis).
+"""
+
+from __future__ import annotations
+
+from .base import Activation
+from .builtins import (BUILTIN_DESCRIPTIONS, SELU_ALPHA, SELU_SCALE, builtin_activation,
+                       builtin_names, builtin_parameters)
+from .cache import activation_caches, clear_activation_caches
+from .formula import FUNCTIONS, LIMITS, FormulaLimits, formula_activation
+from .names import canonical_builtin_name, did_you_mean, nearest_name
+from .profile import ActivationProperties
+from .resolver import activation, resolve
+
+__all__ = [
+    "Activation",
+    "ActivationProperties",
+    "activation",
+    "resolve",
+    "formula_activation",
+    "builtin_activation",
+    "builtin_names",
+    "builtin_parameters",
+    "BUILTIN_DESCRIPTIONS",
+    "SELU_ALPHA",
+    "SELU_SCALE",
+    "FormulaLimits",
+    "LIMITS",
+    "FUNCTIONS",
+    "canonical_builtin_name",
+    "nearest_name",
+    "did_you_mean",
+    "activation_caches",
+    "clear_activation_caches",
+]

@@ -34,7 +34,7 @@ from ..errors import (
     check_nonnegative,
     check_positive,
 )
-from ..activations.formula import activation
+from ..activations import activation
 from ..meanfield.maps import derivative_second_moment, second_moment, variance_map_slope
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 

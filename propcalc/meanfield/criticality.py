@@ -36,7 +36,7 @@ from ..errors import (
     check_nonnegative,
     check_positive,
 )
-from ..activations.formula import activation
+from ..activations import activation
 from .maps import (
     chi_1 as chi_1_map,
     correlation_map_and_slope,

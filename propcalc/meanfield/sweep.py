@@ -69,7 +69,7 @@ from typing import IO, Any
 import numpy as np
 from scipy import optimize
 
-from ..activations.base import Activation, builtin_activation, builtin_names
+from ..activations import Activation, builtin_activation, builtin_names
 from .criticality import (
     Q_MAX,
     Q_MIN,
@@ -81,7 +81,7 @@ from .criticality import (
     variance_fixed_points,
 )
 from ..errors import ComputationError, InvalidParameterError, check_int, check_nonnegative
-from ..activations.formula import activation as make_activation
+from ..activations import activation as make_activation
 from ..jsonable import jsonable
 from .maps import correlation_map_and_slope, derivative_second_moment, second_moment, variance_map
 from ..numerics.hermite import SERIES_PASSES, series_fixed_points

@@ -72,7 +72,7 @@ from typing import Any
 import numpy as np
 from scipy import optimize
 
-from ..activations.base import SELU_ALPHA, SELU_SCALE, Activation
+from ..activations import SELU_ALPHA, SELU_SCALE, Activation
 from ..errors import InvalidParameterError, check_finite, check_nonnegative, check_positive
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation
 
