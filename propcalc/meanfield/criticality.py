@@ -50,6 +50,7 @@ from .maps import (
 )
 from ..numerics.hermite import SERIES_PASSES, series_fixed_points
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
+from ..results import Result
 
 __all__ = [
     "EDGE_TOLERANCE",
@@ -188,7 +189,7 @@ def depth_scale(slope: float) -> float:
 
 
 @dataclass(frozen=True)
-class FixedPoint:
+class FixedPoint(Result):
     """A fixed point q* of the variance map.
 
     Attributes
@@ -205,12 +206,9 @@ class FixedPoint:
     chi_q: float
     stable: bool
 
-    def to_dict(self) -> dict[str, Any]:
-        return {"q": self.q, "chi_q": self.chi_q, "stable": self.stable}
-
 
 @dataclass(frozen=True)
-class VarianceFixedPoints:
+class VarianceFixedPoints(Result):
     """All fixed points of V(q) = q on (0, 1e8] (and q = 0 when it is one).
 
     Attributes
@@ -237,16 +235,6 @@ class VarianceFixedPoints:
     status: str
     growth_rate: float | None
     message: str
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "points": [p.to_dict() for p in self.points],
-            "q_start": self.q_start,
-            "reached": None if self.reached is None else self.reached.to_dict(),
-            "status": self.status,
-            "growth_rate": self.growth_rate,
-            "message": self.message,
-        }
 
 
 def _fixed_point(act: Activation, q: float, sw: float, rule: QuadratureRule) -> FixedPoint:
@@ -365,7 +353,7 @@ def variance_fixed_points(act: Activation, sigma_w2: float, sigma_b2: float, q_i
 # propagation report
 # -------------------------------------------------------------------------------------------
 @dataclass(frozen=True)
-class Propagation:
+class Propagation(Result):
     """The mean-field report at one (activation, sigma_w2, sigma_b2).
 
     Attributes
@@ -394,6 +382,8 @@ class Propagation:
         "ordered", "chaotic", "edge of chaos" or "unbounded variance".
     trainable_depth : float or None
         6 xi_c (Schoenholz et al. 2017, empirical rule); inf on the edge.
+    trainable_depth_rule : str
+        That rule in words (a constant).
     depth : int or None
         The depth asked about.
     gradient_growth : float or None
@@ -419,36 +409,12 @@ class Propagation:
     xi_c: float | None
     phase: str
     trainable_depth: float | None
+    trainable_depth_rule: str = field(default=_TRAINABLE_RULE, init=False)
     depth: int | None
     gradient_growth: float | None
     edge_approach: str | None
     variance_fixed_points: VarianceFixedPoints = field(repr=False)
     notes: tuple[str, ...] = ()
-
-    def to_dict(self) -> dict[str, Any]:
-        """Plain-Python view (floats may be inf; see :func:`propcalc.jsonable`)."""
-        return {
-            "activation": self.activation,
-            "sigma_w2": self.sigma_w2,
-            "sigma_b2": self.sigma_b2,
-            "q_input": self.q_input,
-            "status": self.status,
-            "q_star": self.q_star,
-            "chi_q": self.chi_q,
-            "xi_q": self.xi_q,
-            "chi_1": self.chi_1,
-            "c_star": self.c_star,
-            "chi_c": self.chi_c,
-            "xi_c": self.xi_c,
-            "phase": self.phase,
-            "trainable_depth": self.trainable_depth,
-            "trainable_depth_rule": _TRAINABLE_RULE,
-            "depth": self.depth,
-            "gradient_growth": self.gradient_growth,
-            "edge_approach": self.edge_approach,
-            "variance_fixed_points": self.variance_fixed_points.to_dict(),
-            "notes": list(self.notes),
-        }
 
 
 def correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
@@ -753,7 +719,7 @@ def gradient_growth(chi_1: float, depth: int | None) -> float | None:
 # the edge of chaos
 # -------------------------------------------------------------------------------------------
 @dataclass(frozen=True)
-class CriticalPoint:
+class CriticalPoint(Result):
     """A point on the edge-of-chaos line.
 
     Attributes
@@ -781,18 +747,6 @@ class CriticalPoint:
     stable: bool
     valid: bool
     message: str
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "activation": self.activation,
-            "q_star": self.q_star,
-            "sigma_w2": self.sigma_w2,
-            "sigma_b2": self.sigma_b2,
-            "chi_q": self.chi_q,
-            "stable": self.stable,
-            "valid": self.valid,
-            "message": self.message,
-        }
 
 
 def edge_of_chaos_line_arrays(act: Activation, q_star: Any, rule: QuadratureRule = DEFAULT_RULE

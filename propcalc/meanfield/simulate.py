@@ -58,6 +58,7 @@ from ..errors import (
 from .maps import chi_1 as chi_1_map
 from .maps import correlation_map, variance_map
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
+from ..results import Result
 
 __all__ = [
     "MAX_SIMULATION_WORK",
@@ -75,7 +76,7 @@ _MF_Q_MAX = 1e12
 
 
 @dataclass(frozen=True)
-class LayerMeasurement:
+class LayerMeasurement(Result):
     """Predicted and measured q, c and squared gradient norm at one layer.
 
     Attributes
@@ -123,26 +124,9 @@ class LayerMeasurement:
     c_in_band: bool
     gradient_in_band: bool
 
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "index": self.index,
-            "q_predicted": self.q_predicted, "q_mean": self.q_mean, "q_se": self.q_se,
-            "q_band": list(self.q_band), "q_geometric": self.q_geometric,
-            "q_geometric_band": list(self.q_geometric_band),
-            "c_predicted": self.c_predicted, "c_mean": self.c_mean, "c_se": self.c_se,
-            "c_band": list(self.c_band),
-            "gradient_predicted": self.gradient_predicted,
-            "gradient_mean": self.gradient_mean, "gradient_se": self.gradient_se,
-            "gradient_band": list(self.gradient_band),
-            "gradient_geometric": self.gradient_geometric,
-            "gradient_geometric_band": list(self.gradient_geometric_band),
-            "q_in_band": self.q_in_band, "c_in_band": self.c_in_band,
-            "gradient_in_band": self.gradient_in_band,
-        }
-
 
 @dataclass(frozen=True)
-class Simulation:
+class Simulation(Result):
     """Mean-field predictions against seeded finite-width networks.
 
     Attributes
@@ -193,20 +177,6 @@ class Simulation:
     deviation_visible: bool
     first_visible_layer: int | None
     message: str
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "activation": self.activation, "sigma_w2": self.sigma_w2,
-            "sigma_b2": self.sigma_b2, "width": self.width, "depth": self.depth,
-            "repetitions": self.repetitions, "n_pairs": self.n_pairs, "seed": self.seed,
-            "q0": self.q0, "c0": self.c0, "tolerance": self.tolerance,
-            "layers": [layer.to_dict() for layer in self.layers],
-            "max_deviation_q": self.max_deviation_q, "max_deviation_c": self.max_deviation_c,
-            "max_deviation_gradient": self.max_deviation_gradient,
-            "fraction_in_band": self.fraction_in_band,
-            "deviation_visible": self.deviation_visible,
-            "first_visible_layer": self.first_visible_layer, "message": self.message,
-        }
 
 
 def mean_field_trajectory(act: Activation, sigma_w2: float, sigma_b2: float, depth: int,

@@ -63,7 +63,7 @@ import pickle
 import sys
 from collections.abc import Iterator, Sequence
 from concurrent.futures import Executor, ThreadPoolExecutor, as_completed
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import IO, Any
 
 import numpy as np
@@ -75,6 +75,7 @@ from .criticality import (
     Q_MIN,
     EDGE_TOLERANCE,
     TRAINABLE_DEPTH_FACTOR,
+    _TRAINABLE_RULE,
     correlation_fixed_point,
     edge_of_chaos_line_arrays,
     propagation,
@@ -86,6 +87,7 @@ from ..jsonable import jsonable
 from .maps import correlation_map_and_slope, derivative_second_moment, second_moment, variance_map
 from ..numerics.hermite import SERIES_PASSES, series_fixed_points
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, rule_nodes
+from ..results import ABSENT_AS_NONE, Result
 
 __all__ = [
     "QUANTITIES",
@@ -639,7 +641,7 @@ def _frozen(a: Array) -> Array:
 
 
 @dataclass(frozen=True, eq=False)
-class SweepResult(_Table):
+class SweepResult(_Table, Result):
     """Propagation quantities on a grid ``activations x sigma_w2 x sigma_b2``.
 
     Attributes
@@ -669,15 +671,18 @@ class SweepResult(_Table):
     q_input: float
     status: Array
     phase: Array
-    q_star: Array
-    chi_q: Array
-    xi_q: Array
-    chi_1: Array
-    c_star: Array
-    chi_c: Array
-    xi_c: Array
-    trainable_depth: Array
+    q_star: Array = field(metadata=ABSENT_AS_NONE)
+    chi_q: Array = field(metadata=ABSENT_AS_NONE)
+    xi_q: Array = field(metadata=ABSENT_AS_NONE)
+    chi_1: Array = field(metadata=ABSENT_AS_NONE)
+    c_star: Array = field(metadata=ABSENT_AS_NONE)
+    chi_c: Array = field(metadata=ABSENT_AS_NONE)
+    xi_c: Array = field(metadata=ABSENT_AS_NONE)
+    trainable_depth: Array = field(metadata=ABSENT_AS_NONE)
     method: str = "vectorised"
+    trainable_depth_rule: str = field(default=_TRAINABLE_RULE, init=False)
+
+    dict_properties = ("shape",)
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -709,26 +714,9 @@ class SweepResult(_Table):
             cols[k] = getattr(self, k).ravel()
         return cols
 
-    def to_dict(self) -> dict[str, Any]:
-        """Axes and nested lists per quantity (None where absent; inf stays a float)."""
-        def nested(a: Array) -> Any:
-            return [[[_cell(v) for v in row] for row in plane] for plane in a]
-
-        out: dict[str, Any] = {
-            "activations": list(self.activations), "sigma_w2": self.sigma_w2.tolist(),
-            "sigma_b2": self.sigma_b2.tolist(), "q_input": self.q_input, "shape": list(self.shape),
-            "method": self.method, "trainable_depth_rule":
-                "about 6 xi_c layers (empirical rule of Schoenholz et al. 2017)",
-            "status": [[[str(v) for v in row] for row in plane] for plane in self.status],
-            "phase": [[[str(v) for v in row] for row in plane] for plane in self.phase],
-        }
-        for k in QUANTITIES:
-            out[k] = nested(getattr(self, k))
-        return out
-
 
 @dataclass(frozen=True, eq=False)
-class EdgeSweepResult(_Table):
+class EdgeSweepResult(_Table, Result):
     """The edge-of-chaos line of each activation over a grid of q*.
 
     Attributes
@@ -744,10 +732,10 @@ class EdgeSweepResult(_Table):
 
     activations: tuple[str, ...]
     q_star: Array
-    sigma_w2: Array
-    sigma_b2: Array
-    chi_q: Array
-    xi_q: Array
+    sigma_w2: Array = field(metadata=ABSENT_AS_NONE)
+    sigma_b2: Array = field(metadata=ABSENT_AS_NONE)
+    chi_q: Array = field(metadata=ABSENT_AS_NONE)
+    xi_q: Array = field(metadata=ABSENT_AS_NONE)
     stable: Array
     valid: Array
 
@@ -758,12 +746,6 @@ class EdgeSweepResult(_Table):
                 "sigma_b2": self.sigma_b2.ravel(), "chi_q": self.chi_q.ravel(),
                 "xi_q": self.xi_q.ravel(), "stable": self.stable.ravel().tolist(),
                 "valid": self.valid.ravel().tolist()}
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"activations": list(self.activations), "q_star": self.q_star.tolist(),
-                **{k: [[_cell(v) for v in row] for row in getattr(self, k)]
-                   for k in ("sigma_w2", "sigma_b2", "chi_q", "xi_q")},
-                "stable": self.stable.tolist(), "valid": self.valid.tolist()}
 
 
 # -------------------------------------------------------------------------------------------
