@@ -37,7 +37,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -61,6 +61,7 @@ from ..errors import (
 from ..meanfield.maps import chi_1 as chi_1_map
 from ..meanfield.maps import derivative_pair_expectation, pair_expectation, second_moment
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
+from ..results import Result
 
 __all__ = [
     "DropoutPropagation",
@@ -82,7 +83,7 @@ def _keep_rate(value: Any) -> float:
 
 
 @dataclass(frozen=True)
-class DropoutPropagation:
+class DropoutPropagation(Result):
     """Mean-field report of a deep network with dropout at keep rate rho.
 
     Attributes
@@ -108,6 +109,8 @@ class DropoutPropagation:
         -1 / ln chi_c (finite for rho < 1).
     trainable_depth : float or None
         6 xi_c (empirical rule of Schoenholz et al. 2017).
+    trainable_depth_rule : str
+        That rule in words (a constant).
     depth : int or None
     gradient_growth : float or None
         chi_1^depth.
@@ -129,26 +132,16 @@ class DropoutPropagation:
     chi_c: float | None
     xi_c: float | None
     trainable_depth: float | None
+    trainable_depth_rule: str = field(default=_TRAINABLE_RULE, init=False)
     depth: int | None
     gradient_growth: float | None
     depth_ok: bool | None
     verdict: str
     notes: tuple[str, ...] = ()
 
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "activation": self.activation, "keep_rate": self.keep_rate,
-            "sigma_w2": self.sigma_w2, "sigma_b2": self.sigma_b2, "q_input": self.q_input,
-            "status": self.status, "q_star": self.q_star, "chi_q": self.chi_q,
-            "chi_1": self.chi_1, "c_star": self.c_star, "chi_c": self.chi_c, "xi_c": self.xi_c,
-            "trainable_depth": self.trainable_depth, "trainable_depth_rule": _TRAINABLE_RULE,
-            "depth": self.depth, "gradient_growth": self.gradient_growth,
-            "depth_ok": self.depth_ok, "verdict": self.verdict, "notes": list(self.notes),
-        }
-
 
 @dataclass(frozen=True)
-class DropoutSweep:
+class DropoutSweep(Result):
     """Dropout reports over several keep rates.
 
     Attributes
@@ -164,10 +157,6 @@ class DropoutSweep:
     activation: str
     scale_with_keep_rate: bool
     reports: tuple[DropoutPropagation, ...]
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"activation": self.activation, "scale_with_keep_rate": self.scale_with_keep_rate,
-                "reports": [r.to_dict() for r in self.reports]}
 
 
 def _correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,

@@ -87,7 +87,7 @@ from __future__ import annotations
 import dataclasses
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import lru_cache
 from typing import Any
 
@@ -97,6 +97,7 @@ from scipy import special
 from ..meanfield.criticality import TRAINABLE_DEPTH_FACTOR, depth_scale, gradient_growth
 from ..errors import InvalidParameterError, check_int, check_nonnegative, check_positive
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation, legendre_rule
+from ..results import Result
 
 __all__ = [
     "MAX_RANK",
@@ -128,7 +129,7 @@ def _rank(k: Any) -> int:
 # moments of the largest of k standard normals
 # -------------------------------------------------------------------------------------------
 @dataclass(frozen=True)
-class MaxMoments:
+class MaxMoments(Result):
     """Moments of the largest of k iid standard normals.
 
     Attributes
@@ -148,10 +149,6 @@ class MaxMoments:
     mean: float
     second_moment: float
     recommended_sigma_w2: float
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"k": self.k, "mean": self.mean, "second_moment": self.second_moment,
-                "recommended_sigma_w2": self.recommended_sigma_w2}
 
 
 @lru_cache(maxsize=256)
@@ -373,7 +370,7 @@ def maxout_correlation_map_slope(k: int, c: Any, sigma_w2: float, sigma_b2: floa
 # the report
 # -------------------------------------------------------------------------------------------
 @dataclass(frozen=True)
-class MaxoutPropagation:
+class MaxoutPropagation(Result):
     """Mean-field report of a deep maxout network of rank k.
 
     Attributes
@@ -401,6 +398,8 @@ class MaxoutPropagation:
         and then V(q)/q >= sigma_w2 > 1).
     trainable_depth : float or None
         6 xi_c (empirical rule of Schoenholz et al. 2017).
+    trainable_depth_rule : str
+        That rule in words (a constant).
     depth : int or None
     gradient_growth : float or None
         chi_1^depth.
@@ -427,25 +426,13 @@ class MaxoutPropagation:
     xi_c: float | None
     phase: str
     trainable_depth: float | None
+    trainable_depth_rule: str = field(default=_TRAINABLE_RULE, init=False)
     depth: int | None
     gradient_growth: float | None
     depth_ok: bool | None
     verdict: str
     parameter_factor: int
     notes: tuple[str, ...] = ()
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "k": self.k, "sigma_w2": self.sigma_w2, "sigma_b2": self.sigma_b2,
-            "q_input": self.q_input, "moments": self.moments.to_dict(), "status": self.status,
-            "q_star": self.q_star, "chi_q": self.chi_q, "growth_rate": self.growth_rate,
-            "chi_1": self.chi_1, "c_star": self.c_star, "chi_c": self.chi_c, "xi_c": self.xi_c,
-            "phase": self.phase, "trainable_depth": self.trainable_depth,
-            "trainable_depth_rule": _TRAINABLE_RULE, "depth": self.depth,
-            "gradient_growth": self.gradient_growth, "depth_ok": self.depth_ok,
-            "verdict": self.verdict, "parameter_factor": self.parameter_factor,
-            "notes": list(self.notes),
-        }
 
 
 def maxout_propagation(k: int, sigma_w2: float | None = None, sigma_b2: float = 0.0,
@@ -545,7 +532,7 @@ def maxout_propagation(k: int, sigma_w2: float | None = None, sigma_b2: float = 
 
 
 @dataclass(frozen=True)
-class MaxoutLayer:
+class MaxoutLayer(Result):
     """Initialisation and size of one dense maxout layer.
 
     Attributes
@@ -571,12 +558,6 @@ class MaxoutLayer:
     n_parameters: int
     plain_parameters: int
     weight_shape: tuple[int, int, int]
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"k": self.k, "fan_in": self.fan_in, "fan_out": self.fan_out,
-                "sigma_w2": self.sigma_w2, "weight_std": self.weight_std,
-                "n_parameters": self.n_parameters, "plain_parameters": self.plain_parameters,
-                "weight_shape": list(self.weight_shape)}
 
 
 def maxout_layer(k: int, fan_in: int, fan_out: int, sigma_w2: float | None = None,

@@ -46,7 +46,7 @@ is the largest whose expected initial loss stays within ``margin`` of ln K.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -62,6 +62,7 @@ from ..errors import (
 )
 from ..meanfield.maps import second_moment
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation, legendre_rule
+from ..results import Result
 
 __all__ = [
     "MAX_CLASSES",
@@ -161,7 +162,7 @@ def _small_variance(k: int, s2: float) -> float:
 
 
 @dataclass(frozen=True)
-class InitialLoss:
+class InitialLoss(Result):
     """Expected initial cross-entropy for K classes and logit variance s2.
 
     Attributes
@@ -178,6 +179,8 @@ class InitialLoss:
     small_variance_approximation : float
         ln K + s2 (K - 1) / (2K), accurate to O(s2^2).
     method : str
+    target_note : str
+        Why ln K is the target (a constant).
     """
 
     n_classes: int
@@ -187,13 +190,7 @@ class InitialLoss:
     excess: float
     small_variance_approximation: float
     method: str
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"n_classes": self.n_classes, "logit_variance": self.logit_variance,
-                "expected_loss": self.expected_loss, "log_classes": self.log_classes,
-                "excess": self.excess,
-                "small_variance_approximation": self.small_variance_approximation,
-                "method": self.method, "target_note": _TARGET_NOTE}
+    target_note: str = field(default=_TARGET_NOTE, init=False)
 
 
 def initial_loss(n_classes: int, logit_variance: float,
@@ -208,7 +205,7 @@ def initial_loss(n_classes: int, logit_variance: float,
 
 
 @dataclass(frozen=True)
-class MaxProbability:
+class MaxProbability(Result):
     """Expected largest class probability E[max_j softmax(l)_j] at initialisation.
 
     Attributes
@@ -234,12 +231,6 @@ class MaxProbability:
     n_samples: int | None
     seed: int | None
     uniform: float
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"n_classes": self.n_classes, "logit_variance": self.logit_variance,
-                "value": self.value, "standard_error": self.standard_error,
-                "method": self.method, "n_samples": self.n_samples, "seed": self.seed,
-                "uniform": self.uniform}
 
 
 def max_class_probability(n_classes: int, logit_variance: float, n_samples: int = 100_000,
@@ -291,7 +282,7 @@ def max_class_probability(n_classes: int, logit_variance: float, n_samples: int 
 
 
 @dataclass(frozen=True)
-class OutputLayerScale:
+class OutputLayerScale(Result):
     """The last layer's weight scale that keeps the initial loss near ln K.
 
     Attributes
@@ -328,16 +319,6 @@ class OutputLayerScale:
     max_probability_at_scale: MaxProbability
     current: InitialLoss | None
     notes: tuple[str, ...] = ()
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"n_classes": self.n_classes, "margin": self.margin,
-                "penultimate_second_moment": self.penultimate_second_moment,
-                "sigma_b2": self.sigma_b2, "max_logit_variance": self.max_logit_variance,
-                "sigma_w2": self.sigma_w2, "weight_std": self.weight_std,
-                "loss_at_scale": self.loss_at_scale.to_dict(),
-                "max_probability_at_scale": self.max_probability_at_scale.to_dict(),
-                "current": None if self.current is None else self.current.to_dict(),
-                "notes": list(self.notes)}
 
 
 def _max_variance_for_margin(k: int, margin: float, rule: QuadratureRule) -> float:

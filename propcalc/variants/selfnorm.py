@@ -75,6 +75,7 @@ from scipy import optimize
 from ..activations import SELU_ALPHA, SELU_SCALE, Activation
 from ..errors import InvalidParameterError, check_finite, check_nonnegative, check_positive
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation
+from ..results import Result
 
 __all__ = [
     "ALPHA_PRIME_SELU",
@@ -185,7 +186,7 @@ def mean_variance_jacobian(act: Activation, mu: Any, nu: Any, omega: float = 0.0
 
 
 @dataclass(frozen=True)
-class MeanVarianceFixedPoint:
+class MeanVarianceFixedPoint(Result):
     """A fixed point (mu*, nu*) of the mean-variance map with its Jacobian.
 
     Attributes
@@ -213,16 +214,9 @@ class MeanVarianceFixedPoint:
     spectral_norm: float
     attracting: bool
 
-    def to_dict(self) -> dict[str, Any]:
-        return {"mu": self.mu, "nu": self.nu, "jacobian": [list(r) for r in self.jacobian],
-                "eigenvalues_real": list(self.eigenvalues_real),
-                "eigenvalues_imag": list(self.eigenvalues_imag),
-                "spectral_radius": self.spectral_radius, "spectral_norm": self.spectral_norm,
-                "attracting": self.attracting}
-
 
 @dataclass(frozen=True)
-class SelfNormalization:
+class SelfNormalization(Result):
     """Fixed points of the mean-variance map and whether the network self-normalises.
 
     Attributes
@@ -256,13 +250,6 @@ class SelfNormalization:
     zero_rate: float | None
     method: str
     message: str
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"activation": self.activation, "omega": self.omega, "tau": self.tau,
-                "fixed_points": [p.to_dict() for p in self.fixed_points],
-                "nearest": None if self.nearest is None else self.nearest.to_dict(),
-                "self_normalizing": self.self_normalizing, "neutral": self.neutral,
-                "zero_rate": self.zero_rate, "method": self.method, "message": self.message}
 
 
 def _point(act: Activation, mu: float, nu: float, omega: float, tau: float,
@@ -420,7 +407,7 @@ def self_normalization(act: Activation, omega: float = 0.0, tau: float = 1.0,
 # alpha dropout
 # -------------------------------------------------------------------------------------------
 @dataclass(frozen=True)
-class AlphaDropout:
+class AlphaDropout(Result):
     """Constants of alpha dropout (Klambauer et al. 2017).
 
     Attributes
@@ -441,10 +428,6 @@ class AlphaDropout:
     b: float
     mean: float
     variance: float
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"keep_rate": self.keep_rate, "alpha_prime": self.alpha_prime, "a": self.a,
-                "b": self.b, "mean": self.mean, "variance": self.variance}
 
     def apply(self, x: Any, keep: Any) -> np.ndarray:
         """``a (x d + alpha' (1 - d)) + b`` for activations x and a boolean keep mask d."""

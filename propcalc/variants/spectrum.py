@@ -68,6 +68,7 @@ from ..errors import (
 )
 from ..meanfield.maps import derivative_second_moment
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation
+from ..results import Result
 
 __all__ = [
     "DEFAULT_MAX_VARIANCE",
@@ -110,7 +111,7 @@ def derivative_moments(act: Activation, q: float,
 
 
 @dataclass(frozen=True)
-class JacobianSpectrum:
+class JacobianSpectrum(Result):
     """Mean and variance of the spectrum of J J^T for a depth-L network.
 
     Attributes
@@ -155,16 +156,6 @@ class JacobianSpectrum:
         """The normalised variance for "gaussian" or "orthogonal" weights."""
         return {"gaussian": self.normalized_variance_gaussian,
                 "orthogonal": self.normalized_variance_orthogonal}[_weights(weights)]
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"activation": self.activation, "depth": self.depth, "q_star": self.q_star,
-                "sigma_w2": self.sigma_w2, "sigma_b2": self.sigma_b2, "mu_1": self.mu_1,
-                "mu_2": self.mu_2, "moment_ratio": self.moment_ratio, "chi_1": self.chi_1,
-                "mean": self.mean,
-                "normalized_variance_gaussian": self.normalized_variance_gaussian,
-                "normalized_variance_orthogonal": self.normalized_variance_orthogonal,
-                "variance_gaussian": self.variance_gaussian,
-                "variance_orthogonal": self.variance_orthogonal, "notes": list(self.notes)}
 
 
 def _weights(kind: str) -> str:
@@ -240,7 +231,7 @@ def jacobian_spectrum(act: Activation, depth: int, q_star: float = 1.0,
 
 
 @dataclass(frozen=True)
-class IsometryAdvice:
+class IsometryAdvice(Result):
     """Where (if anywhere) a depth-L network has a near-isometric Jacobian.
 
     Attributes
@@ -283,16 +274,6 @@ class IsometryAdvice:
     ratio_at_large_q: float
     ratio_constant: bool
     message: str
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"activation": self.activation, "depth": self.depth,
-                "max_variance": self.max_variance, "achievable": self.achievable,
-                "weights": self.weights, "q_star": self.q_star, "sigma_w2": self.sigma_w2,
-                "sigma_b2": self.sigma_b2,
-                "spectrum": None if self.spectrum is None else self.spectrum.to_dict(),
-                "ratio_at_small_q": self.ratio_at_small_q,
-                "ratio_at_large_q": self.ratio_at_large_q,
-                "ratio_constant": self.ratio_constant, "message": self.message}
 
 
 def dynamical_isometry(act: Activation, depth: int, max_variance: float = DEFAULT_MAX_VARIANCE,
@@ -374,7 +355,7 @@ def dynamical_isometry(act: Activation, depth: int, max_variance: float = DEFAUL
 # seeded random-matrix check
 # -------------------------------------------------------------------------------------------
 @dataclass(frozen=True)
-class SampledSpectrum:
+class SampledSpectrum(Result):
     """Moments of the spectrum of J J^T measured on seeded random networks.
 
     Attributes
@@ -413,16 +394,6 @@ class SampledSpectrum:
     mean_se: float
     normalized_variance: float
     normalized_variance_se: float
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"activation": self.activation, "weights": self.weights, "width": self.width,
-                "depth": self.depth, "repetitions": self.repetitions, "seed": self.seed,
-                "sigma_w2": self.sigma_w2, "sigma_b2": self.sigma_b2, "q_star": self.q_star,
-                "means": list(self.means),
-                "normalized_variances": list(self.normalized_variances),
-                "free_prediction": list(self.free_prediction), "mean": self.mean,
-                "mean_se": self.mean_se, "normalized_variance": self.normalized_variance,
-                "normalized_variance_se": self.normalized_variance_se}
 
 
 def _haar_orthogonal(rng: np.random.Generator, n: int) -> np.ndarray:
