@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import InvalidParameterError
+from ..results import OMIT, Result
 from ..numerics.smoothing import Smoothing
 from .profile import ActivationProperties, profile
 
@@ -32,7 +33,7 @@ ArrayFn = Callable[[Array], Array]
 
 
 @dataclass(frozen=True, eq=False)
-class Activation:
+class Activation(Result):
     """A scalar activation function phi with its exact derivative.
 
     Parameters
@@ -62,22 +63,25 @@ class Activation:
     """
 
     name: str
-    value_fn: ArrayFn = field(repr=False)
-    derivative_fn: ArrayFn = field(repr=False)
+    value_fn: ArrayFn = field(repr=False, metadata=OMIT)
+    derivative_fn: ArrayFn = field(repr=False, metadata=OMIT)
     breakpoints: tuple[float, ...] = ()
     params: Mapping[str, float] = field(default_factory=dict)
     formula: str | None = None
     derivative_formula: str | None = None
     description: str = ""
-    declared_scale: float | None = None
-    smoothing: Smoothing | None = field(default=None, repr=False)
+    declared_scale: float | None = field(default=None, metadata=OMIT)
+    smoothing: Smoothing | None = field(default=None, repr=False, metadata=OMIT)
+
+    #: the dict form (``--json``, the service) also shows the label and the property profile
+    dict_properties = ("label", "properties")
 
     def __post_init__(self) -> None:
         bps = tuple(sorted({float(b) for b in self.breakpoints}))
         if any(not math.isfinite(b) for b in bps):
             raise InvalidParameterError("breakpoints", "finite numbers", self.breakpoints)
         object.__setattr__(self, "breakpoints", bps)
-        object.__setattr__(self, "params", dict(self.params))
+        object.__setattr__(self, "params", {k: float(v) for k, v in sorted(self.params.items())})
 
     # -- evaluation -----------------------------------------------------------------
     def __call__(self, x: Any) -> Array:
@@ -198,19 +202,6 @@ class Activation:
     def properties(self) -> ActivationProperties:
         """Range, monotonicity, parity, smoothness, dead units, saturating tails."""
         return profile(self)
-
-    def to_dict(self) -> dict[str, Any]:
-        """Plain-Python description used by ``--json`` and the service."""
-        return {
-            "name": self.name,
-            "label": self.label,
-            "params": {k: float(v) for k, v in sorted(self.params.items())},
-            "description": self.description,
-            "formula": self.formula,
-            "derivative_formula": self.derivative_formula,
-            "breakpoints": [float(b) for b in self.breakpoints],
-            "properties": self.properties.to_dict(),
-        }
 
 
 # names that lived here before the activation layer was split by stage (builtins.py now);
