@@ -38,12 +38,14 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from functools import cached_property
 from typing import Any
 
 import numpy as np
 
 from ..errors import InvalidParameterError
+from ..results import OMIT, Result
 from .recommend import (
     DISTRIBUTIONS,
     TRUNCATION,
@@ -70,7 +72,7 @@ SeedLike = int | np.random.SeedSequence | np.random.Generator | None
 
 
 @dataclass(frozen=True)
-class LayerArrays:
+class LayerArrays(Result):
     """The drawn arrays of one layer.
 
     Attributes
@@ -85,6 +87,8 @@ class LayerArrays:
         Shape ``layer.weight_shape``, float64.
     bias : ndarray
         Shape ``(layer.out_features,)``, float64.
+    weight_shape, bias_shape : tuple of int
+        The arrays' shapes (the dict form shows these, not the arrays).
     weight_std, bias_std : float
         Planned standard deviations of one entry: ``sqrt(sigma_w2 / fan_in)``
         and ``sqrt(sigma_b2)``.
@@ -94,29 +98,32 @@ class LayerArrays:
     layer: Layer
     distribution: str
     bias_distribution: str
-    weight: np.ndarray
-    bias: np.ndarray
+    weight: np.ndarray = field(metadata=OMIT)
+    bias: np.ndarray = field(metadata=OMIT)
+    weight_shape: tuple[int, ...] = field(init=False)
+    bias_shape: tuple[int, ...] = field(init=False)
     weight_std: float
     bias_std: float
 
-    def to_dict(self) -> dict[str, Any]:
-        """Shapes, laws and planned against sampled standard deviations (not the arrays)."""
-        return {
-            "index": self.index,
-            "layer": self.layer.to_dict(),
-            "distribution": self.distribution,
-            "bias_distribution": self.bias_distribution,
-            "weight_shape": list(self.weight.shape),
-            "bias_shape": list(self.bias.shape),
-            "weight_std": self.weight_std,
-            "bias_std": self.bias_std,
-            "sample_weight_std": float(np.sqrt(np.mean(self.weight ** 2))),
-            "sample_bias_std": float(np.sqrt(np.mean(self.bias ** 2))) if self.bias.size else 0.0,
-        }
+    dict_properties = ("sample_weight_std", "sample_bias_std")
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "weight_shape", tuple(self.weight.shape))
+        object.__setattr__(self, "bias_shape", tuple(self.bias.shape))
+
+    @cached_property
+    def sample_weight_std(self) -> float:
+        """Root mean square of the drawn weights (to compare with ``weight_std``)."""
+        return float(np.sqrt(np.mean(self.weight ** 2)))
+
+    @cached_property
+    def sample_bias_std(self) -> float:
+        """Root mean square of the drawn biases (0 for an empty bias)."""
+        return float(np.sqrt(np.mean(self.bias ** 2))) if self.bias.size else 0.0
 
 
 @dataclass(frozen=True)
-class PlanArrays:
+class PlanArrays(Result):
     """Arrays drawn for every layer of a plan.
 
     Attributes
@@ -134,15 +141,6 @@ class PlanArrays:
     bias_distribution: str
     seed_entropy: int | None
     layers: tuple[LayerArrays, ...]
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "activation": self.activation,
-            "distribution": self.distribution,
-            "bias_distribution": self.bias_distribution,
-            "seed_entropy": self.seed_entropy,
-            "layers": [la.to_dict() for la in self.layers],
-        }
 
 
 # -------------------------------------------------------------------------------------------

@@ -37,6 +37,7 @@ from ..errors import (
 from ..activations import activation
 from ..meanfield.maps import derivative_second_moment, second_moment, variance_map_slope
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
+from ..results import OMIT, Result, inline
 
 __all__ = [
     "COMMON_GAINS",
@@ -82,7 +83,7 @@ def truncated_normal_factor(bound: float = TRUNCATION) -> float:
 
 
 @dataclass(frozen=True)
-class Gains:
+class Gains(Result):
     """Forward and backward gains of an activation at unit pre-activation variance.
 
     Attributes
@@ -110,18 +111,6 @@ class Gains:
     common_gain_chi_1: float | None
     common_gain_phase: str | None
     notes: tuple[str, ...] = ()
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "activation": self.activation,
-            "forward": self.forward,
-            "backward": self.backward,
-            "common_gain": self.common_gain,
-            "common_gain_sigma_w2": self.common_gain_sigma_w2,
-            "common_gain_chi_1": self.common_gain_chi_1,
-            "common_gain_phase": self.common_gain_phase,
-            "notes": list(self.notes),
-        }
 
 
 def _common_gain(act: Activation) -> tuple[float | None, str]:
@@ -185,7 +174,7 @@ def gains(act: Activation, rule: QuadratureRule = DEFAULT_RULE) -> Gains:
 # layers and plans
 # -------------------------------------------------------------------------------------------
 @dataclass(frozen=True)
-class Layer:
+class Layer(Result):
     """A dense or convolutional layer, described by its shape.
 
     Attributes
@@ -199,6 +188,9 @@ class Layer:
     in_features, out_features : int
         Matrix shape: columns and rows of the weight reshaped to 2-D
         (``out_channels`` rows and ``in_channels * k`` columns for a convolution).
+    weight_shape : tuple of int
+        (out, in) for dense layers; (out_channels, in_channels, *kernel) for
+        convolutions (derived from the other fields).
     kernel_size : tuple of int
         () for dense layers.
     """
@@ -206,9 +198,19 @@ class Layer:
     fan_in: int
     fan_out: int
     kind: str = "dense"
-    in_features: int = 0
-    out_features: int = 0
+    in_features: int = field(default=0, metadata=OMIT)
+    out_features: int = field(default=0, metadata=OMIT)
+    weight_shape: tuple[int, ...] = field(init=False)
     kernel_size: tuple[int, ...] = ()
+
+    def __post_init__(self) -> None:
+        # (out, in) for dense layers; (out_channels, in_channels, *kernel) for convolutions
+        if self.kind == "dense":
+            shape: tuple[int, ...] = (self.out_features, self.in_features)
+        else:
+            k = int(np.prod(self.kernel_size))
+            shape = (self.out_features, self.in_features // k, *self.kernel_size)
+        object.__setattr__(self, "weight_shape", shape)
 
     @classmethod
     def dense(cls, in_features: int, out_features: int) -> "Layer":
@@ -238,21 +240,9 @@ class Layer:
         k = int(np.prod(ks))
         return cls(i * k, o * k, "conv", i * k, o, ks)
 
-    @property
-    def weight_shape(self) -> tuple[int, ...]:
-        """(out, in) for dense layers; (out_channels, in_channels, *kernel) for convolutions."""
-        if self.kind == "dense":
-            return (self.out_features, self.in_features)
-        k = int(np.prod(self.kernel_size))
-        return (self.out_features, self.in_features // k, *self.kernel_size)
-
-    def to_dict(self) -> dict[str, Any]:
-        return {"kind": self.kind, "fan_in": self.fan_in, "fan_out": self.fan_out,
-                "weight_shape": list(self.weight_shape), "kernel_size": list(self.kernel_size)}
-
 
 @dataclass(frozen=True)
-class LayerInit:
+class LayerInit(Result):
     """Initialisation of one layer.
 
     Attributes
@@ -282,7 +272,7 @@ class LayerInit:
     """
 
     index: int
-    layer: Layer | None
+    layer: Layer | None = field(metadata=inline(absent={"kind": None}))
     sigma_w2: float
     sigma_b2: float
     weight_std: float | None
@@ -293,21 +283,9 @@ class LayerInit:
     gain: float
     value: float | None
 
-    def to_dict(self) -> dict[str, Any]:
-        out: dict[str, Any] = {"index": self.index}
-        out.update(self.layer.to_dict() if self.layer is not None else {"kind": None})
-        out.update({
-            "sigma_w2": self.sigma_w2, "sigma_b2": self.sigma_b2, "gain": self.gain,
-            "weight_std": self.weight_std, "uniform_bound": self.uniform_bound,
-            "truncated_normal_std": self.truncated_normal_std,
-            "orthogonal_scale": self.orthogonal_scale, "bias_std": self.bias_std,
-            "value": self.value,
-        })
-        return out
-
 
 @dataclass(frozen=True)
-class InitPlan:
+class InitPlan(Result):
     """A per-layer initialisation plan with its mean-field justification.
 
     Attributes
@@ -352,24 +330,6 @@ class InitPlan:
         from .draw import draw_plan  # local import keeps the imports one-way
 
         return draw_plan(self, seed, bias_distribution=bias_distribution, layers=layers)
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "activation": self.activation,
-            "target": self.target,
-            "target_description": self.target_description,
-            "distribution": self.distribution,
-            "sigma_w2": self.sigma_w2,
-            "sigma_b2": self.sigma_b2,
-            "q_star": self.q_star,
-            "depth": self.depth,
-            "trainable_depth": self.trainable_depth,
-            "depth_ok": self.depth_ok,
-            "verdict": self.verdict,
-            "layers": [layer.to_dict() for layer in self.layers],
-            "propagation": self.propagation.to_dict(),
-            "notes": list(self.notes),
-        }
 
 
 def _layer_init(index: int, layer: Layer | None, sw: float, sb: float, distribution: str) -> LayerInit:
