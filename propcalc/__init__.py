@@ -21,6 +21,7 @@ your own model before relying on them.
 
 from __future__ import annotations
 
+from . import domains
 from .activations import Activation, ActivationProperties, builtin_names, nearest_name, resolve
 from .meanfield.criticality import (
     CriticalPoint,
@@ -94,6 +95,7 @@ from .init.recommend import Gains, InitPlan, Layer, LayerInit, gains, recommend
 __version__ = "0.1.0"
 
 __all__ = [
+    "domains",
     "LayerArrays",
     "PlanArrays",
     "draw_plan",

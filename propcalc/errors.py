@@ -53,10 +53,19 @@ class InvalidParameterError(PropcalcError, ValueError):
         self.field = field
         self.constraint = constraint
         self.value = value
-        msg = f"{field} must be {constraint}, got {value!r}"
+        msg = f"{field} must be {constraint}, got {_short_repr(value)}"
         if hint:
             msg += f"; {hint}"
         super().__init__(msg)
+
+
+def _short_repr(value: Any, limit: int = 100) -> str:
+    """repr(value), shortened when longer than ``limit`` characters (a 400-digit integer
+    is shown by its first digits and its length, not printed in full)."""
+    text = repr(value)
+    if len(text) <= limit:
+        return text
+    return f"{text[:40]}... ({len(text)} characters)"
 
 
 class UnknownActivationError(PropcalcError, ValueError):
@@ -95,7 +104,7 @@ def check_finite(field: str, value: Any) -> float:
         raise InvalidParameterError(field, "a finite real number", value)
     try:
         out = float(value)
-    except (TypeError, ValueError):
+    except (TypeError, ValueError, OverflowError):  # OverflowError: an int beyond 1.8e308
         raise InvalidParameterError(field, "a finite real number", value) from None
     if not math.isfinite(out):
         raise InvalidParameterError(field, "a finite real number", value)

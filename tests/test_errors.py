@@ -177,3 +177,13 @@ def test_nan_never_leaves_through_jsonable():
         "a": "inf", "b": "-inf", "c": [1, 2]}
     with pytest.raises(ValueError, match="NaN reached the output"):
         propcalc.jsonable({"x": [1.0, math.nan]})
+
+
+def test_check_finite_refuses_an_integer_beyond_doubles():
+    # issue 11 section 2: float(10**400) raises OverflowError, which must not escape
+    with pytest.raises(InvalidParameterError) as info:
+        check_finite("params.beta", 10**400)
+    text = str(info.value)
+    assert text.startswith("params.beta must be a finite real number, got 1000")
+    assert text.endswith("... (401 characters)")  # the value is shortened, not printed in full
+    assert info.value.value == 10**400

@@ -769,7 +769,8 @@ def _line(act: Activation, q: np.ndarray, rule: QuadratureRule) -> tuple[np.ndar
         # E[phi'^2] = 0 (no gradient) or inf (a jump): no critical sigma_w2, marked inf
         usable = (d2 > 0) & np.isfinite(d2)
         sw = np.where(usable, 1.0 / np.where(usable, d2, 1.0), np.inf)
-    sb = q - sw * second_moment(act, q, rule)
+    # where sigma_w2 is inf, sigma_b2 has no meaning (not inf * 0 = NaN): marked -inf
+    sb = np.where(usable, q - np.where(usable, sw, 0.0) * second_moment(act, q, rule), -np.inf)
     return sw, sb
 
 

@@ -44,6 +44,7 @@ from typing import Any
 
 import numpy as np
 
+from .. import domains
 from ..activations.base import Activation
 from ..errors import InvalidParameterError, check_nonnegative, check_positive
 from ..numerics.hermite import SERIES_PASSES, coefficients_at, series_sum
@@ -70,6 +71,7 @@ __all__ = [
 ]
 
 Array = np.ndarray
+_Q_LO, _Q_HI = domains.Q_POSITIVE_MIN, domains.Q_MAX
 
 
 def _scaled(act: Activation, rule: QuadratureRule) -> QuadratureRule:
@@ -79,23 +81,16 @@ def _scaled(act: Activation, rule: QuadratureRule) -> QuadratureRule:
 
 
 def _q_array(q: Any, field: str = "q") -> Array:
-    if isinstance(q, (float, np.floating)) and math.isfinite(q) and q >= 0:
+    """q checked against its documented domain (0 or [Q_POSITIVE_MIN, Q_MAX], propcalc.domains)."""
+    if isinstance(q, (float, np.floating)) and (q == 0.0 or _Q_LO <= q <= _Q_HI):
         return np.float64(q)  # the common scalar case, without array reductions
-    arr = np.asarray(q, dtype=float)
-    if not np.all(np.isfinite(arr)) or np.any(arr < 0):
-        bad = arr[~(np.isfinite(arr) & (arr >= 0))].ravel()[0]
-        raise InvalidParameterError(field, "finite and >= 0", float(bad))
-    return arr
+    return domains.check_array("q", q, field)
 
 
 def _c_array(c: Any) -> Array:
     if isinstance(c, (float, np.floating)) and -1.0 <= c <= 1.0:
         return np.asarray(float(c))
-    arr = np.asarray(c, dtype=float)
-    ok = np.isfinite(arr) & (arr >= -1.0) & (arr <= 1.0)
-    if not np.all(ok):
-        raise InvalidParameterError("c", "in [-1, 1]", float(arr[~ok].ravel()[0]))
-    return arr
+    return domains.check_array("c", c)
 
 
 def first_moment(act: Activation, q: Any, rule: QuadratureRule = DEFAULT_RULE) -> Array:

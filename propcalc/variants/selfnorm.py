@@ -72,6 +72,7 @@ from typing import Any
 import numpy as np
 from scipy import optimize
 
+from .. import domains
 from ..activations import SELU_ALPHA, SELU_SCALE, Activation
 from ..errors import InvalidParameterError, check_finite, check_nonnegative, check_positive
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation
@@ -453,12 +454,11 @@ def alpha_dropout(keep_rate: float, mean: float = 0.0, variance: float = 1.0,
     alpha_prime : float
         Value of dropped units; default ``-lambda alpha`` of SELU.
     """
-    q = check_finite("keep_rate", keep_rate)
-    if not 0.0 < q <= 1.0:
-        raise InvalidParameterError("keep_rate", "in (0, 1]", keep_rate)
-    mu = check_finite("mean", mean)
-    nu = check_positive("variance", variance)
-    ap = check_finite("alpha_prime", alpha_prime)
+    # the documented domains (propcalc.domains) keep every intermediate below is finite
+    q = domains.check("keep_rate", keep_rate)
+    mu = domains.check("mean", mean)
+    nu = domains.check("variance", variance)
+    ap = domains.check("alpha_prime", alpha_prime)
     a = math.sqrt(nu / (q * nu + q * (1.0 - q) * (mu - ap) ** 2))
     b = mu - a * (q * mu + (1.0 - q) * ap)
     return AlphaDropout(q, ap, a, b, mu, nu)
