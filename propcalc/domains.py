@@ -94,6 +94,9 @@ class Domain:
     basic : str
         The constraint shown for a value of the wrong sign (default ``"> 0"``,
         ``">= 0"`` or ``"finite"`` from the bounds).
+    upper_is_basic : bool
+        Values above ``upper`` also get the basic constraint (the upper bound
+        is part of the definition, as 1 for a probability).
     """
 
     name: str
@@ -106,6 +109,7 @@ class Domain:
     units: str = ""
     reason: str = ""
     basic: str = ""
+    upper_is_basic: bool = False
 
     # -- words ---------------------------------------------------------------------------
     @property
@@ -147,6 +151,8 @@ class Domain:
 
     def _sign_ok(self, value: float) -> bool:
         if math.isnan(value) or (math.isinf(value) and not self.integer):
+            return False
+        if self.upper_is_basic and value > self.upper:
             return False
         if self.lower > 0 and not self.zero:
             return value > 0
@@ -291,6 +297,7 @@ _DOMAINS: tuple[Domain, ...] = (
            reason="a fan-in or fan-out of at most 10^7 (a 10^7 x 10^7 weight matrix cannot be "
                   "stored); keeps sizes exact in floating point"),
     Domain("keep_rate", 1e-3, 1.0, units="probability of keeping a unit", basic="in (0, 1]",
+           upper_is_basic=True,
            reason="dropout multiplies the weight variance by about 1 / keep_rate; below 1e-3 "
                   "the noise term would dominate the signal by more than 1000x and the "
                   "infinite-width limit behind the maps needs width x keep_rate >> 1"),

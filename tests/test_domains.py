@@ -171,3 +171,10 @@ def test_edge_of_chaos_of_a_constant_formula_leaks_no_warning():
     # warnings as errors, so the call itself is the check
     point = propcalc.edge_of_chaos(A("0*x"))
     assert not point.valid and "no gradient" in point.message
+
+
+def test_a_probability_above_1_gets_the_definition_not_the_bounds():
+    with pytest.raises(InvalidParameterError, match=r"^keep_rate must be in \(0, 1\], got 1.5$"):
+        check("keep_rate", 1.5)
+    with pytest.raises(InvalidParameterError, match=r"^keep_rate must be in \[0.001, 1\], got 0.0001$"):
+        check("keep_rate", 1e-4)
