@@ -91,6 +91,7 @@ from .meanfield.maps import (
 )
 from .numerics.quadrature import QuadratureRule, bivariate_expectation, gaussian_expectation
 from .init.recommend import Gains, InitPlan, Layer, LayerInit, gains, recommend
+from .networks import Network, NetworkDescriptionError, network
 
 __version__ = "0.1.0"
 
@@ -178,5 +179,8 @@ __all__ = [
     "variance_fixed_points",
     "variance_map",
     "variance_map_slope",
+    "Network",
+    "NetworkDescriptionError",
+    "network",
     "__version__",
 ]
