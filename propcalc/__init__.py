@@ -90,7 +90,10 @@ from .meanfield.maps import (
     variance_map_slope,
 )
 from .numerics.quadrature import QuadratureRule, bivariate_expectation, gaussian_expectation
-from .init.recommend import Gains, InitPlan, Layer, LayerInit, gains, recommend
+from .init.gains import Gains, gains
+from .init.layers import Layer, LayerInit
+from .init.plan import InitPlan
+from .init.planner import recommend
 from .networks import Network, NetworkDescriptionError, network
 
 __version__ = "0.1.0"

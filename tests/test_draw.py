@@ -29,7 +29,7 @@ from propcalc.init.draw import (
     semi_orthogonal,
     truncated_normal,
 )
-from propcalc.init.recommend import TRUNCATION, truncated_normal_factor
+from propcalc.init.layers import TRUNCATION, truncated_normal_factor
 
 TANH = propcalc.activation("tanh")
 LAYERS = [Layer.dense(200, 500), Layer.dense(500, 300), Layer.conv(16, 32, (3, 3)),

@@ -1,4 +1,4 @@
-"""Tests of gains and initialisation plans (propcalc.init.recommend).
+"""Tests of gains and initialisation plans (propcalc.init: layers, gains, plan, planner).
 
 References, each named beside its check:
 
@@ -37,7 +37,8 @@ from propcalc import (
     propagation,
     recommend,
 )
-from propcalc.init.recommend import COMMON_GAINS, TRUNCATION, truncated_normal_factor
+from propcalc.init.gains import COMMON_GAINS
+from propcalc.init.layers import TRUNCATION, truncated_normal_factor
 
 
 @pytest.fixture(autouse=True, scope="module")

@@ -1,6 +1,6 @@
 """Draw the weight and bias arrays of an initialisation plan.
 
-An :class:`~propcalc.recommend.InitPlan` gives, for every layer, the
+An :class:`~propcalc.init.plan.InitPlan` gives, for every layer, the
 variance ``sigma_w2 / fan_in`` of the weights and ``sigma_b2`` of the biases
 together with the number that fixes the chosen distribution. This module
 turns it into arrays, from a seeded :class:`numpy.random.Generator`:
@@ -9,7 +9,7 @@ turns it into arrays, from a seeded :class:`numpy.random.Generator`:
 * ``"uniform"``: ``W_ij ~ U(-a, a)`` with ``a = sqrt(3) std`` (variance
   ``a^2 / 3``);
 * ``"truncated_normal"``: a normal of standard deviation ``s`` cut at
-  ``+-2 s`` (:data:`propcalc.recommend.TRUNCATION`), ``s`` chosen so that the
+  ``+-2 s`` (:data:`propcalc.init.layers.TRUNCATION`), ``s`` chosen so that the
   truncated law has the planned variance (Johnson, Kotz & Balakrishnan 1994,
   eq. 13.134); drawn by rejection, which accepts 95.4% of normal draws;
 * ``"orthogonal"``: a Haar-random (semi-)orthogonal matrix of the weight's
@@ -40,22 +40,16 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 
 from ..errors import InvalidParameterError
 from ..results import OMIT, Result
-from .recommend import (
-    DISTRIBUTIONS,
-    TRUNCATION,
-    InitPlan,
-    Layer,
-    LayerInit,
-    truncated_normal_factor,
-)
+from .layers import DISTRIBUTIONS, TRUNCATION, Layer, LayerInit, truncated_normal_factor
 
 __all__ = [
+    "PlanLike",
     "BIAS_DISTRIBUTIONS",
     "LayerArrays",
     "PlanArrays",
@@ -227,6 +221,25 @@ def _check_layer_matches(index: int, planned: Layer, given: Layer) -> None:
             f"{given.kind} layer with weight shape {given.weight_shape}, fan_in {given.fan_in}")
 
 
+class PlanLike(Protocol):
+    """What :func:`draw_plan` reads from a plan (an :class:`~propcalc.init.plan.InitPlan`).
+
+    The plan type sits above this module (its ``draw`` method calls :func:`draw_plan`), so the
+    plan is described by the fields read, not imported.
+    """
+
+    activation: str
+    distribution: str
+    layers: tuple[LayerInit, ...]
+
+
+def _is_plan(plan: Any) -> bool:
+    layers = getattr(plan, "layers", None)
+    return (isinstance(getattr(plan, "activation", None), str)
+            and isinstance(getattr(plan, "distribution", None), str)
+            and isinstance(layers, tuple) and all(isinstance(x, LayerInit) for x in layers))
+
+
 _Streams = list[tuple[np.random.Generator, np.random.Generator]]
 
 
@@ -258,7 +271,7 @@ def draw_layer(init: LayerInit, distribution: str, rng: np.random.Generator, *,
     init : LayerInit
         One entry of ``InitPlan.layers``.
     distribution : str
-        One of :data:`propcalc.recommend.DISTRIBUTIONS`.
+        One of :data:`propcalc.init.layers.DISTRIBUTIONS`.
     rng : numpy.random.Generator
         Stream for the weight (and the bias, unless ``bias_rng`` is given).
     layer : Layer, optional
@@ -295,7 +308,7 @@ def draw_layer(init: LayerInit, distribution: str, rng: np.random.Generator, *,
                        math.sqrt(init.sigma_w2 / shape.fan_in), math.sqrt(init.sigma_b2))
 
 
-def draw_plan(plan: InitPlan, seed: SeedLike = None, *, bias_distribution: str = "normal",
+def draw_plan(plan: PlanLike, seed: SeedLike = None, *, bias_distribution: str = "normal",
               layers: Sequence[Layer] | None = None) -> PlanArrays:
     """Draw weight and bias arrays for every layer of an initialisation plan.
 
@@ -329,13 +342,13 @@ def draw_plan(plan: InitPlan, seed: SeedLike = None, *, bias_distribution: str =
     Examples
     --------
     >>> import propcalc
-    >>> from propcalc.draw import draw_plan
+    >>> from propcalc.init.draw import draw_plan
     >>> plan = propcalc.recommend(propcalc.activation("tanh"), widths=[8, 16, 4])
     >>> arrays = draw_plan(plan, seed=0)
     >>> [la.weight.shape for la in arrays.layers]
     [(16, 8), (4, 16)]
     """
-    if not isinstance(plan, InitPlan):
+    if not _is_plan(plan):
         raise InvalidParameterError("plan", "an InitPlan (from propcalc.recommend)",
                                     type(plan).__name__)
     if layers is not None:

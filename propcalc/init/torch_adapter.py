@@ -20,7 +20,8 @@ from typing import Any
 
 from .draw import SeedLike, draw_plan
 from ..errors import PropcalcError
-from .recommend import InitPlan, Layer
+from .layers import Layer
+from .plan import InitPlan
 
 __all__ = ["PlanMismatchError", "module_layers", "apply_plan", "TORCH_INSTALL_HINT"]
 

@@ -52,7 +52,7 @@ from ..meanfield.criticality import (
 from ..errors import InvalidParameterError, check_int, check_nonnegative, check_positive
 from ..meanfield.maps import correlation_map, variance_map
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
-from ..init.recommend import InitPlan
+from ..init.plan import InitPlan
 from ..meanfield.sweep import SweepResult, sweep
 
 __all__ = [

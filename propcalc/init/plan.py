@@ -1,0 +1,69 @@
+"""The initialisation plan: one :class:`~propcalc.init.layers.LayerInit` per layer and its justification.
+
+:func:`propcalc.recommend` (in :mod:`propcalc.init.planner`) makes an :class:`InitPlan`;
+:meth:`InitPlan.draw` draws its arrays through :mod:`propcalc.init.draw`, which sits below this
+module and knows only the per-layer types, so the imports run one way.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+from ..meanfield.criticality import Propagation
+from ..results import Result
+from .draw import PlanArrays, SeedLike, draw_plan
+from .layers import Layer, LayerInit
+
+__all__ = ["TARGETS", "MAX_DEPTH", "InitPlan"]
+
+#: What a plan can aim at (see :func:`propcalc.recommend`).
+TARGETS = ("auto", "edge", "variance", "bias")
+#: the deepest network a plan is made for (one LayerInit per layer is kept)
+MAX_DEPTH = 100_000
+
+
+@dataclass(frozen=True)
+class InitPlan(Result):
+    """A per-layer initialisation plan with its mean-field justification.
+
+    Attributes
+    ----------
+    activation : str
+    target : str
+        What was aimed at: "edge" (edge of chaos at an attracting q*),
+        "variance" (variance-preserving, sigma_b2 = 0), "bias" (edge of chaos
+        at a user-fixed sigma_b2).
+    target_description : str
+    distribution : str
+    sigma_w2, sigma_b2, q_star : float
+    depth : int
+    layers : tuple of LayerInit
+    propagation : Propagation
+        The report at the planned (sigma_w2, sigma_b2) for this depth.
+    trainable_depth : float or None
+    verdict : str
+        The requested depth against the predicted depth limit, in words.
+    depth_ok : bool
+    notes : tuple of str
+    """
+
+    activation: str
+    target: str
+    target_description: str
+    distribution: str
+    sigma_w2: float
+    sigma_b2: float
+    q_star: float | None
+    depth: int
+    layers: tuple[LayerInit, ...]
+    propagation: Propagation = field(repr=False)
+    trainable_depth: float | None
+    verdict: str
+    depth_ok: bool
+    notes: tuple[str, ...] = ()
+
+    def draw(self, seed: SeedLike = None, *, bias_distribution: str = "normal",
+             layers: Sequence[Layer] | None = None) -> PlanArrays:
+        """Draw weight and bias arrays for this plan (see :func:`propcalc.init.draw.draw_plan`)."""
+        return draw_plan(self, seed, bias_distribution=bias_distribution, layers=layers)
