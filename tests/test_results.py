@@ -23,8 +23,9 @@ import pytest
 import propcalc
 from propcalc.results import ABSENT_AS_NONE, OMIT, Result, inline, plain
 
-#: exported dataclasses that are inputs or settings, not results
-NOT_RESULTS = {"QuadratureRule"}
+#: exported dataclasses that are inputs or settings, not results (a Network's dict form is its
+#: description, :meth:`propcalc.Network.describe`, the input format)
+NOT_RESULTS = {"QuadratureRule", "Network"}
 
 
 def _engine_classes() -> list[type]:

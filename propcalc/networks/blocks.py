@@ -336,10 +336,6 @@ class Network:
             out["input_width"] = self.input_width
         return out
 
-    def to_dict(self) -> dict[str, Any]:
-        """Same as :meth:`describe`."""
-        return self.describe()
-
     def positions(self) -> Iterator[PositionInfo]:
         """Every stream position after the input, in order, with where it comes from."""
         index = 0
