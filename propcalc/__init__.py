@@ -81,6 +81,7 @@ from .errors import (
     UnknownActivationError,
 )
 from .activations import LIMITS as FORMULA_LIMITS, FormulaLimits, activation, formula_activation
+from .activations import SERVICE_LIMITS as SERVICE_FORMULA_LIMITS, formula_activation_within, formula_limit_rows
 from .jsonable import jsonable
 from .meanfield.maps import (
     chi_1,
@@ -150,6 +151,9 @@ __all__ = [
     "CriticalPoint",
     "FixedPoint",
     "FORMULA_LIMITS",
+    "SERVICE_FORMULA_LIMITS",
+    "formula_activation_within",
+    "formula_limit_rows",
     "FormulaError",
     "FormulaLimits",
     "Gains",

@@ -567,9 +567,11 @@ def test_second_moment_against_scipy_quad() -> None:
 # limits and vocabulary
 # ---------------------------------------------------------------------------------------
 def test_limits_are_exposed() -> None:
+    # the seven limits of the first version, unchanged, and the derivative limits of issue 11
     assert formula_module.LIMITS.to_dict() == {
         "max_length": 500, "max_nodes": 200, "max_nesting": 30, "max_tree_depth": 60,
-        "max_exponent": 64.0, "max_breakpoints": 64, "max_parameters": 32}
+        "max_exponent": 64.0, "max_breakpoints": 64, "max_parameters": 32,
+        "max_derivative_nodes": 2000, "max_derivative_length": 20000}
     assert "where" in formula_module.FUNCTIONS and "gelu" in formula_module.FUNCTIONS
     assert set(formula_module.CONSTANTS) == {"pi", "e"}
 
@@ -595,3 +597,37 @@ def test_parametrised_builtins_inside_formulas_use_their_defaults() -> None:
                                            r"its default slope = 0.01: write where\(x > 0, x, "
                                            r"slope \* x\) to set it"):
         propcalc.activation("leaky_relu(x)", slope=0.2)
+
+
+def test_limit_rows_are_generated_from_the_limits() -> None:
+    # one table per interface, generated from the code (issue 12 section 2: the README said 500
+    # characters and 32 parameters while the service allowed 200 and 8)
+    from propcalc.activations.formula import (LIMITS, SERVICE_LIMITS, FormulaLimits,
+                                              formula_limit_rows)
+
+    rows = formula_limit_rows()
+    assert [r.name for r in rows] == list(LIMITS.to_dict())
+    assert all(r.value == getattr(LIMITS, r.name) and r.meaning for r in rows)
+    service = {r.name: r.value for r in formula_limit_rows(SERVICE_LIMITS)}
+    assert service["max_length"] == 200 and service["max_parameters"] == 8
+    assert {k: v for k, v in service.items() if k not in ("max_length", "max_parameters")} == \
+        {k: v for k, v in LIMITS.to_dict().items() if k not in ("max_length", "max_parameters")}
+    assert rows[0].to_dict() == {"name": "max_length", "value": 500,
+                                 "meaning": "characters in the formula text"}
+    assert formula_limit_rows(FormulaLimits(max_nesting=5))[2].value == 5
+
+
+def test_service_limits_are_enforced_and_rechecked_for_cached_formulas() -> None:
+    from propcalc.activations.formula import SERVICE_LIMITS, formula_activation_within
+
+    long_text = "x" + " + 0.5 * x" * 25  # 251 characters: within the Python API, not the service
+    act = propcalc.activation(long_text)
+    with pytest.raises(FormulaError, match=r"formula is 251 characters long; the limit is 200"):
+        formula_activation_within(SERVICE_LIMITS, long_text)
+    params = {f"p{k}": 1.0 + k for k in range(9)}
+    text = "x * (" + " + ".join(params) + ")"
+    with pytest.raises(FormulaError, match=r"9 parameters given; the limit is 8"):
+        formula_activation_within(SERVICE_LIMITS, text, **params)
+    assert formula_activation_within(SERVICE_LIMITS, "x * sigmoid(x)") is \
+        propcalc.activation("x * sigmoid(x)")
+    assert act is propcalc.activation(long_text)

@@ -210,6 +210,21 @@ CATALOGUE: list[tuple[str, dict[str, float], str, int | None]] = [
     ("where(sin(x) > 0, x, 0)", {}, r"switches at \d+ or more points .* the limit is 64", None),
     ("1 + 0 * beta", {"beta": 1.0}, r"the formula does not use the variable x", None),
     ("1 / (x - 0.0005)", {}, r"the value has a pole at x = 0.0005: x - 0.0005 is 0 there", None),
+    # --- issue 11: even-order poles, near-poles, singular derivatives --------------------------
+    ("1/(x - 0.0005)**2", {}, r"the value has a pole at x = 0.0005: \(x - 0.0005\)\*\*2 is 0", None),
+    ("1/(x**2 + 1e-150)", {}, r"the value has a pole at x = 0: x\*\*2 \+ 1e-150 comes within "
+                              r"1e-150 of 0", None),
+    ("1/(1 + cos(x))", {}, r"pole at x = -3.14159: 1 \+ cos\(x\) is 0 there without changing "
+                           r"sign", None),
+    ("sqrt(abs(x - 0.0005))", {}, r"the derivative has a pole at x = 0.0005", None),
+    # --- issue 11: numbers at the ends of double precision -------------------------------------
+    ("x + 1e-400", {}, r"the number 1e-400 at column 5 underflows to 0 in double precision", 5),
+    ("1e-310 * x", {}, r"the number 1e-310 at column 1 is subnormal", 1),
+    ("1e-200 * 1e-200 * x", {}, r"the constant 1e-200 \* 1e-200 underflows to 0.0", None),
+    ("x * 1e200 * 1e200", {}, r"the value is not finite at x = -0\.001: x \* 1e\+200 \* 1e\+200 "
+                              r"overflows", None),
+    # --- issue 11: derivatives that explode when spelled out: refused by a limit, in time ------
+    ("abs(" * 31 + "x" + ")" * 31, {}, r"brackets nest more than 30 deep \(column 124\)", 124),
 ]
 
 

@@ -18,7 +18,8 @@ from .base import Activation
 from .builtins import (BUILTIN_DESCRIPTIONS, SELU_ALPHA, SELU_SCALE, builtin_activation,
                        builtin_names, builtin_parameters)
 from .cache import activation_caches, clear_activation_caches
-from .formula import FUNCTIONS, LIMITS, FormulaLimits, formula_activation
+from .formula import (FUNCTIONS, LIMITS, SERVICE_LIMITS, FormulaLimits, formula_activation,
+                      formula_activation_within, formula_limit_rows)
 from .names import canonical_builtin_name, did_you_mean, nearest_name
 from .profile import ActivationProperties
 from .resolver import activation, resolve
@@ -37,6 +38,9 @@ __all__ = [
     "SELU_SCALE",
     "FormulaLimits",
     "LIMITS",
+    "SERVICE_LIMITS",
+    "formula_activation_within",
+    "formula_limit_rows",
     "FUNCTIONS",
     "canonical_builtin_name",
     "nearest_name",

@@ -12,6 +12,7 @@ cached, the same name and parameters return the same object.
 from __future__ import annotations
 
 import math
+import sys
 from collections.abc import Callable, Mapping
 
 import numpy as np
@@ -31,10 +32,30 @@ __all__ = [
     "SELU_ALPHA",
     "SELU_SCALE",
     "BUILTIN_CACHE",
+    "parameter_value",
 ]
 
 Array = np.ndarray
 ArrayFn = Callable[[Array], Array]
+
+#: the smallest positive normal double; parameters and literals below it (subnormal) are refused
+SMALLEST_NORMAL = sys.float_info.min
+
+
+def parameter_value(field: str, value: object) -> float:
+    """``value`` as a float parameter, or an InvalidParameterError naming ``field``.
+
+    Refused: what is not a finite real number (:func:`~propcalc.errors.check_finite`:
+    NaN, infinities, integers too large for a double such as ``10**400``), and subnormal
+    magnitudes (below 2.2250738585072014e-308, where a double keeps fewer than 53 bits: such
+    a parameter is almost certainly an underflow, not a value anyone means).
+    """
+    out = check_finite(field, value)
+    if out != 0.0 and abs(out) < SMALLEST_NORMAL:
+        raise InvalidParameterError(field, f"0 or at least {SMALLEST_NORMAL!r} in magnitude (a "
+                                    "normal double)", value)
+    return out
+
 
 # Klambauer et al. 2017, "Self-normalizing neural networks", eq. (14):
 # the constants that make (mean, variance) = (0, 1) a fixed point.
@@ -190,7 +211,7 @@ def _relu() -> Activation:
 
 
 def _leaky_relu(slope: float = 0.01) -> Activation:
-    a = check_finite("slope", slope)
+    a = parameter_value("slope", slope)
     smooth = piecewise_smoothing(
         [Piece(-_INF, 0.0, (Term(a, 1),)), Piece(0.0, _INF, (Term(1.0, 1),))],
         [Piece(-_INF, 0.0, (Term(a),)), Piece(0.0, _INF, (Term(1.0),))])
@@ -199,7 +220,7 @@ def _leaky_relu(slope: float = 0.01) -> Activation:
 
 
 def _elu_builtin(alpha: float = 1.0) -> Activation:
-    a = check_finite("alpha", alpha)
+    a = parameter_value("alpha", alpha)
     if a < 0:
         raise InvalidParameterError("params.alpha", ">= 0", alpha)
     v, d = _elu(a)
@@ -232,7 +253,7 @@ def _silu() -> Activation:
 
 
 def _swish_builtin(beta: float = 1.0) -> Activation:
-    b = check_finite("beta", beta)
+    b = parameter_value("beta", beta)
     v, d = _swish(b)
     # swish(beta) changes over |x| ~ 1 / |beta|: let Activation.scale estimate it
     return _make("swish", v, d, (), {"beta": b}, scale=None)
@@ -324,7 +345,7 @@ def builtin_activation(name: str, **params: float) -> Activation:
         if key not in allowed:
             what = ", ".join(allowed) if allowed else "no parameters"
             raise InvalidParameterError(f"params.{key}", f"a parameter of {name} ({what})", params[key])
-    key = (name, tuple(sorted((k, check_finite(f"params.{k}", v)) for k, v in params.items())))
+    key = (name, tuple(sorted((k, parameter_value(f"params.{k}", v)) for k, v in params.items())))
     act = BUILTIN_CACHE.get(key)
     if act is None:
         act = BUILTIN_CACHE.put(key, _REGISTRY[name](**dict(key[1])))

@@ -16,13 +16,17 @@ from scipy import optimize
 
 from ...errors import FormulaError
 from ..builtins import builtin_activation
-from .compiler import compile_node
+from .compiler import compile_node, evaluate_many
 from .tree import Builder, Node, postorder
-from .vocabulary import BUILTIN_FUNCTIONS, LIMITS, REACH
+from .limits import LIMITS, FormulaLimits
+from .vocabulary import BUILTIN_FUNCTIONS, REACH
 
 __all__ = ["grid_points", "switch_functions", "roots_of", "breakpoints"]
 
 Array = np.ndarray
+
+#: switch functions evaluated together on the grid (bounds the memory of one pass)
+_BATCH = 16
 
 def _core_grid() -> Array:
     # k / 1000 exactly rounded: 0 and the integers are on the grid
@@ -46,6 +50,7 @@ _GRIDS: dict[str, Array] = {}
 
 
 def grid_points(kind: str) -> Array:
+    """The shared read-only grid ``"search"`` (breakpoints, poles) or ``"probe"`` (probes)."""
     g = _GRIDS.get(kind)
     if g is None:
         g = _search_grid() if kind == "search" else _probe_grid()
@@ -73,10 +78,11 @@ def switch_functions(root: Node, b: Builder) -> list[Node]:
             elif n.name in BUILTIN_FUNCTIONS:
                 for bp in builtin_activation(n.name).breakpoints:  # type: ignore[arg-type]
                     out.append(n.args[0] if bp == 0.0 else b.make("sub", (n.args[0], b.num(bp))))
-    return out
+    return list({id(n): n for n in out}.values())
 
 
-def roots_of(fn: Callable[[Array], Array], grid: Array) -> list[float]:
+def roots_of(fn: Callable[[Array], Array], grid: Array,
+             max_roots: int = LIMITS.max_breakpoints, values: Array | None = None) -> list[float]:
     """Points where ``fn`` changes sign, or starts or stops being exactly 0, on the grid.
 
     Sign changes are refined with Brent's method; the ends of runs of exact
@@ -84,14 +90,14 @@ def roots_of(fn: Callable[[Array], Array], grid: Array) -> list[float]:
     sign down to one ulp. An isolated zero counts only if the sign flips
     across it (a tangency such as ``x**2`` at 0 is no breakpoint).
     """
-    vals = fn(grid)
+    vals = fn(grid) if values is None else values
     code = np.where(np.isfinite(vals), np.sign(vals), 2.0)
     ends = np.flatnonzero(code[1:] != code[:-1])
     if ends.size == 0:
         return []
     flips = int(np.count_nonzero(np.abs(code[ends] - code[ends + 1]) == 2.0))
-    if flips > LIMITS.max_breakpoints:
-        _too_many_breakpoints(flips)
+    if flips > max_roots:
+        _too_many_breakpoints(flips, max_roots)
     starts = np.concatenate([[0], ends + 1])
     stops = np.concatenate([ends, [grid.size - 1]])
     runs = [(float(code[a]), int(a), int(z)) for a, z in zip(starts, stops)]
@@ -144,26 +150,45 @@ def roots_of(fn: Callable[[Array], Array], grid: Array) -> list[float]:
     return roots
 
 
-def breakpoints(root: Node, b: Builder) -> tuple[float, ...]:
+def breakpoints(root: Node, b: Builder, limits: FormulaLimits = LIMITS) -> tuple[float, ...]:
+    """The sorted breakpoints of the formula under ``root`` on [-1e4, 1e4].
+
+    Parameters
+    ----------
+    root : Node
+        The value of the formula.
+    b : Builder
+        The builder of ``root`` (the switch functions are made in it).
+    limits : FormulaLimits
+        ``max_breakpoints`` bounds how many there may be.
+
+    Raises
+    ------
+    FormulaError
+        If there are more than ``limits.max_breakpoints``.
+    """
     grid = grid_points("search")
     found: list[float] = []
-    for node in switch_functions(root, b):
-        found += roots_of(compile_node(node), grid)
+    switches = switch_functions(root, b)
+    for start in range(0, len(switches), _BATCH):  # one pass over the grid per batch
+        batch = switches[start:start + _BATCH]
+        for node, vals in zip(batch, evaluate_many(batch, grid)):
+            found += roots_of(compile_node(node), grid, limits.max_breakpoints, vals)
     found.sort()
     merged: list[float] = []
     for r in found:
         if merged and abs(r - merged[-1]) <= 1e-13 * max(1.0, abs(r)):
             continue
         merged.append(0.0 if r == 0 else r)
-    if len(merged) > LIMITS.max_breakpoints:
-        _too_many_breakpoints(len(merged))
+    if len(merged) > limits.max_breakpoints:
+        _too_many_breakpoints(len(merged), limits.max_breakpoints)
     return tuple(merged)
 
 
-def _too_many_breakpoints(count: int) -> None:
+def _too_many_breakpoints(count: int, limit: int) -> None:
     raise FormulaError(
         f"the formula switches at {count} or more points on [-1e4, 1e4] (where conditions, "
-        f"abs, max, min, kinked built-ins); the limit is {LIMITS.max_breakpoints}: "
+        f"abs, max, min, kinked built-ins); the limit is {limit}: "
         "a periodic condition such as where(sin(x) > 0, ...) is not supported")
 
 

@@ -18,7 +18,8 @@ from ..builtins import builtin_activation
 from .tree import Node, postorder
 from .vocabulary import CMP_FUNCS, FUNCTIONS_1, FUNCTIONS_2
 
-__all__ = ["NodeFn", "compile_nodes", "compile_node", "vectorise", "constant_value"]
+__all__ = ["NodeFn", "compile_nodes", "compile_node", "vectorise", "constant_value",
+           "evaluate_many"]
 
 Array = np.ndarray
 
@@ -154,6 +155,7 @@ def compile_nodes(root: Node) -> dict[int, NodeFn]:
 
 
 def vectorise(fn: NodeFn) -> Callable[[Array], Array]:
+    """A float function of an array from a node closure (warnings silenced, shape of x kept)."""
     def evaluate(x: Array) -> Array:
         x = np.asarray(x, dtype=float)
         with np.errstate(all="ignore"):
@@ -171,7 +173,55 @@ def compile_node(root: Node) -> Callable[[Array], Array]:
 
 
 def constant_value(n: Node) -> float:
+    """The value of a node that does not depend on x."""
     with np.errstate(all="ignore"):
         return float(compile_nodes(n)[id(n)](None, {}))
+
+
+def _postorder_all(roots: list[Node]) -> list[Node]:
+    seen: set[int] = set()
+    out: list[Node] = []
+    for r in roots:
+        for n in postorder(r):
+            if id(n) not in seen:
+                seen.add(id(n))
+                out.append(n)
+    return out
+
+
+def evaluate_many(nodes: list[Node], x: Array, chunk: int = 1 << 15) -> list[Array]:
+    """The values of several nodes of one graph at the points ``x``, in one pass.
+
+    Every distinct node under ``nodes`` is computed once per chunk of ``chunk`` points
+    (children before parents, each array freed after its last parent has used it), so
+    the cost is that of one evaluation of the union of their graphs, however many
+    outputs are asked for and however much they share. Warnings are silenced; the
+    outputs are float arrays shaped like ``x``.
+    """
+    x = np.asarray(x, dtype=float)
+    order = _postorder_all(nodes)
+    wanted = {id(n) for n in nodes}
+    uses: dict[int, int] = {}
+    for n in order:
+        for a in n.args:
+            uses[id(a)] = uses.get(id(a), 0) + 1
+    outputs: list[list[Array]] = [[] for _ in nodes]
+    for start in range(0, max(x.size, 1), chunk):
+        xs = x.reshape(-1)[start:start + chunk]
+        vals: dict[int, Any] = {}
+        left = dict(uses)
+        with np.errstate(all="ignore"):
+            for n in order:
+                kids = [(lambda v: (lambda x_, m: v))(vals[id(a)]) for a in n.args]
+                vals[id(n)] = _make_closure(n, kids)(xs, {})
+                for a in n.args:
+                    left[id(a)] -= 1
+                    if left[id(a)] == 0 and id(a) not in wanted:
+                        del vals[id(a)]
+        for k, n in enumerate(nodes):
+            out = np.asarray(vals[id(n)], dtype=float)
+            outputs[k].append(np.broadcast_to(out, xs.shape) if out.shape != xs.shape else out)
+    return [np.concatenate(parts).reshape(x.shape) if parts else np.zeros(x.shape)
+            for parts in outputs]
 
 

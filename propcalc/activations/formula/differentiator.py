@@ -49,6 +49,7 @@ class Differentiator:
         return self.substitute(t, u)
 
     def substitute(self, t: Node, u: Node) -> Node:
+        """The graph ``t`` with the variable x replaced by ``u`` (simplifying as it goes)."""
         memo: dict[int, Node] = {}
         for n in postorder(t):
             if n.op == "x":

@@ -4,25 +4,26 @@ Value and derivative are probed on a grid out to ``|x| = 1e4`` (what the Gaussia
 integrals reach); a non-finite value is a :class:`~propcalc.errors.FormulaError`
 that says where, which sub-expression failed, and names the stable built-in when
 the formula spells out an unstable form of one (``log(1 + exp(x))`` for
-``softplus(x)``...). Poles between grid points are found from the denominators.
+``softplus(x)``...). Poles between grid points are found by :mod:`.poles`.
 """
 
 from __future__ import annotations
 
 import math
+import sys
 
 import numpy as np
 
 from ...errors import FormulaError
-from .breakpoints import grid_points, roots_of
-from .compiler import NodeFn, constant_value, vectorise
-from .printer import precedence, to_text
+from .compiler import NodeFn, vectorise
+from .printer import precedence, short_text
 from .tree import Node, is_number, postorder
 from .vocabulary import REACH
 
-__all__ = ["probe", "check_poles", "unstable_patterns"]
+__all__ = ["probe", "check_constants", "unstable_patterns"]
 
 Array = np.ndarray
+
 
 def unstable_patterns(root: Node) -> list[str]:
     """Hints for sub-trees that spell out an unstable form of a stable built-in."""
@@ -41,13 +42,15 @@ def unstable_patterns(root: Node) -> list[str]:
                 return a
         return None
 
+    def t(n: Node) -> str:
+        return short_text(n, 200)
+
     def minus(u: Node) -> str:
         """Text of -u."""
         if u.op == "neg":
-            return to_text(u.args[0])
-        return f"-{to_text(u)}" if precedence(u) >= 8 else f"-({to_text(u)})"
+            return t(u.args[0])
+        return f"-{t(u)}" if precedence(u) >= 8 else f"-({t(u)})"
 
-    t = to_text
     for n in postorder(root):
         if call(n, "log") and (u := one_plus(n.args[0])) is not None and call(u, "exp"):
             hints.append(f"softplus({t(u.args[0])}) instead of {t(n)}")
@@ -100,7 +103,7 @@ def _culprit(root: Node, fns: dict[int, NodeFn], x0: float) -> tuple[Node, list[
 
 
 def _describe(node: Node, arg_vals: list[float], value: float) -> str:
-    text = to_text(node)
+    text = short_text(node)
     name = node.name if node.op == "call" else None
     a0 = arg_vals[0] if arg_vals else math.nan
     if name in ("log", "sqrt") and a0 < 0:
@@ -126,6 +129,28 @@ def _describe(node: Node, arg_vals: list[float], value: float) -> str:
 
 
 def probe(root: Node, fns: dict[int, NodeFn], x: Array, what: str, value_root: Node) -> None:
+    """Refuse ``root`` if it is not finite at some point of ``x``, naming the place.
+
+    Parameters
+    ----------
+    root : Node
+        The graph probed (the value or the derivative).
+    fns : dict
+        Its compiled closures (:func:`~.compiler.compile_nodes`).
+    x : ndarray
+        The points.
+    what : str
+        ``"value"`` or ``"derivative"``, for the message.
+    value_root : Node
+        The value of the formula (its unstable spellings are named in the message).
+
+    Raises
+    ------
+    FormulaError
+        At the point nearest 0 where ``root`` is not finite, naming the innermost
+        sub-expression that fails there and, if the formula spells out an unstable
+        form of a built-in, the stable one.
+    """
     fn = vectorise(fns[id(root)])
     vals = fn(x)
     bad = ~np.isfinite(vals)
@@ -145,55 +170,23 @@ def probe(root: Node, fns: dict[int, NodeFn], x: Array, what: str, value_root: N
     raise FormulaError(msg)
 
 
-def _reaches(root: Node, fns: dict[int, NodeFn], x0: float, target: Node) -> bool:
-    """True if ``target`` takes part in the value at x0 (the branches of where taken there)."""
-    xa = np.array([x0])
-    stack, seen = [root], set()
-    while stack:
-        node = stack.pop()
-        if node is target:
-            return True
-        if id(node) in seen:
-            continue
-        seen.add(id(node))
-        if node.op == "where":
-            with np.errstate(all="ignore"):
-                taken = bool(np.asarray(fns[id(node.args[0])](xa, {})).reshape(-1)[0])
-            stack.append(node.args[1] if taken else node.args[2])
-        elif node.op not in ("cmp", "and", "or", "not"):
-            stack.extend(node.args)
-    return False
+def check_constants(root: Node, fns: dict[int, NodeFn]) -> None:
+    """Refuse a constant sub-expression that underflows to 0 or to a subnormal number.
 
-
-def check_poles(root: Node, fns: dict[int, NodeFn]) -> None:
-    """Refuse poles between grid points: a denominator (or the base of a negative power)
-    that changes sign where it takes part in the value.
-
-    The probe grid only sees a pole it lands on exactly; ``1 / (x - 0.0005)``
-    would otherwise pass with huge finite values and a divergent integral. A
-    0/0 point (``sin(x - a) / (x - a)``) is a removable singularity and passes.
+    ``1e-200 * 1e-200 * x`` would otherwise be read as ``0 * x`` without a word (the
+    literal ``1e-400`` is refused by the reader for the same reason). Constants that
+    overflow are reported by :func:`probe`, with the place.
     """
-    grid = grid_points("search")
+    tiny = sys.float_info.min
     for n in postorder(root):
-        if n.op == "div" and n.args[1].has_x:
-            den, num = n.args[1], n.args[0]
-        elif n.op == "pow" and n.args[0].has_x and not n.args[1].has_x \
-                and constant_value(n.args[1]) < 0:
-            den, num = n.args[0], None
-        else:
+        if n.has_x or n.op not in ("mul", "div", "pow", "call"):
             continue
-        den_fn = vectorise(fns[id(den)])
-        num_fn = None if num is None else vectorise(fns[id(num)])
-        for r in roots_of(den_fn, grid):
-            if not _reaches(root, fns, r, n):
-                continue
-            if num_fn is not None:
-                near = num_fn(np.array([r, r - 1e-2, r + 1e-2]))
-                if abs(near[0]) <= 1e-9 * max(1.0, abs(near[1]), abs(near[2])):
-                    continue  # 0/0: removable
+        with np.errstate(all="ignore"):
+            args = [float(np.asarray(fns[id(a)](None, {}))) for a in n.args]
+            value = float(np.asarray(fns[id(n)](None, {})))
+        if not all(math.isfinite(a) and a != 0.0 for a in args) or not math.isfinite(value):
+            continue
+        if abs(value) < tiny and (n.op != "pow" or args[1] > 0 or abs(args[0]) > 1):
             raise FormulaError(
-                f"the value has a pole at x = {r:.6g}: {to_text(den)} is 0 there, in "
-                f"{to_text(n)}; the Gaussian integrals reach |x| up to {REACH:g}, so the "
-                "formula must be finite there")
-
-
+                f"the constant {short_text(n)} underflows to {value!r} in double precision "
+                f"(the smallest normal double is {tiny!r}): write 0 if you mean 0, or rescale")

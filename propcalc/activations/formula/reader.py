@@ -12,23 +12,26 @@ from __future__ import annotations
 import ast
 import difflib
 import math
+import re
+import sys
 import unicodedata
 from collections.abc import Mapping
 
 from ...errors import FormulaError
 from .compiler import constant_value
 from .tree import Builder, Node
+from .limits import LIMITS, FormulaLimits
 from .vocabulary import (ALLOWED_NODES, ARITY, BAD_BINOPS, BINOPS, CMPOPS, CONSTANTS, FUNCTIONS,
-                         LIMITS, LOOKALIKES, REFUSED_NODES, STATEMENTS)
+                         LOOKALIKES, REFUSED_NODES, STATEMENTS)
 
 __all__ = ["check_text", "parse", "check_size", "Reader"]
 
 
-def check_text(text: str) -> None:
-    """Checks on the raw characters, before anything parses them."""
-    if len(text) > LIMITS.max_length:
+def check_text(text: str, limits: FormulaLimits = LIMITS) -> int:
+    """Checks on the raw characters, before anything parses them; returns the bracket depth."""
+    if len(text) > limits.max_length:
         raise FormulaError(f"formula is {len(text)} characters long; the limit is "
-                           f"{LIMITS.max_length}")
+                           f"{limits.max_length}")
     if not text:
         raise FormulaError("formula is empty; write an expression in x such as 'x * sigmoid(x)'")
     if not text.strip():
@@ -64,20 +67,22 @@ def check_text(text: str) -> None:
         if ch == ";":
             raise FormulaError(f"';' at column {col}: a formula is a single expression, "
                                "not statements", col)
-    _check_nesting(text)
+    return _check_nesting(text, limits)
 
 
-def _check_nesting(text: str) -> None:
+def _check_nesting(text: str, limits: FormulaLimits) -> int:
     """Bracket depth and balance on the raw text (before ast.parse sees it)."""
     pairs = {")": "(", "]": "[", "}": "{"}
     stack: list[tuple[str, int]] = []
+    deepest = 0
     for i, ch in enumerate(text):
         if ch in "([{":
             stack.append((ch, i + 1))
-            if len(stack) > LIMITS.max_nesting:
+            deepest = max(deepest, len(stack))
+            if len(stack) > limits.max_nesting:
                 raise FormulaError(
-                    f"brackets nest more than {LIMITS.max_nesting} deep (column {i + 1}); "
-                    f"the limit is {LIMITS.max_nesting}", i + 1)
+                    f"brackets nest more than {limits.max_nesting} deep (column {i + 1}); "
+                    f"the limit is {limits.max_nesting}", i + 1)
         elif ch in pairs:
             if not stack:
                 raise FormulaError(f"unmatched {ch!r} at column {i + 1}", i + 1)
@@ -88,6 +93,7 @@ def _check_nesting(text: str) -> None:
     if stack:
         opener, at = stack[-1]
         raise FormulaError(f"{opener!r} at column {at} is never closed", at)
+    return deepest
 
 
 def parse(text: str) -> ast.expr:
@@ -124,7 +130,8 @@ def _syntax_error(body: str, exc: SyntaxError, offset: int) -> FormulaError:
     return FormulaError(f"could not read the formula at column {col}: {msg}", col)
 
 
-def check_size(root: ast.expr) -> None:
+def check_size(root: ast.expr, limits: FormulaLimits = LIMITS) -> tuple[int, int]:
+    """Count the expression nodes of the syntax tree and its depth; refuse beyond the limits."""
     count = 0
     depth_max = 0
     stack: list[tuple[ast.AST, int]] = [(root, 1)]
@@ -136,12 +143,13 @@ def check_size(root: ast.expr) -> None:
             depth += 1
         for child in ast.iter_child_nodes(node):
             stack.append((child, depth))
-    if count > LIMITS.max_nodes:
+    if count > limits.max_nodes:
         raise FormulaError(f"formula has {count} nodes (numbers, names, operators and calls); "
-                           f"the limit is {LIMITS.max_nodes}")
-    if depth_max > LIMITS.max_tree_depth:
+                           f"the limit is {limits.max_nodes}")
+    if depth_max > limits.max_tree_depth:
         raise FormulaError(f"formula nests {depth_max} operations deep; the limit is "
-                           f"{LIMITS.max_tree_depth}")
+                           f"{limits.max_tree_depth}")
+    return count, depth_max
 
 
 def _col(node: ast.AST) -> int:
@@ -151,11 +159,15 @@ def _col(node: ast.AST) -> int:
 class Reader:
     """Turns a whitelisted AST into interned nodes (no simplification)."""
 
-    def __init__(self, text: str, params: Mapping[str, float], builder: Builder) -> None:
+    def __init__(self, text: str, params: Mapping[str, float], builder: Builder,
+                 limits: FormulaLimits = LIMITS) -> None:
         self.text = text
         self.params = params
         self.b = builder
+        self.limits = limits
         self.used: set[str] = set()
+        #: largest |p| of a constant exponent read so far
+        self.largest_exponent = 0.0
 
     # -- helpers ----------------------------------------------------------------------
     def _segment(self, node: ast.AST) -> str:
@@ -197,6 +209,7 @@ class Reader:
 
     # -- arithmetic expressions -------------------------------------------------------
     def expr(self, node: ast.expr) -> Node:
+        """The node of an arithmetic expression (conditions only inside where)."""
         b = self.b
         if isinstance(node, ast.Constant):
             return self.constant(node)
@@ -229,6 +242,7 @@ class Reader:
         raise self._refuse(node)
 
     def constant(self, node: ast.Constant) -> Node:
+        """A number literal: finite, not underflowing, not subnormal."""
         v = node.value
         col = _col(node)
         if isinstance(v, bool) or v is None:
@@ -250,9 +264,19 @@ class Reader:
         if not math.isfinite(f):
             raise FormulaError(f"the number at column {col} is too large (it is not a finite "
                                "double-precision number)", col)
+        if abs(f) < sys.float_info.min and isinstance(v, float):
+            shown = self._segment(node)
+            mantissa = re.split("[eE]", shown.replace("_", ""))[0]
+            if f != 0.0 or re.search("[1-9]", mantissa):
+                what = ("underflows to 0 in double precision" if f == 0.0 else
+                        "is subnormal in double precision (fewer than 53 significant bits)")
+                raise FormulaError(
+                    f"the number {shown} at column {col} {what}: the smallest normal double "
+                    f"is {sys.float_info.min!r}; write 0 if you mean 0", col)
         return self.b.num(f)
 
     def name(self, node: ast.Name) -> Node:
+        """x, a constant or a given parameter; anything else is refused with a hint."""
         ident = node.id
         col = _col(node)
         if ident == "x":
@@ -277,6 +301,7 @@ class Reader:
                            f"parameters given: {given}", col)
 
     def binop(self, node: ast.BinOp) -> Node:
+        """+, -, *, / and ** (the other binary operators are refused with a hint)."""
         op = BINOPS.get(type(node.op))
         if op is None:
             sym, what = BAD_BINOPS.get(type(node.op), ("?", "this operator is not allowed"))
@@ -287,6 +312,7 @@ class Reader:
         return self.b.make(op, (self.expr(node.left), self.expr(node.right)))
 
     def power(self, node: ast.BinOp) -> Node:
+        """a**b, with constant exponents bounded and power towers refused."""
         col = self._find("**", node.left.end_col_offset or 0)
         inner = node.right
         while isinstance(inner, ast.UnaryOp):
@@ -301,7 +327,9 @@ class Reader:
         expo = self.expr(node.right)
         if not expo.has_x:
             value = constant_value(expo)
-            limit = LIMITS.max_exponent
+            limit = self.limits.max_exponent
+            if math.isfinite(value):
+                self.largest_exponent = max(self.largest_exponent, abs(value))
             if not math.isfinite(value) or abs(value) > limit:
                 shown = self._segment(node.right)
                 if expo.op == "param":
@@ -312,6 +340,7 @@ class Reader:
         return self.b.make("pow", (base, expo))
 
     def call(self, node: ast.Call) -> Node:
+        """A call of a known function with its arity, by position only."""
         func = node.func
         col = _col(node)
         if not isinstance(func, ast.Name):
@@ -369,6 +398,7 @@ class Reader:
         return sym
 
     def condition(self, node: ast.expr) -> Node:
+        """The condition of where: comparisons joined by and, or, not."""
         b = self.b
         if isinstance(node, ast.Compare):
             syms = [self._cmp_symbol(op, node) for op in node.ops]

@@ -50,10 +50,12 @@ def plain_number(n: Node) -> float | None:
 
 
 def is_number(n: Node, v: float) -> bool:
+    """True if ``n`` is the number ``v`` (named or not)."""
     return n.op == "num" and n.value == v
 
 
 def fold(fn: Callable[[Any, Any], Any], a: float, b: float) -> float | None:
+    """``fn(a, b)`` in double precision, or None when it is not finite."""
     with np.errstate(all="ignore"):
         out = float(fn(np.float64(a), np.float64(b)))
     return out if math.isfinite(out) else None
@@ -67,6 +69,7 @@ class Builder:
 
     def make(self, op: str, args: tuple[Node, ...] = (), value: float | None = None,
              name: str | None = None) -> Node:
+        """The interned node (op, args, value, name): made once, then shared."""
         vkey = None if value is None else (value, math.copysign(1.0, value))
         key = (op, vkey, name, tuple(id(a) for a in args))
         node = self._table.get(key)
@@ -76,10 +79,12 @@ class Builder:
         return node
 
     def num(self, v: float, name: str | None = None) -> Node:
+        """A number (``name`` for the constants pi and e)."""
         return self.make("num", value=float(v), name=name)
 
     # -- simplifying constructors (used for derivatives) --------------------------------
     def s_neg(self, a: Node) -> Node:
+        """-a, simplified (numbers folded, double negation removed)."""
         if a.op == "num" and a.name is None:
             return self.num(-a.value)  # type: ignore[operator]
         if a.op == "neg":
@@ -87,6 +92,7 @@ class Builder:
         return self.make("neg", (a,))
 
     def s_add(self, a: Node, b: Node) -> Node:
+        """a + b, simplified (0 dropped, numbers folded, + -b as - b)."""
         if is_number(a, 0.0):
             return b
         if is_number(b, 0.0):
@@ -101,6 +107,7 @@ class Builder:
         return self.make("add", (a, b))
 
     def s_sub(self, a: Node, b: Node) -> Node:
+        """a - b, simplified (0 dropped, a - a = 0, numbers folded)."""
         if is_number(b, 0.0):
             return a
         if is_number(a, 0.0):
@@ -115,6 +122,7 @@ class Builder:
         return self.make("sub", (a, b))
 
     def s_mul(self, a: Node, b: Node) -> Node:
+        """a * b, simplified (0 and +-1 factors, numbers folded, signs pulled out)."""
         if is_number(a, 0.0) or is_number(b, 0.0):
             return self.num(0.0)
         if is_number(a, 1.0):
@@ -135,6 +143,7 @@ class Builder:
         return self.make("mul", (a, b))
 
     def s_div(self, a: Node, b: Node) -> Node:
+        """a / b, simplified (0 / b, a / 1, numbers folded, signs pulled out)."""
         if is_number(a, 0.0):
             return self.num(0.0)
         if is_number(b, 1.0):
@@ -150,6 +159,7 @@ class Builder:
         return self.make("div", (a, b))
 
     def s_pow(self, a: Node, b: Node) -> Node:
+        """a ** b, simplified (a**1 = a, a**0 = 1)."""
         if is_number(b, 1.0):
             return a
         if is_number(b, 0.0):
@@ -157,11 +167,13 @@ class Builder:
         return self.make("pow", (a, b))
 
     def s_where(self, c: Node, a: Node, b: Node) -> Node:
+        """where(c, a, b), simplified (equal branches: a)."""
         if a is b:
             return a
         return self.make("where", (c, a, b))
 
     def s_call(self, name: str, *args: Node) -> Node:
+        """name(args), simplified (log(e) = 1)."""
         if name == "log" and args[0].op == "num" and args[0].name == "e":
             return self.num(1.0)
         return self.make("call", tuple(args), name=name)

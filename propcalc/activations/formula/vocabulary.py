@@ -1,5 +1,5 @@
 """What a formula may contain: functions and their arities, exact derivative texts, constants,
-operators, the syntax the whitelist refuses, and the limits on size.
+operators, and the syntax the whitelist refuses (the limits on size are in :mod:`.limits`).
 
 Everything here is data; the reader (:mod:`.reader`), the differentiator
 (:mod:`.differentiator`) and the compiler (:mod:`.compiler`) read it.
@@ -11,55 +11,19 @@ import ast
 import math
 import operator
 from collections.abc import Callable
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 from scipy import special
 
-from ...results import Result
 from ..builtins import SELU_ALPHA, SELU_SCALE, builtin_names
 
 __all__ = [
-    "FormulaLimits", "LIMITS", "REACH", "FUNCTIONS", "CONSTANTS", "FUNCTIONS_1", "FUNCTIONS_2",
+    "REACH", "FUNCTIONS", "CONSTANTS", "FUNCTIONS_1", "FUNCTIONS_2",
     "DERIVATIVE_TEXT", "BUILTIN_FUNCTIONS", "DEFAULTED", "ARITY", "BINOPS", "BAD_BINOPS",
     "CMPOPS", "CMP_FUNCS", "REFUSED_NODES", "ALLOWED_NODES", "STATEMENTS", "LOOKALIKES",
 ]
 
-
-@dataclass(frozen=True)
-class FormulaLimits(Result):
-    """Limits on typed formulas (the HTTP service takes formulas from anyone).
-
-    Attributes
-    ----------
-    max_length : int
-        Characters in the formula text.
-    max_nodes : int
-        Expression nodes in the syntax tree (numbers, names, operators, calls).
-    max_nesting : int
-        Depth of nested brackets, checked on the raw text before parsing.
-    max_tree_depth : int
-        Depth of the syntax tree (operator chains such as ``x + x + ... + x``).
-    max_exponent : float
-        Bound on ``|p|`` for a constant exponent in ``a**p``; power towers
-        ``a**b**c`` are refused outright.
-    max_breakpoints : int
-        Breakpoints on [-1e4, 1e4].
-    max_parameters : int
-        Named parameters per formula.
-    """
-
-    max_length: int = 500
-    max_nodes: int = 200
-    max_nesting: int = 30
-    max_tree_depth: int = 60
-    max_exponent: float = 64.0
-    max_breakpoints: int = 64
-    max_parameters: int = 32
-
-
-LIMITS = FormulaLimits()
 
 #: reach of the probes: the quadrature nodes of the maps go out to about this |x|
 REACH = 1e4
