@@ -86,3 +86,28 @@ def test_formulas_resolve_and_keep_their_errors() -> None:
     with pytest.raises(FormulaError, match="unknown function 'Tanh' at column 1 "
                                            r"\(did you mean tanh\?\)"):
         resolve("Tanh(x)")
+
+
+def test_unknown_builtin_parameters_suggest_the_nearest() -> None:
+    with pytest.raises(InvalidParameterError, match=r"params.slop must be a parameter of leaky_relu "
+                                                    r"\(slope\), got 0.1; did you mean slope\?"):
+        propcalc.activation("leaky_relu", slop=0.1)
+    with pytest.raises(InvalidParameterError) as info:  # nothing close: no hint (service text)
+        propcalc.activation("leaky_relu", alpha=0.1)
+    assert str(info.value) == "params.alpha must be a parameter of leaky_relu (slope), got 0.1"
+
+
+def test_canonical_name_works_for_any_vocabulary() -> None:
+    from propcalc.activations import canonical_name
+
+    assert canonical_name("Edge-Of-Chaos", ["edge_of_chaos", "plan"]) == "edge_of_chaos"
+    assert canonical_name("edgeofchaos", ["edge_of_chaos"]) == "edge_of_chaos"
+    assert canonical_name("edge of", ["edge_of_chaos"]) is None
+
+
+def test_builtin_activation_itself_suggests() -> None:
+    from propcalc.activations import builtin_activation
+
+    with pytest.raises(UnknownActivationError, match=r"unknown activation 'gleu' \(did you mean "
+                                                     r"gelu\?\); built-ins are"):
+        builtin_activation("gleu")

@@ -23,6 +23,7 @@ from ..numerics.smoothing import (Piece, Smoothing, Term, erf_smoothing, gelu_sm
                                   linear_smoothing, piecewise_smoothing)
 from .base import Activation
 from .cache import ActivationCache
+from .names import canonical_name, did_you_mean
 
 __all__ = [
     "builtin_activation",
@@ -33,6 +34,7 @@ __all__ = [
     "SELU_SCALE",
     "BUILTIN_CACHE",
     "parameter_value",
+    "canonical_builtin_name",
 ]
 
 Array = np.ndarray
@@ -304,6 +306,20 @@ _PARAMS: dict[str, tuple[str, ...]] = {"leaky_relu": ("slope",), "elu": ("alpha"
 BUILTIN_CACHE: ActivationCache[Activation] = ActivationCache("built-in activations", 256)
 
 
+def canonical_builtin_name(text: str) -> str | None:
+    """The built-in that ``text`` names in any case and with ``-``/``_``/space separators.
+
+    ``"Gelu"`` -> ``"gelu"``, ``"leaky-relu"`` -> ``"leaky_relu"``, ``"hardtanh"`` ->
+    ``"hard_tanh"``; None for anything else (see :func:`~.names.canonical_name`).
+
+    Examples
+    --------
+    >>> canonical_builtin_name("Leaky-ReLU")
+    'leaky_relu'
+    """
+    return canonical_name(text, _REGISTRY)
+
+
 def builtin_names() -> tuple[str, ...]:
     """Names of the built-in activations, in a stable order."""
     return tuple(_REGISTRY)
@@ -339,12 +355,15 @@ def builtin_activation(name: str, **params: float) -> Activation:
     """
     if name not in _REGISTRY:
         raise UnknownActivationError(
-            f"unknown activation {name!r}; built-ins are: {', '.join(_REGISTRY)}")
+            f"unknown activation {name!r}{did_you_mean(name, _REGISTRY)}; built-ins are: "
+            f"{', '.join(_REGISTRY)}")
     allowed = _PARAMS.get(name, ())
     for key in params:
         if key not in allowed:
             what = ", ".join(allowed) if allowed else "no parameters"
-            raise InvalidParameterError(f"params.{key}", f"a parameter of {name} ({what})", params[key])
+            hint = did_you_mean(key, allowed).strip(" ()")
+            raise InvalidParameterError(f"params.{key}", f"a parameter of {name} ({what})",
+                                        params[key], hint=hint)
     key = (name, tuple(sorted((k, parameter_value(f"params.{k}", v)) for k, v in params.items())))
     act = BUILTIN_CACHE.get(key)
     if act is None:

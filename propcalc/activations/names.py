@@ -1,11 +1,13 @@
-"""Names of built-in activations as people type them, and the nearest name for a typo.
+"""Names as people type them, and the nearest name for a typo.
 
-``Gelu``, ``GELU``, ``leaky-relu``, ``Leaky ReLU`` and ``hardtanh`` all mean a built-in: case does
-not matter, and the separators ``-``, ``_`` and spaces are interchangeable where the name has one
-(or may all be left out, as in ``LeakyReLU``). For a name that is not known,
-:func:`nearest_name` picks the closest choice (``difflib`` on the normalised spellings), so
-every place that meets an unknown name (the resolver, the CLI, the service) can say
-"did you mean gelu?" in the same way.
+``Gelu``, ``GELU``, ``leaky-relu``, ``Leaky ReLU`` and ``hardtanh`` all mean the built-in
+``gelu``, ``leaky_relu`` or ``hard_tanh``: case does not matter, and the separators ``-``, ``_``
+and spaces are interchangeable where the name has one (or may all be left out, as in
+``LeakyReLU``); :func:`canonical_name` finds the name meant among a list of choices. For a name
+that is not known, :func:`nearest_name` picks the closest choice (``difflib`` on the normalised
+spellings), so every place that meets an unknown name (activations, their parameters, the CLI,
+the service) says "did you mean gelu?" in the same way. Nothing here depends on what the
+choices are.
 """
 
 from __future__ import annotations
@@ -14,9 +16,7 @@ import difflib
 import re
 from collections.abc import Iterable
 
-from .builtins import builtin_names
-
-__all__ = ["name_key", "canonical_builtin_name", "nearest_name", "did_you_mean"]
+__all__ = ["name_key", "canonical_name", "nearest_name", "did_you_mean"]
 
 _SEPARATORS = re.compile(r"[-_\s]+")
 _NAME_LIKE = re.compile(r"[A-Za-z0-9][A-Za-z0-9_\-\s]*")
@@ -32,32 +32,35 @@ def _spelling(text: str) -> str:
     return _SEPARATORS.sub("_", text.strip().lower()).strip("_")
 
 
-def canonical_builtin_name(text: str) -> str | None:
-    """The built-in activation that ``text`` names, in whatever case and separators, else None.
+def canonical_name(text: str, choices: Iterable[str]) -> str | None:
+    """The choice that ``text`` names, in whatever case and separators, else None.
 
     Parameters
     ----------
     text : str
         A name as typed: ``"Gelu"``, ``"leaky-relu"``, ``"Hard Tanh"``...
+    choices : iterable of str
+        The names that exist, spelled in lower case with ``_`` between words.
 
     Returns
     -------
     str or None
-        The built-in's own name (``"gelu"``, ``"leaky_relu"``, ``"hard_tanh"``), or None when
-        ``text`` is not a name (it contains brackets or operators) or names no built-in.
+        The choice as spelled there, or None when ``text`` is not a name (it contains
+        brackets or operators) or names none of the choices. Separators must sit where the
+        choice has one, or be left out altogether: ``"s - elu"`` is not ``"selu"``.
 
     Examples
     --------
-    >>> canonical_builtin_name("Leaky-ReLU")
+    >>> canonical_name("Leaky-ReLU", ["relu", "leaky_relu"])
     'leaky_relu'
-    >>> canonical_builtin_name("x * tanh(x)") is None
+    >>> canonical_name("x * tanh(x)", ["tanh"]) is None
     True
     """
     if not isinstance(text, str) or not _NAME_LIKE.fullmatch(text.strip()):
         return None
     spelled = _spelling(text)
     joined = "_" not in spelled  # "LeakyReLU", "hardtanh": no separator typed at all
-    for name in builtin_names():
+    for name in choices:
         if spelled == name or (joined and spelled == name_key(name)):
             return name
     return None

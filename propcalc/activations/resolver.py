@@ -15,10 +15,10 @@ from typing import Any
 
 from ..errors import ActivationTypeError, InvalidParameterError, UnknownActivationError
 from .base import Activation
-from .builtins import builtin_activation, builtin_names
+from .builtins import builtin_activation, builtin_names, canonical_builtin_name
 from .formula import formula_activation
 from .formula.vocabulary import ARITY, CONSTANTS
-from .names import canonical_builtin_name, did_you_mean
+from .names import did_you_mean
 
 __all__ = ["resolve", "activation"]
 

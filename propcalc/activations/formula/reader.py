@@ -10,7 +10,6 @@ place, its 1-based column.
 from __future__ import annotations
 
 import ast
-import difflib
 import math
 import re
 import sys
@@ -18,6 +17,7 @@ import unicodedata
 from collections.abc import Mapping
 
 from ...errors import FormulaError
+from ..names import did_you_mean
 from .compiler import constant_value
 from .tree import Builder, Node
 from .limits import LIMITS, FormulaLimits
@@ -294,9 +294,7 @@ class Reader:
                                f"{ident}(x)", col)
         given = ", ".join(sorted(self.params)) or "none"
         known = ["x", *CONSTANTS, *self.params]
-        close = [ident.lower()] if ident.lower() in known else \
-            difflib.get_close_matches(ident, known, n=1)
-        hint = f" (did you mean {close[0]}?)" if close else ""
+        hint = did_you_mean(ident, known)
         raise FormulaError(f"unknown name {ident!r} at column {col}{hint}; the variable is x, "
                            f"parameters given: {given}", col)
 
@@ -363,8 +361,7 @@ class Reader:
         if fname in self.params:
             raise FormulaError(f"{fname!r} is a parameter, not a function (column {col})", col)
         if fname not in ARITY:
-            close = difflib.get_close_matches(fname, FUNCTIONS, n=1)
-            hint = f" (did you mean {close[0]}?)" if close else ""
+            hint = did_you_mean(fname, FUNCTIONS)
             raise FormulaError(f"unknown function {fname!r} at column {col}{hint}; known: "
                                f"{', '.join(FUNCTIONS)}", col)
         for kw in node.keywords:
