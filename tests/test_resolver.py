@@ -111,3 +111,9 @@ def test_builtin_activation_itself_suggests() -> None:
     with pytest.raises(UnknownActivationError, match=r"unknown activation 'gleu' \(did you mean "
                                                      r"gelu\?\); built-ins are"):
         builtin_activation("gleu")
+
+
+def test_very_long_names_are_refused_by_the_length_limit() -> None:
+    # a megabyte of letters is neither matched nor echoed back (common practice, no source)
+    with pytest.raises(FormulaError, match=r"formula is 1000000 characters long; the limit is 500"):
+        propcalc.activation("a" * 10**6)

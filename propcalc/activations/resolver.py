@@ -16,7 +16,7 @@ from typing import Any
 from ..errors import ActivationTypeError, InvalidParameterError, UnknownActivationError
 from .base import Activation
 from .builtins import builtin_activation, builtin_names, canonical_builtin_name
-from .formula import formula_activation
+from .formula import LIMITS, formula_activation
 from .formula.vocabulary import ARITY, CONSTANTS
 from .names import did_you_mean
 
@@ -73,6 +73,8 @@ def resolve(spec: Any, field: str = "act", **params: float) -> Activation:
         return spec
     if not isinstance(spec, str):
         raise ActivationTypeError(field, _ACCEPTED, spec)
+    if len(spec) > LIMITS.max_length:  # refused as a formula, before any name matching
+        return formula_activation(spec, **params)
     name = canonical_builtin_name(spec)
     if name is not None:
         return builtin_activation(name, **params)
