@@ -61,7 +61,7 @@ from .variants.selfnorm import (
     mean_variance_map,
     self_normalization,
 )
-from .meanfield.simulate import LayerMeasurement, Simulation, mean_field_trajectory, simulate, simulate_plan
+from .meanfield.simulate import LayerMeasurement, Simulation, mean_field_trajectory, simulate_plan
 from .variants.spectrum import (
     IsometryAdvice,
     JacobianSpectrum,
@@ -95,7 +95,18 @@ from .init.gains import Gains, gains
 from .init.layers import Layer, LayerInit
 from .init.plan import InitPlan
 from .init.planner import recommend
-from .networks import Network, NetworkDescriptionError, network
+from .networks import (
+    BlockRecord,
+    Network,
+    NetworkDescriptionError,
+    NetworkPropagation,
+    NetworkSimulation,
+    NetworkSummary,
+    network,
+    network_propagation,
+    simulate,
+    simulate_network,
+)
 
 __version__ = "0.1.0"
 
@@ -186,8 +197,14 @@ __all__ = [
     "variance_fixed_points",
     "variance_map",
     "variance_map_slope",
+    "BlockRecord",
     "Network",
     "NetworkDescriptionError",
+    "NetworkPropagation",
+    "NetworkSimulation",
+    "NetworkSummary",
     "network",
+    "network_propagation",
+    "simulate_network",
     "__version__",
 ]

@@ -107,7 +107,7 @@ def test_network_passes_a_network_through():
      "/blocks/0/dense/sigma_w2", "> 0"),
     ({"blocks": [DENSE, DENSE, DENSE, {"residual": {"branch": [
         {"dense": {"sigma_w2": "2", "sigma_b2": 0.0}}]}}]},
-     "/blocks/3/residual/branch/0/dense/sigma_w2", "finite number"),
+     "/blocks/3/residual/branch/0/dense/sigma_w2", "a finite real number"),
     ({"blocks": [{"residual": {"branch": [RELU]}}]}, "/blocks/0/residual/branch",
      "dense, convolution or attention"),
     ({"blocks": [{"activation": "relux"}]}, "/blocks/0/activation/formula", "did you mean relu"),
@@ -122,9 +122,14 @@ def test_network_passes_a_network_through():
     ({"blocks": [{"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "bias": 0}}]},
      "/blocks/0/dense/bias", "a field of dense"),
     ({"blocks": [{"dense": {"sigma_w2": True, "sigma_b2": 0.0}}]}, "/blocks/0/dense/sigma_w2",
-     "finite number"),
+     "a finite real number"),
     ({"blocks": [{"dense": {"sigma_w2": float("nan"), "sigma_b2": 0.0}}]},
-     "/blocks/0/dense/sigma_w2", "finite number"),
+     "/blocks/0/dense/sigma_w2", "a finite real number"),
+    # the bounds of propcalc.domains (sigma_w2 in [1e-6, 1e4])
+    ({"blocks": [{"dense": {"sigma_w2": 1e300, "sigma_b2": 0.0}}]},
+     "/blocks/0/dense/sigma_w2", "in [1e-6, 10000]"),
+    ({"blocks": [{"dense": {"sigma_w2": 1.0, "sigma_b2": 1e-300}}]},
+     "/blocks/0/dense/sigma_b2", "0 or in [1e-100, 10000]"),
     ({"blocks": [{"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 2.5}}]},
      "/blocks/0/dense/width", "integer"),
     ({"blocks": [{"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 10**400}}]},
@@ -136,8 +141,10 @@ def test_network_passes_a_network_through():
     ([DENSE], "", "object"),
     ({"blocks": [{"norm": "group"}]}, "/blocks/0/norm/kind", '"layer", "rms", "batch"'),
     ({"blocks": [{"norm": 3}]}, "/blocks/0/norm", "a string or an object"),
-    ({"blocks": [{"dropout": {"keep_rate": 0.0}}]}, "/blocks/0/dropout/keep_rate", "> 0"),
-    ({"blocks": [{"dropout": {"keep_rate": 1.5}}]}, "/blocks/0/dropout/keep_rate", "<= 1"),
+    ({"blocks": [{"dropout": {"keep_rate": 0.0}}]}, "/blocks/0/dropout/keep_rate", "in (0, 1]"),
+    ({"blocks": [{"dropout": {"keep_rate": 1.5}}]}, "/blocks/0/dropout/keep_rate", "in (0, 1]"),
+    ({"blocks": [{"dropout": {"keep_rate": 1e-4}}]}, "/blocks/0/dropout/keep_rate",
+     "in [0.001, 1]"),
     ({"blocks": [{"repeat": {"times": 0, "blocks": [DENSE]}}]}, "/blocks/0/repeat/times", ">= 1"),
     ({"blocks": [{"convolution": {"sigma_w2": 1.0, "sigma_b2": 0.0, "kernel": [3, 3],
                                   "stride": [1, 2, 3]}}]}, "/blocks/0/convolution/stride",
@@ -211,7 +218,8 @@ def test_schema_describes_every_field_of_the_table():
         assert set(body["required"]) == {f.name for f in spec.fields if f.required}
         assert body["additionalProperties"] is False
     dense = schema["$defs"]["dense"]["properties"]["dense"]["properties"]
-    assert dense["sigma_w2"]["exclusiveMinimum"] == 0.0
+    assert dense["sigma_w2"]["minimum"] == propcalc.domains.SIGMA_W2_MIN  # propcalc.domains
+    assert dense["sigma_b2"]["anyOf"][0] == {"const": 0}
     json.dumps(schema)  # plain JSON
     rows = description_fields()
     assert {(r["kind"], r["field"]) for r in rows} == {

@@ -3,7 +3,13 @@
 * :mod:`~propcalc.networks.fields`: the description format (every block kind, its fields, types,
   defaults and limits) and its JSON Schema;
 * :mod:`~propcalc.networks.blocks`: the validated blocks and :class:`Network`;
-* :mod:`~propcalc.networks.description`: :func:`network`, the validator.
+* :mod:`~propcalc.networks.description`: :func:`network`, the validator;
+* :mod:`~propcalc.networks.kernels`, :mod:`~propcalc.networks.rules`,
+  :mod:`~propcalc.networks.walk`: the moments, the rule of every block kind, the walk;
+* :mod:`~propcalc.networks.propagate`: :func:`network_propagation` and its result;
+* :mod:`~propcalc.networks.summary`, :mod:`~propcalc.networks.spatial`: what it means;
+* :mod:`~propcalc.networks.simulate`, :mod:`~propcalc.networks.sim_blocks`: seeded
+  finite-width networks of a description, compared position by position.
 """
 
 from __future__ import annotations
@@ -23,8 +29,23 @@ from .blocks import (
 )
 from .description import NetworkDescriptionError, network
 from .fields import description_fields, description_schema
+from .propagate import BlockRecord, NetworkPropagation, network_propagation
+from .simulate import NetworkSimulation, SimulatedPosition, simulate, simulate_network
+from .spatial import SpatialDamping
+from .summary import DepthLaw, Finding, NetworkSummary
 
 __all__ = [
+    "BlockRecord",
+    "DepthLaw",
+    "Finding",
+    "NetworkPropagation",
+    "NetworkSimulation",
+    "NetworkSummary",
+    "SimulatedPosition",
+    "SpatialDamping",
+    "network_propagation",
+    "simulate",
+    "simulate_network",
     "ActivationBlock",
     "Attention",
     "Convolution",

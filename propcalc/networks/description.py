@@ -16,6 +16,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from ..activations.resolver import resolve
+from ..domains import DOMAINS
 from ..errors import InvalidParameterError, PropcalcError
 from .blocks import (
     WEIGHT_BLOCKS,
@@ -86,7 +87,16 @@ class _Walk:
         self.count = 0
 
     # ---------------------------------------------------------------- values
+    def domain(self, f: FieldSpec, value: Any, path: str) -> Any:
+        assert f.domain is not None
+        try:
+            return DOMAINS[f.domain].check(value, path)
+        except InvalidParameterError as exc:
+            raise NetworkDescriptionError(path, exc.constraint, value) from None
+
     def number(self, f: FieldSpec, value: Any, path: str) -> float:
+        if f.domain is not None:
+            return float(self.domain(f, value, path))
         if isinstance(value, bool) or not isinstance(value, numbers.Real):
             raise NetworkDescriptionError(path, f.constraint, value)
         try:
@@ -98,6 +108,8 @@ class _Walk:
         return x
 
     def integer(self, f: FieldSpec, value: Any, path: str) -> int:
+        if f.domain is not None:
+            return int(self.domain(f, value, path))
         if isinstance(value, bool) or not isinstance(value, numbers.Real):
             raise NetworkDescriptionError(path, f.constraint, value)
         if not isinstance(value, numbers.Integral):
@@ -144,7 +156,7 @@ class _Walk:
             if not isinstance(name, str) or not name.isidentifier() or len(name) > 32:
                 raise NetworkDescriptionError(p, "a parameter name (an identifier of at most "
                                                  "32 characters)", name)
-            out.append((name, self.number(FieldSpec(name, "number"), v, p)))
+            out.append((name, self.number(_PARAM, v, p)))
         return tuple(sorted(out))
 
     # ---------------------------------------------------------------- blocks
@@ -197,6 +209,9 @@ class _Walk:
             else:
                 out[f.name] = f.default
         return out
+
+
+_PARAM = FieldSpec("parameter", "number", domain="activation_parameter")
 
 
 def pointer_join(path: str, *parts: str | int) -> str:

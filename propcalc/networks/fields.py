@@ -14,17 +14,17 @@ exactly one key, the block kind:
 ======================  =====================================================================
 kind                    fields (``*`` required; default in brackets)
 ======================  =====================================================================
-``dense``               ``sigma_w2*`` (0, 1e6]; ``sigma_b2*`` [0, 1e6]; ``width`` integer
-                        [1, 1e6] (absent: unknown); ``weights`` "gaussian" | "orthogonal"
-                        ["gaussian"]
+``dense``               ``sigma_w2*`` [1e-6, 1e4]; ``sigma_b2*`` 0 or [1e-100, 1e4]; ``width``
+                        integer [1, 1e7] (absent: unknown); ``weights`` "gaussian" |
+                        "orthogonal" ["gaussian"]
 ``activation``          a built-in name or a formula in x (string), or
-                        ``{"formula"*: text, "params": {name: number}}``
+                        ``{"formula"*: text, "params": {name: number in [-1e6, 1e6]}}``
 ``residual``            ``branch*`` blocks (with at least one dense, convolution or attention
-                        block); ``weight`` real [1.0]; ``shortcut`` real [1.0]: the stream
-                        becomes ``shortcut * x + weight * branch(x)``
-``norm``                "layer" | "rms" | "batch", or ``{"kind"*: ..., "gain": real [1.0],
-                        "eps": [0, 1] [0.0]}``
-``dropout``             ``keep_rate*`` (0, 1]
+                        block); ``weight`` [-1e3, 1e3] [1.0]; ``shortcut`` [-1e3, 1e3] [1.0]:
+                        the stream becomes ``shortcut * x + weight * branch(x)``
+``norm``                "layer" | "rms" | "batch", or ``{"kind"*: ..., "gain": [-1e3, 1e3]
+                        [1.0], "eps": [0, 1] [0.0]}``
+``dropout``             ``keep_rate*`` [1e-3, 1]
 ``repeat``              ``times*`` integer [1, 100000]; ``blocks*`` blocks
 ``convolution``         ``sigma_w2*``, ``sigma_b2*`` as dense; ``kernel*`` integer or list of
                         1-3 integers in [1, 64]; ``stride`` the same shape [1]; ``width``
@@ -32,11 +32,14 @@ kind                    fields (``*`` required; default in brackets)
 ``pooling``             ``kind*`` "average" | "max" | "global_average"; ``window`` (average,
                         max: required) sizes as kernel; ``stride`` [the window];
                         ``positions`` (global_average: required) integer [1, 1e6]
-``attention``           ``tokens*`` integer [1, 1e6]; ``heads`` [1]; ``width``;
+``attention``           ``tokens*`` integer [1, 1e6]; ``heads`` [1, 4096] [1]; ``width``;
                         ``value_sigma_w2``, ``output_sigma_w2``, ``query_key_sigma_w2``
-                        (0, 1e6] [1.0]; ``query_key_scale`` [0, 1e3] [1.0] (logits are
-                        ``query_key_scale * q . k / sqrt(d_head)``); ``sigma_b2`` [0, 1e6] [0.0]
+                        as sigma_w2 [1.0]; ``query_key_scale`` [0, 1e3] [1.0] (logits are
+                        ``query_key_scale * q . k / sqrt(d_head)``); ``sigma_b2`` [0.0]
 ======================  =====================================================================
+
+Numeric fields named like an engine input (sigma_w2, sigma_b2, width, keep_rate,
+activation parameters) take their bounds from :mod:`propcalc.domains`.
 
 Limits on the whole description (constants below): at most MAX_DESCRIBED_BLOCKS
 block objects, MAX_NESTING levels of residual/repeat nesting, MAX_POSITIONS
@@ -49,6 +52,8 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 from typing import Any
+
+from ..domains import DOMAINS, format_bound
 
 __all__ = [
     "MAX_DESCRIBED_BLOCKS",
@@ -78,15 +83,14 @@ MAX_POSITIONS = 100_000
 MAX_EXPANDED_BLOCKS = 1_000_000
 #: Copies in one repeat block.
 MAX_REPEAT_TIMES = 100_000
-#: Units per position (width, channels).
-MAX_WIDTH = 1_000_000
+#: Units per position (width, channels): the documented domain "width".
+MAX_WIDTH = int(DOMAINS["width"].upper)
 #: Kernel, window and stride size per spatial dimension.
 MAX_KERNEL = 64
 #: Tokens of an attention block, positions of a global average.
 MAX_TOKENS = 1_000_000
 #: Named parameters of one activation formula.
 MAX_PARAMS = 16
-_MAX_VARIANCE = 1e6
 _MAX_FACTOR = 1e3
 
 
@@ -107,6 +111,9 @@ class FieldSpec:
         Bounds; ``lower_open``/``upper_open`` make them strict.
     choices : tuple of str
         For "choice".
+    domain : str or None
+        The documented domain (:mod:`propcalc.domains`) a number must lie in; its
+        bounds replace ``lower`` and ``upper``.
     doc : str
     """
 
@@ -120,10 +127,13 @@ class FieldSpec:
     upper_open: bool = False
     choices: tuple[str, ...] = ()
     doc: str = ""
+    domain: str | None = None
 
     @property
     def constraint(self) -> str:
         """The rule in words, as error messages state it."""
+        if self.domain is not None:
+            return DOMAINS[self.domain].constraint
         if self.type == "choice":
             return "one of " + ", ".join(f'"{c}"' for c in self.choices)
         if self.type == "blocks":
@@ -153,7 +163,7 @@ class FieldSpec:
 
 
 def _fmt(x: float) -> str:
-    return str(int(x)) if float(x).is_integer() and abs(x) < 1e7 else f"{x:g}"
+    return format_bound(x)
 
 
 @dataclass(frozen=True)
@@ -179,16 +189,15 @@ class BlockSpec:
 
 def _sw(required: bool = True, name: str = "sigma_w2", default: Any = None,
         doc: str = "weight variance times fan-in") -> FieldSpec:
-    return FieldSpec(name, "number", required, default, lower=0.0, lower_open=True,
-                     upper=_MAX_VARIANCE, doc=doc)
+    return FieldSpec(name, "number", required, default, doc=doc, domain="sigma_w2")
 
 
 def _sb(required: bool = True, default: Any = None) -> FieldSpec:
-    return FieldSpec("sigma_b2", "number", required, default, lower=0.0, upper=_MAX_VARIANCE,
-                     doc="bias variance")
+    return FieldSpec("sigma_b2", "number", required, default, doc="bias variance",
+                     domain="sigma_b2")
 
 
-_WIDTH = FieldSpec("width", "integer", False, None, lower=1, upper=MAX_WIDTH,
+_WIDTH = FieldSpec("width", "integer", False, None, domain="width",
                    doc="units per position (absent: unknown; the infinite-width analysis "
                        "ignores it, per-unit gradients use width ratios when known)")
 
@@ -225,7 +234,7 @@ BLOCK_SPECS: dict[str, BlockSpec] = {spec.kind: spec for spec in (
                   doc="added to the variance before the square root"),
     ), "a normalisation layer", shorthand="kind"),
     BlockSpec("dropout", (
-        FieldSpec("keep_rate", "number", True, lower=0.0, lower_open=True, upper=1.0,
+        FieldSpec("keep_rate", "number", True, domain="keep_rate",
                   doc="probability of keeping a unit (kept units are divided by it)"),
     ), "inverted dropout, independent masks per input, position and unit"),
     BlockSpec("repeat", (
@@ -268,14 +277,21 @@ BLOCK_SPECS: dict[str, BlockSpec] = {spec.kind: spec for spec in (
 #: Top-level fields of a description.
 NETWORK_FIELDS: tuple[FieldSpec, ...] = (
     FieldSpec("blocks", "blocks", True, doc="the blocks in order"),
-    FieldSpec("input_width", "integer", False, None, lower=1, upper=MAX_WIDTH,
+    FieldSpec("input_width", "integer", False, None, domain="width",
               doc="units per position of the input"),
 )
 
 
 def _field_schema(f: FieldSpec) -> dict[str, Any]:
     out: dict[str, Any]
-    if f.type in ("number", "integer"):
+    if f.domain is not None:
+        d = DOMAINS[f.domain]
+        out = {"type": "integer" if d.integer else "number",
+               "exclusiveMinimum" if d.lower_open else "minimum": d.lower,
+               "exclusiveMaximum" if d.upper_open else "maximum": d.upper}
+        if d.zero:
+            out = {"anyOf": [{"const": 0}, out]}
+    elif f.type in ("number", "integer"):
         out = {"type": f.type}
         if f.lower is not None:
             out["exclusiveMinimum" if f.lower_open else "minimum"] = f.lower
