@@ -266,7 +266,7 @@ def _preimages(fn: Callable[[Array], Array], levels: tuple[float, ...]) -> list[
         idx = np.flatnonzero(sign[:-1] * sign[1:] < 0)
         for i in idx:
             out.append(float(optimize.brentq(lambda x: float(fn(np.array([x]))[0]) - level,
-                                             grid[i], grid[i + 1], xtol=1e-15, rtol=4e-16)))
+                                             grid[i], grid[i + 1], xtol=1e-300, rtol=1e-15)))
         # ends of runs where fn sits exactly on the level (a flat piece meeting a kink)
         flat = np.flatnonzero(sign == 0)
         out.extend(float(grid[i]) for i in flat
