@@ -95,8 +95,11 @@ from .init.gains import Gains, gains
 from .init.layers import Layer, LayerInit
 from .init.plan import InitPlan
 from .init.planner import recommend
+from .init.network_plan import BlockInit, NetworkPlan, network_plan
 from .networks import (
     BlockRecord,
+    BranchWeight,
+    branch_weight,
     Network,
     NetworkDescriptionError,
     NetworkPropagation,
@@ -197,7 +200,12 @@ __all__ = [
     "variance_fixed_points",
     "variance_map",
     "variance_map_slope",
+    "BlockInit",
     "BlockRecord",
+    "BranchWeight",
+    "NetworkPlan",
+    "branch_weight",
+    "network_plan",
     "Network",
     "NetworkDescriptionError",
     "NetworkPropagation",

@@ -8,6 +8,7 @@
   :mod:`~propcalc.networks.walk`: the moments, the rule of every block kind, the walk;
 * :mod:`~propcalc.networks.propagate`: :func:`network_propagation` and its result;
 * :mod:`~propcalc.networks.summary`, :mod:`~propcalc.networks.spatial`: what it means;
+* :mod:`~propcalc.networks.targets`: the residual branch weight for a target;
 * :mod:`~propcalc.networks.simulate`, :mod:`~propcalc.networks.sim_blocks`: seeded
   finite-width networks of a description, compared position by position.
 """
@@ -33,8 +34,11 @@ from .propagate import BlockRecord, NetworkPropagation, network_propagation
 from .simulate import NetworkSimulation, SimulatedPosition, simulate, simulate_network
 from .spatial import SpatialDamping
 from .summary import DepthLaw, Finding, NetworkSummary
+from .targets import BranchWeight, branch_weight
 
 __all__ = [
+    "BranchWeight",
+    "branch_weight",
     "BlockRecord",
     "DepthLaw",
     "Finding",

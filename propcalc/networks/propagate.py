@@ -24,7 +24,7 @@ from .simulate import NetworkSimulation, simulate_network
 from .summary import NetworkSummary, summarise
 from .walk import Trace, apply, trace
 
-__all__ = ["BlockRecord", "NetworkPropagation", "network_propagation", "check_inputs"]
+__all__ = ["BlockRecord", "NetworkPropagation", "network_propagation", "check_inputs", "backward"]
 
 #: Width of the simulated networks where the description gives none.
 SIMULATION_WIDTH = 256
@@ -197,7 +197,7 @@ def network_propagation(network: Any, q0: float = 1.0, c0: float = 0.0, *,
     n = len(streams) - 1
     known = next((i for i, s in enumerate(streams) if s.form == UNKNOWN), n + 1) - 1
     positions = streams[0].tracks_positions
-    grad: list[float | None] = _backward(tr, known) if known == n else [None] * (n + 1)
+    grad: list[float | None] = backward(tr, known) if known == n else [None] * (n + 1)
     notes: list[str] = []
     sim: NetworkSimulation | None = None
     q: list[float | None] = [_none(s.q) for s in streams]
@@ -221,7 +221,7 @@ def network_propagation(network: Any, q0: float = 1.0, c0: float = 0.0, *,
                 q[i], c[i], mean[i], source[i] = p.q, p.c, None, "simulation"
                 if cws is not None and cbs is not None:
                     cws[i], cbs[i] = p.c_within, p.c_between
-            grad = _fill_gradient(_backward(tr, known), sim, known, positions)
+            grad = _fill_gradient(backward(tr, known), sim, known, positions)
         else:
             grad[n] = 1.0
     records = _records(net, tr, grad, source)
@@ -249,7 +249,7 @@ def _simulate(net: Network, q0: float, c0: float, cw: float, cb: float, width: i
     return sim, ""
 
 
-def _backward(tr: Trace, top: int) -> list[float | None]:
+def backward(tr: Trace, top: int) -> list[float | None]:
     """Per-unit mean squared gradients relative to position ``top`` (the output gradient
     uncorrelated across positions), from the backward matrices; None above ``top``."""
     out: list[float | None] = [None] * (len(tr.visits) + 1)
