@@ -16,7 +16,7 @@ INIT = pathlib.Path(__file__).resolve().parents[1] / "propcalc" / "init"
 
 #: a module may import only the modules of a lower rank
 RANK = {"layers": 0, "draw": 1, "plan": 2, "gains": 3, "planner": 3, "recommend": 4,
-        "torch_adapter": 4}
+        "torch_adapter": 4, "network_plan": 4}
 
 
 def _sibling_imports(name: str) -> set[str]:

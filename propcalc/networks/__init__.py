@@ -10,7 +10,8 @@
 * :mod:`~propcalc.networks.summary`, :mod:`~propcalc.networks.spatial`: what it means;
 * :mod:`~propcalc.networks.targets`: the residual branch weight for a target;
 * :mod:`~propcalc.networks.simulate`, :mod:`~propcalc.networks.sim_blocks`: seeded
-  finite-width networks of a description, compared position by position.
+  finite-width networks of a description; :mod:`~propcalc.networks.check` compares them
+  position by position with the prediction (``propcalc.simulate``).
 """
 
 from __future__ import annotations
@@ -31,7 +32,8 @@ from .blocks import (
 from .description import NetworkDescriptionError, network
 from .fields import description_fields, description_schema
 from .propagate import BlockRecord, NetworkPropagation, network_propagation
-from .simulate import NetworkSimulation, SimulatedPosition, simulate, simulate_network
+from .check import simulate, simulate_network
+from .simulate import NetworkSimulation, SimulatedPosition
 from .spatial import SpatialDamping
 from .summary import DepthLaw, Finding, NetworkSummary
 from .targets import BranchWeight, branch_weight

@@ -173,6 +173,10 @@ def _k1(c: Array) -> Array:
     return (np.sqrt((1.0 - c) * (1.0 + c)) + (math.pi - np.arccos(c)) * c) / _TWO_PI
 
 
+def _k1_scalar(c: float) -> float:
+    return (math.sqrt((1.0 - c) * (1.0 + c)) + (math.pi - math.acos(c)) * c) / _TWO_PI
+
+
 def _linear_moments(slopes: tuple[float, float], q: float, cs: Array) -> Moments:
     alpha, beta = slopes
     s2 = alpha * alpha + beta * beta
@@ -221,10 +225,16 @@ def moments(fn: Elementwise, q: float, cs: Any) -> tuple[Moments, float]:
     (Moments, float)
         The moments of s (mean, second, cross at each c) and ``E[act'(u)^2]``.
     """
-    cs = np.clip(np.asarray(cs, dtype=float), -1.0, 1.0)
     m1, m2, d2 = _one_d(fn.act, q)
     slopes = piecewise_linear_slopes(fn.act)
-    if slopes is not None:
+    cs = np.clip(np.asarray(cs, dtype=float), -1.0, 1.0)
+    if slopes is not None and cs.size == 1:
+        # the closed form on a Python float (no array overhead in long walks)
+        c = float(cs.ravel()[0])
+        alpha, beta = slopes
+        cross = np.array([q * ((alpha * alpha + beta * beta) * _k1_scalar(c)
+                               - 2.0 * alpha * beta * _k1_scalar(-c))])
+    elif slopes is not None:
         cross = _linear_moments(slopes, q, cs).cross
     elif q == 0.0:
         cross = np.full(cs.shape, m1 * m1)

@@ -20,7 +20,7 @@ from ..results import OMIT, Result
 from .blocks import Network
 from .description import network as parse_network
 from .rules import UNKNOWN, Stream
-from .simulate import NetworkSimulation, simulate_network
+from .simulate import NetworkSimulation, measure_network
 from .summary import NetworkSummary, summarise
 from .walk import Trace, apply, trace
 
@@ -241,9 +241,9 @@ def _corr(x: float | None, s: Stream) -> float | None:
 def _simulate(net: Network, q0: float, c0: float, cw: float, cb: float, width: int | None,
               seed: int) -> tuple[NetworkSimulation | None, str]:
     try:
-        sim = simulate_network(net, q0=q0, c0=c0, c0_within=cw, c0_between=cb,
-                               width=width or SIMULATION_WIDTH, repetitions=SIMULATION_REPETITIONS,
-                               seed=seed, compare=False)
+        sim = measure_network(net, q0=q0, c0=c0, c0_within=cw, c0_between=cb,
+                              width=width or SIMULATION_WIDTH, repetitions=SIMULATION_REPETITIONS,
+                              seed=seed)
     except InvalidParameterError as exc:
         return None, f"{exc} (call propcalc.simulate with a smaller width or grid)"
     return sim, ""
@@ -283,8 +283,7 @@ def _fill_gradient(rec: list[float | None], sim: NetworkSimulation, known: int,
 def _records(net: Network, tr: Trace, grad: list[float | None],
              source: list[str]) -> list[BlockRecord]:
     out = []
-    for info, visit in zip(net.positions(), tr.visits):
-        i = info.index
+    for i, visit in enumerate(tr.visits, start=1):
         g_in, g_out = grad[i - 1], grad[i]
         jac = (g_in / g_out) if (g_in is not None and g_out not in (None, 0.0)) else None
         step = visit.step

@@ -23,15 +23,15 @@ the rule of :func:`propcalc.simulate`.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
 from ..errors import InvalidParameterError, check_finite, check_int, check_nonnegative, check_positive
-from ..meanfield.simulate import simulate as simulate_activation
 from ..results import OMIT, Result
-from .blocks import Attention, Block, Convolution, Network, Pooling, Repeat, Residual
+from .blocks import Attention, Block, Convolution, Dense, Network, Pooling, Repeat, Residual
 from .description import network as parse_network
 from .sim_blocks import Field, forward_block
 
@@ -39,9 +39,14 @@ __all__ = [
     "MAX_NETWORK_SIMULATION_WORK",
     "SimulatedPosition",
     "NetworkSimulation",
-    "simulate_network",
-    "simulate",
+    "measure_network",
+    "simulation_work",
 ]
+
+#: The prediction a simulation is compared with: (network, q0, c0, c0_within, c0_between) to
+#: one (q, c, gradient) per position (None where there is none).
+Predictor = Callable[[Network, float, float, float, float],
+                     Sequence[tuple[float | None, float | None, float | None]]]
 
 #: Bound on multiply-adds of one simulation (all repetitions, forward).
 MAX_NETWORK_SIMULATION_WORK = 2e10
@@ -213,8 +218,12 @@ class _Run:
         return f
 
 
-def _work(net: Network, width: int, n_inputs: int, n_pos: int) -> float:
-    """Multiply-adds of one forward pass (dense, convolution, attention dominate)."""
+def simulation_work(net: Network, width: int, n_inputs: int, n_pos: int) -> float:
+    """Multiply-adds of one simulated forward pass (dense, convolution and attention dominate).
+
+    ``width`` stands in where the description gives none; ``n_pos`` is the number of input
+    positions (the product of the grid). The backward pass costs about as much again.
+    """
     total = 0.0
 
     def walk(blocks: tuple[Block, ...], w: int, p: int) -> tuple[int, int]:
@@ -235,8 +244,8 @@ def _work(net: Network, width: int, n_inputs: int, n_pos: int) -> float:
                 w = d
             elif isinstance(b, Pooling):
                 p = 1 if b.kind == "global_average" else max(1, p // b.step)
-            elif hasattr(b, "sigma_w2"):
-                out = getattr(b, "width", None) or width
+            elif isinstance(b, Dense):
+                out = b.width or width
                 total += n_inputs * p * w * out
                 w = out
         return w, p
@@ -251,11 +260,12 @@ def _stats(samples: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return mean, se
 
 
-def simulate_network(description: Any, *, q0: float = 1.0, c0: float = 0.5,
-                     c0_within: float = 0.0, c0_between: float = 0.0, width: int | None = None,
-                     grid: Any = None, inputs: int = 4, repetitions: int = 8, seed: int = 0,
-                     tolerance: float = 0.05, compare: bool = True) -> NetworkSimulation:
-    """Simulate a described network at finite width and compare with its mean-field prediction.
+def measure_network(description: Any, *, q0: float = 1.0, c0: float = 0.5,
+                    c0_within: float = 0.0, c0_between: float = 0.0, width: int | None = None,
+                    grid: Any = None, inputs: int = 4, repetitions: int = 8, seed: int = 0,
+                    tolerance: float = 0.05, predict: Predictor | None = None
+                    ) -> NetworkSimulation:
+    """Simulate a described network at finite width (and compare with a prediction).
 
     Parameters
     ----------
@@ -274,8 +284,8 @@ def simulate_network(description: Any, *, q0: float = 1.0, c0: float = 0.5,
     seed : int
     tolerance : float
         Practical size of a visible deviation (default 5%).
-    compare : bool
-        Compute the prediction and the in-band flags.
+    predict : callable, optional
+        The prediction to compare with (see :data:`Predictor`); none by default.
 
     Returns
     -------
@@ -300,7 +310,7 @@ def simulate_network(description: Any, *, q0: float = 1.0, c0: float = 0.5,
     tol = check_nonnegative("tolerance", tolerance)
     shape = _grid(net, grid)
     n_pos = int(np.prod(shape))
-    work = _work(net, n, n_inputs, n_pos) * reps
+    work = simulation_work(net, n, n_inputs, n_pos) * reps
     if work > MAX_NETWORK_SIMULATION_WORK:
         raise InvalidParameterError("width", f"small enough for at most "
                                              f"{MAX_NETWORK_SIMULATION_WORK:g} multiply-adds "
@@ -328,7 +338,7 @@ def simulate_network(description: Any, *, q0: float = 1.0, c0: float = 0.5,
         rows = [_measure(x) + (gr / grads[-1],) for x, gr in zip(record, grads)]
         per_rep.append(rows)
     data = np.array(per_rep)  # (reps, positions, 5)
-    return _assemble(net, data, n, shape, n_inputs, reps, seed, tol, compare, q0, c0, cw, cb)
+    return _assemble(net, data, n, shape, n_inputs, reps, seed, tol, predict, q0, c0, cw, cb)
 
 
 def _grid(net: Network, grid: Any) -> tuple[int, ...]:
@@ -351,14 +361,13 @@ def _grid(net: Network, grid: Any) -> tuple[int, ...]:
 
 
 def _assemble(net: Network, data: np.ndarray, width: int, shape: tuple[int, ...], n_inputs: int,
-              reps: int, seed: int, tol: float, compare: bool, q0: float, c0: float, cw: float,
+              reps: int, seed: int, tol: float, predict: Predictor | None, q0: float, c0: float,
+              cw: float,
               cb: float) -> NetworkSimulation:
     mean, se = _stats(data)
     pred: list[tuple[Any, Any, Any]] = [(None, None, None)] * data.shape[1]
-    if compare:
-        from .propagate import network_propagation  # the prediction, one layer up
-        p = network_propagation(net, q0, c0, c0_within=cw, c0_between=cb, simulate=False)
-        pred = list(zip(p.q, p.c, p.gradient))
+    if predict is not None:
+        pred = list(predict(net, q0, c0, cw, cb))
     out, bad = [], []
     for i in range(data.shape[1]):
         m, s = mean[i], se[i]
@@ -375,11 +384,3 @@ def _assemble(net: Network, data: np.ndarray, width: int, shape: tuple[int, ...]
             float(m[4]), float(s[4]), (float(m[4] - 2 * s[4]), float(m[4] + 2 * s[4])),
             fin[0], fin[1], qp, cp, gp, q_in, c_in, g_in))
     return NetworkSimulation(width, shape, n_inputs, reps, seed, tol, tuple(out), tuple(bad), net)
-
-
-def simulate(first: Any, *args: Any, **kwargs: Any) -> Any:
-    """Finite-width check: of a network description (:func:`simulate_network`) or, as before,
-    of a plain stack of one activation (:func:`propcalc.meanfield.simulate.simulate`)."""
-    if isinstance(first, Network) or (isinstance(first, dict) and "blocks" in first):
-        return simulate_network(first, *args, **kwargs)
-    return simulate_activation(first, *args, **kwargs)

@@ -171,16 +171,16 @@ def _fit(pos: np.ndarray, y: np.ndarray) -> tuple[str, float, float | None] | No
     return law, slope, scale
 
 
-def _depth_laws(net: Network, q: list[float | None], c: list[float | None],
+def _depth_laws(tr: Trace, q: list[float | None], c: list[float | None],
                 grad: list[float | None], known: int) -> list[DepthLaw]:
-    infos = [p for p in net.positions() if p.index <= known]
-    counts = Counter(p.path for p in infos)
+    paths = [v.path for v in tr.visits[:known]]
+    counts = Counter(paths)
     if not counts:
         return []
     path, n = counts.most_common(1)[0]
     if n < _MIN_COPIES:
         return []
-    idx = np.array([p.index for p in infos if p.path == path])
+    idx = np.array([i for i, p in enumerate(paths, start=1) if p == path])
     idx = idx[len(idx) // 2:]
     out = []
     series = {"1 - c": [None if v is None else 1.0 - v for v in c], "q": q, "gradient": grad}
@@ -252,7 +252,7 @@ def summarise(net: Network, tr: Trace, q: list[float | None], c: list[float | No
             "gradient", beyond, grad[beyond],
             f"gradients {'grow' if grows else 'shrink'} beyond a factor {GRADIENT_FACTOR:g} from "
             f"position {beyond} down to the input (input/output: {g0:.3g})", advice))
-    laws = _depth_laws(net, q, c, grad, known)
+    laws = _depth_laws(tr, q, c, grad, known)
     for law in laws:
         if law.law == "power":
             text = (f"{law.quantity} behaves like position^{law.exponent:.3g} along the copies of "
