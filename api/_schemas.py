@@ -18,7 +18,7 @@ from typing import Any
 
 from marshmallow import RAISE, Schema, ValidationError, fields, post_load, validates_schema
 
-from propcalc import alpha_dropout, builtin_names
+from propcalc import Distribution, Phase, Target, VarianceStatus, alpha_dropout, builtin_names
 
 from ._config import (
     ALPHA_PRIME_ABS_MAX,
@@ -74,9 +74,9 @@ __all__ = ["StrictSchema", "Schemas", "build_schemas", "DISTRIBUTIONS", "TARGETS
            "DROPOUT_MAX_RATES", "ISOMETRY_DEFAULTS", "PLOT_MAX_ITERATIONS"]
 
 #: weight distributions of a plan (the engine's names)
-DISTRIBUTIONS = ("normal", "uniform", "truncated_normal", "orthogonal")
+DISTRIBUTIONS = tuple(d.value for d in Distribution)
 #: plan targets (the engine's names)
-TARGETS = ("auto", "edge", "variance", "bias")
+TARGETS = tuple(t.value for t in Target)
 #: q* values of the edge-of-chaos line when none are given (the CLI's defaults)
 DEFAULT_EDGE_Q_STARS = (0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0)
 #: names of activation parameters
@@ -87,7 +87,7 @@ MAX_SIZE = 10_000_000
 MAX_KERNEL = 1024
 MAX_KERNEL_DIMS = 3
 #: status of the variance in the reports (the engine's names)
-VARIANCE_STATUSES = ("fixed_point", "collapse", "unbounded", "neutral")
+VARIANCE_STATUSES = tuple(s.value for s in VarianceStatus)
 #: most keep rates of one dropout sweep (the engine's own bound, propcalc.dropout_sweep)
 DROPOUT_MAX_RATES = 1000
 #: most layers of the variance-map iteration an image draws
@@ -863,7 +863,7 @@ def build_schemas(limits: Limits) -> Schemas:
         points = _r(fields.List(fields.Nested(FixedPointSchema)))
         q_start = num()
         reached = _r(fields.Nested(FixedPointSchema, allow_none=True))
-        status = _r(Choice(["fixed_point", "collapse", "unbounded", "neutral"]))
+        status = _r(Choice(VARIANCE_STATUSES))
         growth_rate = ext(allow_none=True)
         message = text()
 
@@ -874,7 +874,7 @@ def build_schemas(limits: Limits) -> Schemas:
         sigma_w2 = num()
         sigma_b2 = num()
         q_input = num()
-        status = _r(Choice(["fixed_point", "collapse", "unbounded", "neutral"]))
+        status = _r(Choice(VARIANCE_STATUSES))
         q_star = num(allow_none=True)
         chi_q = ext(allow_none=True)
         xi_q = ext(allow_none=True)
@@ -882,7 +882,8 @@ def build_schemas(limits: Limits) -> Schemas:
         c_star = num(allow_none=True)
         chi_c = ext(allow_none=True)
         xi_c = ext(allow_none=True)
-        phase = _r(Choice(["ordered", "chaotic", "edge of chaos", "unbounded variance"]))
+        phase = _r(Choice([p.value for p in (Phase.ORDERED, Phase.CHAOTIC, Phase.EDGE_OF_CHAOS,
+                                             Phase.UNBOUNDED)]))
         trainable_depth = ext(allow_none=True)
         trainable_depth_rule = text()
         depth = _r(JSONInteger(allow_none=True))
@@ -1046,7 +1047,7 @@ def build_schemas(limits: Limits) -> Schemas:
         c_star = num(allow_none=True)
         chi_c = ext(allow_none=True)
         xi_c = ext(allow_none=True)
-        phase = _r(Choice(["ordered", "edge of chaos", "unbounded variance"]))
+        phase = _r(Choice([p.value for p in (Phase.ORDERED, Phase.EDGE_OF_CHAOS, Phase.UNBOUNDED)]))
         trainable_depth = ext(allow_none=True)
         trainable_depth_rule = text()
         depth = _r(JSONInteger(allow_none=True))

@@ -23,14 +23,11 @@ from __future__ import annotations
 
 from . import domains
 from .activations import Activation, ActivationProperties, builtin_names, nearest_name, resolve
-from .meanfield.criticality import (
-    CriticalPoint,
+from .meanfield.edge import CriticalPoint, edge_of_chaos, edge_of_chaos_at_bias, edge_of_chaos_line
+from .meanfield.report import (
     FixedPoint,
     Propagation,
     VarianceFixedPoints,
-    edge_of_chaos,
-    edge_of_chaos_at_bias,
-    edge_of_chaos_line,
     propagation,
     variance_fixed_points,
 )
@@ -71,7 +68,8 @@ from .variants.spectrum import (
     sample_jacobian_spectrum,
 )
 from .init.draw import LayerArrays, PlanArrays, draw_plan
-from .meanfield.sweep import EdgeSweepResult, SweepResult, propagation_arrays, sweep, sweep_edge
+from .meanfield.core import propagation_arrays
+from .meanfield.sweep import EdgeSweepResult, SweepResult, sweep, sweep_edge
 from .errors import (
     ActivationTypeError,
     ComputationError,
@@ -82,7 +80,17 @@ from .errors import (
 )
 from .activations import LIMITS as FORMULA_LIMITS, FormulaLimits, activation, formula_activation
 from .activations import SERVICE_LIMITS as SERVICE_FORMULA_LIMITS, formula_activation_within, formula_limit_rows
+from .caches import clear_caches
 from .jsonable import jsonable
+from .vocabulary import (
+    EDGE_TOLERANCE,
+    NEUTRAL_TOLERANCE,
+    BiasDistribution,
+    Distribution,
+    Phase,
+    Target,
+    VarianceStatus,
+)
 from .meanfield.maps import (
     chi_1,
     correlation_map,
@@ -159,6 +167,13 @@ __all__ = [
     "jacobian_spectrum",
     "sample_jacobian_spectrum",
     "Activation",
+    "BiasDistribution",
+    "Distribution",
+    "EDGE_TOLERANCE",
+    "NEUTRAL_TOLERANCE",
+    "Phase",
+    "Target",
+    "VarianceStatus",
     "ActivationProperties",
     "ActivationTypeError",
     "ComputationError",
@@ -183,6 +198,7 @@ __all__ = [
     "activation",
     "bivariate_expectation",
     "builtin_names",
+    "clear_caches",
     "chi_1",
     "correlation_map",
     "correlation_map_slope",

@@ -1,4 +1,5 @@
-"""Tests of propcalc.meanfield.criticality: fixed points, phases, depth scales, the edge of chaos.
+"""Tests of the mean-field core through propcalc.meanfield (fixed_points, correlation, core, report,
+edge): fixed points, phases, depth scales, the edge of chaos.
 
 References used below
 ---------------------
@@ -28,7 +29,7 @@ from scipy import integrate, optimize
 
 import propcalc
 from propcalc import Activation
-from propcalc.meanfield import criticality, maps
+from propcalc.meanfield import core, correlation, maps
 from propcalc.numerics.quadrature import DEFAULT_RULE
 
 A = propcalc.activation
@@ -497,9 +498,9 @@ def test_edge_of_chaos_invalid_where_bias_would_be_negative():
 def test_depth_scale_formula():
     # xi = -1 / ln(slope) (Schoenholz et al. 2017, eqs. 6 and 9), inf at 1, 0 at 0
     for s in (1e-3, 0.3, 0.9, 0.999999):
-        assert criticality.depth_scale(s) == pytest.approx(-1.0 / math.log(s), rel=1e-15)
-    assert math.isinf(criticality.depth_scale(1.0))
-    assert criticality.depth_scale(0.0) == 0.0
+        assert core.depth_scale(s) == pytest.approx(-1.0 / math.log(s), rel=1e-15)
+    assert math.isinf(core.depth_scale(1.0))
+    assert core.depth_scale(0.0) == 0.0
 
 
 def test_gradient_growth_is_chi_1_to_the_depth():
@@ -584,8 +585,8 @@ def test_correlation_fixed_point_warm_start_reaches_the_same_root(guess):
     act = A("gelu_tanh")
     q = propcalc.propagation(act, 1.99, 0.2).q_star
     rule = DEFAULT_RULE
-    cold = criticality.correlation_fixed_point(act, 1.99, 0.2, q, rule)
-    warm = criticality.correlation_fixed_point(act, 1.99, 0.2, q, rule, guess=guess)
+    cold = correlation.correlation_fixed_point(act, 1.99, 0.2, q, rule)
+    warm = correlation.correlation_fixed_point(act, 1.99, 0.2, q, rule, guess=guess)
     # both stop where |C(c) - c| <= 4e-15 (the rounding floor of C), so they may differ by
     # up to 4e-15 / (1 - C'(c*)) in c*
     assert warm[0] == pytest.approx(cold[0], abs=4e-15 / (1 - cold[1]))
@@ -621,7 +622,8 @@ def test_series_curvature_and_its_bound_against_williams():
     # r = 2q / (1 + 2q), so C''(c) = sw (2/pi) r^3 c / (1 - r^2 c^2)^(3/2) / V. The series'
     # curvature (erf without its closed-form smoothing, so the series is what runs) must match
     # it and its bound must not be below the exact value a little to the right of c*.
-    from propcalc.numerics.hermite import SERIES_PASSES, series_fixed_points
+    from propcalc.numerics.hermite import SERIES_PASSES
+    from propcalc.meanfield.correlation import series_fixed_points
     erf = A("erf")
     twin = Activation(name="erf", value_fn=erf.value_fn, derivative_fn=erf.derivative_fn,
                       declared_scale=1.0)
@@ -645,14 +647,15 @@ def test_series_curvature_and_its_bound_against_williams():
 def test_one_step_polish_reaches_the_cold_start_root(name, sw, sb):
     # internal consistency (no outside source): the series guess polished by one Newton step
     # under the curvature bound equals the bracketing solver from c = 0, to the stopping rule
-    from propcalc.numerics.hermite import SERIES_PASSES, series_fixed_points
+    from propcalc.numerics.hermite import SERIES_PASSES
+    from propcalc.meanfield.correlation import series_fixed_points
     act = A(name)
     q = propcalc.propagation(act, sw, sb).q_star
     kmax, rule = SERIES_PASSES[-1]
     c, _, _, curv, bound = series_fixed_points(act, np.array([sw]), np.array([sb]),
                                                np.array([q]), kmax, rule, curvature=True)
-    cold = criticality.correlation_fixed_point(act, sw, sb, q, DEFAULT_RULE)
-    warm = criticality.correlation_fixed_point(act, sw, sb, q, DEFAULT_RULE, guess=float(c[0]),
+    cold = correlation.correlation_fixed_point(act, sw, sb, q, DEFAULT_RULE)
+    warm = correlation.correlation_fixed_point(act, sw, sb, q, DEFAULT_RULE, guess=float(c[0]),
                                                curvature=(float(curv[0]), float(bound[0])))
     assert warm[0] == pytest.approx(cold[0], abs=4e-15 / (1 - cold[1]))
     assert warm[1] == pytest.approx(cold[1], rel=1e-12)

@@ -193,7 +193,8 @@ def test_series_route_point_by_point_is_williams(q):
     # the cache: a second pass at this q reuses the same coefficient arrays
     from propcalc.numerics.hermite import SERIES_PASSES, coefficients_at
     kmax, rule = SERIES_PASSES[0]
-    assert coefficients_at(twin, q, kmax, rule)[0] is coefficients_at(twin, q, kmax, rule)[0]
+    assert (coefficients_at(twin.value, twin.breakpoints, q, kmax, rule)[0]
+            is coefficients_at(twin.value, twin.breakpoints, q, kmax, rule)[0])
 
 
 # ------------------------------------------------------------------------------------------

@@ -324,7 +324,8 @@ def test_step_closed_form_including_a_root_on_a_round_number():
 def test_hermite_series_agrees_with_the_2d_integrals(name):
     # Mehler's formula E[phi(u1) phi(u2)] = sum_k a_k^2 c^k (Daniely, Frostig & Singer 2016,
     # section 6) against the engine's 2-D quadrature at the chaotic fixed point c*
-    from propcalc.numerics.hermite import SERIES_PASSES as _SERIES_PASSES, series_fixed_points as _series_fixed_points
+    from propcalc.numerics.hermite import SERIES_PASSES as _SERIES_PASSES
+    from propcalc.meanfield.correlation import series_fixed_points as _series_fixed_points
 
     act = propcalc.activation(name)
     pts = []

@@ -44,6 +44,7 @@ from typing import Any, Protocol
 
 import numpy as np
 
+from ..vocabulary import BIAS_DISTRIBUTIONS
 from ..errors import InvalidParameterError
 from ..results import OMIT, Result
 from .layers import DISTRIBUTIONS, TRUNCATION, Layer, LayerInit, truncated_normal_factor
@@ -60,7 +61,6 @@ __all__ = [
 ]
 
 #: Laws a bias vector can be drawn from ("plan": the plan's weight law; orthogonal -> normal).
-BIAS_DISTRIBUTIONS = ("normal", "uniform", "truncated_normal", "plan")
 
 SeedLike = int | np.random.SeedSequence | np.random.Generator | None
 

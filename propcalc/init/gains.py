@@ -11,7 +11,7 @@ from dataclasses import dataclass
 
 from ..activations.base import Activation
 from ..activations.resolver import resolve
-from ..meanfield.criticality import propagation
+from ..meanfield.report import propagation
 from ..meanfield.maps import derivative_second_moment, second_moment
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..results import Result

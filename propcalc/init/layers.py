@@ -20,6 +20,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import special
 
+from ..vocabulary import DISTRIBUTIONS  # the laws a weight matrix can be drawn from
 from ..errors import InvalidParameterError, check_int
 from ..results import OMIT, Result, inline
 
@@ -32,8 +33,6 @@ __all__ = [
     "truncated_normal_factor",
 ]
 
-#: The laws a weight matrix can be drawn from.
-DISTRIBUTIONS = ("normal", "uniform", "truncated_normal", "orthogonal")
 #: truncated normals are cut at +-2 standard deviations (of the untruncated law)
 TRUNCATION = 2.0
 

@@ -10,15 +10,14 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
-from ..meanfield.criticality import Propagation
+from ..meanfield.report import Propagation
 from ..results import Result
+from ..vocabulary import TARGETS
 from .draw import PlanArrays, SeedLike, draw_plan
 from .layers import Layer, LayerInit
 
 __all__ = ["TARGETS", "MAX_DEPTH", "InitPlan"]
 
-#: What a plan can aim at (see :func:`propcalc.recommend`).
-TARGETS = ("auto", "edge", "variance", "bias")
 #: the deepest network a plan is made for (one LayerInit per layer is kept)
 MAX_DEPTH = 100_000
 

@@ -1,7 +1,7 @@
 """The planner: :func:`recommend` picks (sigma_w2, sigma_b2) for a target and plans every layer.
 
 Orchestration only: every number comes from :mod:`propcalc.meanfield.maps` and
-:mod:`propcalc.meanfield.criticality`; the per-layer scales from
+:mod:`propcalc.meanfield.edge`; the per-layer scales from
 :func:`propcalc.init.layers.layer_init`.
 
 Conventions: ``W_ij ~ N(0, sigma_w2 / fan_in)``, ``b_i ~ N(0, sigma_b2)``;
@@ -24,16 +24,16 @@ from ..errors import (
     check_nonnegative,
     check_positive,
 )
-from ..meanfield.criticality import (
+from ..meanfield.edge import (
     CriticalPoint,
-    Propagation,
     edge_of_chaos,
     edge_of_chaos_at_bias,
     edge_of_chaos_line_arrays,
-    propagation,
 )
+from ..meanfield.report import Propagation, propagation
 from ..meanfield.maps import second_moment, variance_map_slope
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
+from ..vocabulary import NEUTRAL_TOLERANCE
 from .layers import DISTRIBUTIONS, Layer, layer_init
 from .plan import MAX_DEPTH, TARGETS, InitPlan
 
@@ -57,7 +57,7 @@ def _pick_stable_edge(act: Activation, q_star: float | None,
     target = 1.0 if q_star is None else q_star
     first = edge_of_chaos(act, target, rule)
     if first.valid and first.chi_q is not None and (
-            abs(first.chi_q) <= ATTRACTION_MARGIN or abs(first.chi_q - 1.0) <= 1e-9):
+            abs(first.chi_q) <= ATTRACTION_MARGIN or abs(first.chi_q - 1.0) <= NEUTRAL_TOLERANCE):
         return first, notes
     notes.append(f"q* = {target:g} is not usable: {first.message}" if not first.stable
                  else f"q* = {target:g} attracts only weakly (chi_q = {first.chi_q:.4g})")
@@ -68,7 +68,7 @@ def _pick_stable_edge(act: Activation, q_star: float | None,
     if np.any(ok):
         slopes[ok] = [float(variance_map_slope(act, q, w, rule))
                       for q, w in zip(grid[ok], sw_line[ok])]
-    attracting = ok & (np.abs(slopes) < 1 - 1e-9)
+    attracting = ok & (np.abs(slopes) < 1 - NEUTRAL_TOLERANCE)
     if not np.any(attracting):
         if first.valid and first.stable:
             return first, notes
@@ -200,7 +200,7 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
             raise ComputationError(f"no edge-of-chaos point of {act.label} has sigma_b2 = "
                                    f"{sb_fixed:g}; try another sigma_b2, or target 'variance'")
         usable = [p for p in points if p.stable or p.q_star == 0.0
-                  or abs((p.chi_q or 0) - 1) <= 1e-9]
+                  or abs((p.chi_q or 0) - 1) <= NEUTRAL_TOLERANCE]
         if not usable:
             notes.append("every critical point with this sigma_b2 repels (chi_q > 1): a finite "
                          "network drifts off it; consider a larger sigma_b2")
@@ -233,7 +233,7 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
     verdict, ok = _verdict(p, n)
     reached = p.variance_fixed_points.reached
     if (p.status == "fixed_point" and reached is not None and not reached.stable
-            and abs(reached.chi_q - 1.0) > 1e-9):
+            and abs(reached.chi_q - 1.0) > NEUTRAL_TOLERANCE):
         verdict += (f"; but q* = {reached.q:.4g} does not attract (chi_q = {reached.chi_q:.4g}), "
                     "so a finite network drifts away from the planned point")
         ok = False

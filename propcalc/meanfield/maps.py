@@ -63,6 +63,7 @@ __all__ = [
     "correlation_map",
     "correlation_map_slope",
     "correlation_map_and_slope",
+    "correlation_gap_map",
     "pair_expectation",
     "derivative_pair_expectation",
     "chi_1",
@@ -248,22 +249,38 @@ def _pair_conditional(act: Activation, kinds: tuple[str, ...], c: Array, q: floa
         res[~near] = o
     if np.any(near):
         cn = c[near]
-        width = np.sqrt(1.0 - cn)  # u in [0, sqrt(1 - c)]; nothing to integrate at c = 1
-        inner = width > 0.0
-        integral = np.zeros_like(cn)
-        if np.any(inner):
-            u, wu = _slope_nodes(width[inner], q, act.scale, act.breakpoints)
-            # the nodes t = 1 - u^2 are passed with their exact gaps u^2: in floats, t
-            # itself would round to 1 for u < 1e-8 and 1 - t^2 would keep few digits
-            gaps = (u * u).ravel()
-            d_der = (direct(("derivative",), 1.0 - gaps, gaps)[0]
-                     + _jump_terms(act, 1.0 - gaps, q, rule, gaps))
-            integral[inner] = np.sum(wu * 2.0 * u * d_der.reshape(u.shape), axis=1)
+        # u in [0, sqrt(1 - c)]; nothing to integrate at c = 1
+        integral = _slope_integral(act, np.sqrt(1.0 - cn), q, rule, what)
         square = float(gaussian_expectation(lambda x: act.value(x) ** 2, q, act.breakpoints,
                                             rule=rule, what=what))
         for k, res in zip(kinds, results):
             res[near] = square - q * integral if k == "value" else direct((k,), cn)[0]
     return tuple(results)
+
+
+def _slope_integral(act: Activation, width: Array, q: float, rule: QuadratureRule,
+                    what: str) -> Array:
+    """``int_{1 - w^2}^1 E[phi'(u1) phi'(u2)](t) dt`` for each width ``w = sqrt(1 - c)``.
+
+    Integrated in ``u = sqrt(1 - t)`` (the integrand ``2 u E[phi' phi'](1 - u^2)`` is
+    smooth even for kinks and jumps, whose Dirac terms are included), with the exact
+    gaps ``u^2`` passed down. Needs the activation's closed-form smoothing.
+    """
+    sm = act.smoothing
+    integral = np.zeros_like(width)
+    inner = width > 0.0
+    if sm is None or not np.any(inner):
+        return integral
+    u, wu = _slope_nodes(width[inner], q, act.scale, act.breakpoints)
+    # the nodes t = 1 - u^2 are passed with their exact gaps u^2: in floats, t
+    # itself would round to 1 for u < 1e-8 and 1 - t^2 would keep few digits
+    gaps = (u * u).ravel()
+    d_der = (conditional_pair_expectation([(act.derivative, sm.derivative)], 1.0 - gaps, q, q,
+                                          act.breakpoints, act.breakpoints, rule=rule, what=what,
+                                          gap=gaps)[0]
+             + _jump_terms(act, 1.0 - gaps, q, rule, gaps))
+    integral[inner] = np.sum(wu * 2.0 * u * d_der.reshape(u.shape), axis=1)
+    return integral
 
 
 def _slope_nodes(width: Array, q: float, scale: float,
@@ -300,12 +317,14 @@ def _pair_any(act: Activation, kinds: tuple[str, ...], c: Array, q: float,
 
 
 def _pair(fs: tuple[Any, ...], c: Array, q: float, bps: tuple[float, ...],
-          rule: QuadratureRule, what: str) -> tuple[Array, ...]:
+          rule: QuadratureRule, what: str, *, deficits: bool = False) -> tuple[Array, ...]:
     """E[f(u1) f(u2)] for each f, equal variances, on shared nodes, by the 2-D rule.
 
     For |c| >= 1/2 the exact difference form of an exchangeable pair is used:
     ``E[f(u1) f(u2)] = E[f^2] - E[(f(u1) - f(u2))^2] / 2``; for c <= -1/2 the
-    same with ``u2 -> -u2`` and ``g(x) = f(-x)``.
+    same with ``u2 -> -u2`` and ``g(x) = f(-x)``. With ``deficits`` the values
+    returned are ``E[f^2] - E[f(u1) f(u2)]`` instead (for c >= 1/2 the half mean
+    squared difference itself, so they keep their digits near c = 1).
     """
     n = len(fs)
     out = [np.empty_like(c) for _ in fs]
@@ -321,7 +340,7 @@ def _pair(fs: tuple[Any, ...], c: Array, q: float, bps: tuple[float, ...],
                                     q, q, bps, bps, rule=rule, what=what, n_integrands=n)
         for o, f, r in zip(out, fs, res if n > 1 else (res,)):
             ff = float(gaussian_expectation(lambda x: f(x) ** 2, q, bps, rule=rule, what=what))
-            o[hi] = ff - 0.5 * r
+            o[hi] = 0.5 * r if deficits else ff - 0.5 * r
     lo = c <= -0.5
     if np.any(lo):
         both = tuple(bps) + tuple(-b for b in bps)
@@ -335,6 +354,10 @@ def _pair(fs: tuple[Any, ...], c: Array, q: float, bps: tuple[float, ...],
             fg = float(gaussian_expectation(lambda x: f(x) * f(-x), q, both, rule=rule,
                                             what=what))
             o[lo] = fg - 0.5 * r
+    if deficits and not np.all(hi):
+        for o, f in zip(out, fs):
+            ff = float(gaussian_expectation(lambda x: f(x) ** 2, q, bps, rule=rule, what=what))
+            o[~hi] = ff - o[~hi]
     return tuple(out)
 
 
@@ -497,7 +520,7 @@ def _series_passes(act: Activation, q: float) -> Iterator[tuple[int, Array, floa
     """(terms, coefficients, E[phi^2], tail mass) of each Hermite pass at q, in order; None (and
     no further pass) when a pass's coefficients fail Parseval's check sum_k b_k <= E[phi^2]."""
     for kmax, series_rule in SERIES_PASSES:
-        b, m2 = coefficients_at(act, q, kmax, series_rule)
+        b, m2 = coefficients_at(act.value, act.breakpoints, q, kmax, series_rule)
         rest = m2 - float(b.sum())
         if not (math.isfinite(rest) and rest >= -1e-12 * m2 and m2 > 0):
             yield None
@@ -543,3 +566,99 @@ def correlation_map_slope(act: Activation, c: Any, sigma_w2: float, sigma_b2: fl
     if vq == 0.0:
         return np.full_like(_c_array(c), variance_collapse_rate(act, sw))
     return sw * qf * derivative_pair_expectation(act, c, qf, rule) / vq
+
+
+def _gap_array(gap: Any) -> Array:
+    arr = np.asarray(gap, dtype=float)
+    ok = np.isfinite(arr) & (arr >= 0.0) & (arr <= 2.0)
+    if not np.all(ok):
+        raise InvalidParameterError("gap", "in [0, 2] (gap = 1 - c)", float(arr[~ok].ravel()[0]))
+    return arr
+
+
+def _deficits(act: Activation, gap: Array, q: float, rule: QuadratureRule,
+              what: str) -> tuple[Array, Array]:
+    """``E[phi^2] - E[phi(u1) phi(u2)]`` and ``E[phi'(u1) phi'(u2)]`` at c = 1 - gap.
+
+    With a closed-form smoothing the gap is used exactly: for gap < CONDITIONAL_GAP the
+    deficit is ``q int_c^1 E[phi' phi'](t) dt`` (Price 1958), relative to itself to
+    rounding; otherwise ``E[phi^2]`` minus the 1-D conditional route. Without one, the
+    2-D rule at c = 1 - gap (rounded to a double) in the difference form of :func:`_pair`.
+    """
+    c = 1.0 - gap
+    square = float(gaussian_expectation(lambda x: act.value(x) ** 2, q, act.breakpoints,
+                                        rule=rule, what=what))
+    sm = act.smoothing
+    if sm is None:
+        deficit, der = _pair((act.value, act.derivative), c, q, act.breakpoints, rule, what,
+                             deficits=True)
+        d_square = float(gaussian_expectation(lambda x: act.derivative(x) ** 2, q,
+                                              act.breakpoints, rule=rule, what=what))
+        der = d_square - der
+    else:
+        deficit = np.empty_like(gap)
+        der = np.empty_like(gap)
+        near = gap < CONDITIONAL_GAP
+        bps = act.breakpoints
+        if np.any(near):
+            deficit[near] = q * _slope_integral(act, np.sqrt(gap[near]), q, rule, what)
+            der[near] = conditional_pair_expectation(
+                [(act.derivative, sm.derivative)], c[near], q, q, bps, bps, rule=rule,
+                what=what, gap=gap[near])[0]
+        if np.any(~near):  # value and slope on shared nodes
+            val, d = conditional_pair_expectation(
+                [(act.value, sm.value), (act.derivative, sm.derivative)], c[~near], q, q, bps,
+                bps, rule=rule, what=what, gap=gap[~near])
+            deficit[~near], der[~near] = square - val, d
+    return deficit, der + _jump_terms(act, c, q, rule, gap)
+
+
+def correlation_gap_map(act: Activation, gap: Any, sigma_w2: float, sigma_b2: float, q: float,
+                        rule: QuadratureRule = DEFAULT_RULE, *, v_q: float | None = None,
+                        denominator: float | None = None) -> tuple[Array, Array]:
+    """``1 - C(1 - e)`` and ``C'(1 - e)`` for gaps ``e = 1 - c`` given exactly.
+
+    Near c = 1 the map ``C`` itself keeps few digits of ``1 - C``; here
+    ``1 - C(1 - e) = sigma_w2 (E[phi^2] - E[phi(u1) phi(u2)]) / V(q)`` is formed
+    from the deficit, which is ``q int_{1-e}^1 E[phi'(u1) phi'(u2)](t) dt``
+    (Price's theorem, Price 1958) for activations with a closed-form smoothing
+    (exact in e down to any e > 0) and the half mean squared difference
+    ``E[(phi(u1) - phi(u2))^2] / 2`` of the 2-D rule otherwise (there at
+    ``c = 1 - e`` rounded to a double: pass gaps whose ``1 - e`` is exact).
+
+    Parameters
+    ----------
+    act : Activation
+    gap : array_like
+        e = 1 - c in [0, 2].
+    sigma_w2, sigma_b2 : float
+    q : float
+        Common pre-activation variance, > 0.
+    v_q : float, optional
+        V(q), when the caller has it.
+    denominator : float, optional
+        Divide by this instead of V(q): ``C(c) = (sigma_w2 E[phi(u1) phi(u2)] +
+        sigma_b2) / denominator`` (dropout: the diagonal variance), then
+        ``1 - C(1 - e) = (denominator - V(q) + sigma_w2 deficit) / denominator``.
+
+    Returns
+    -------
+    one_minus_c, slope : ndarray
+        ``1 - C(1 - e)`` and ``C'(1 - e) = sigma_w2 q E[phi'(u1) phi'(u2)] / denominator``,
+        the shape of ``gap``.
+    """
+    rule = _scaled(act, rule)
+    sw = check_positive("sigma_w2", sigma_w2)
+    sb = check_nonnegative("sigma_b2", sigma_b2)
+    e = _gap_array(gap)
+    qf = check_positive("q", q)
+    vq = float(variance_map(act, qf, sw, sb, rule)) if v_q is None else float(v_q)
+    flat = np.atleast_1d(e).ravel()
+    deficit, der = _deficits(act, flat, qf, rule, f"{act.label} at (u1, u2)")
+    if denominator is None:
+        one_minus = sw * deficit / vq
+        den = vq
+    else:
+        den = check_positive("denominator", denominator)
+        one_minus = ((den - vq) + sw * deficit) / den
+    return one_minus.reshape(e.shape), (sw * qf * der / den).reshape(e.shape)

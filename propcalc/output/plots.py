@@ -42,13 +42,8 @@ except ImportError as exc:  # pragma: no cover - exercised only without the extr
     raise ImportError("propcalc.plots needs matplotlib: pip install 'propcalc[plot]'") from exc
 
 from ..activations.base import Activation
-from ..meanfield.criticality import (
-    CriticalPoint,
-    Propagation,
-    edge_of_chaos_at_bias,
-    edge_of_chaos_line_arrays,
-    propagation,
-)
+from ..meanfield.edge import CriticalPoint, edge_of_chaos_at_bias, edge_of_chaos_line_arrays
+from ..meanfield.report import Propagation, propagation
 from ..errors import InvalidParameterError, check_int, check_nonnegative, check_positive
 from ..meanfield.maps import correlation_map, variance_map
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule

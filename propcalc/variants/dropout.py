@@ -30,7 +30,10 @@ The maps (infinite width)
 
 The convex correlation map (non-negative Hermite coefficients; Daniely,
 Frostig & Singer 2016) with ``C(0) >= 0`` and ``C(1) < 1`` has exactly one
-fixed point in [0, 1), found by Brent's method on ``C(c) - c``.
+fixed point in [0, 1). Both fixed points come from the mean-field core, for all
+keep rates of a sweep at once: q* from :func:`propcalc.meanfield.fixed_points.solve_variance`
+with ``sigma_w2 / rho``, c* from :func:`propcalc.meanfield.correlation.solve_correlation`
+with the diagonal variance q* as the map's denominator.
 """
 
 from __future__ import annotations
@@ -41,27 +44,19 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import optimize
 
-from ..activations.base import Activation
-from ..meanfield.criticality import (
-    TRAINABLE_DEPTH_FACTOR,
-    depth_scale,
-    gradient_growth,
-    variance_fixed_points,
-)
-from ..errors import (
-    ComputationError,
-    InvalidParameterError,
-    check_finite,
-    check_int,
-    check_nonnegative,
-    check_positive,
-)
-from ..meanfield.maps import chi_1 as chi_1_map
-from ..meanfield.maps import derivative_pair_expectation, pair_expectation, second_moment
+from ..activations import Activation, resolve
+from .. import domains
+from ..errors import InvalidParameterError, check_finite
+from ..meanfield.core import TRAINABLE_DEPTH_FACTOR, TRAINABLE_RULE, checked, depth_scales
+from ..meanfield.correlation import solve_correlation
+from ..meanfield.fixed_points import (VarianceSolution, check_reached, collapse_rate,
+                                     solve_variance)
+from ..meanfield.maps import derivative_second_moment, second_moment
+from ..meanfield.report import gradient_growth, variance_result
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..results import Result
+from ..vocabulary import VarianceStatus
 
 __all__ = [
     "DropoutPropagation",
@@ -72,14 +67,11 @@ __all__ = [
     "relu_dropout_correlation_slope",
 ]
 
-_TRAINABLE_RULE = "about 6 xi_c layers (empirical rule of Schoenholz et al. 2017)"
-
-
 def _keep_rate(value: Any) -> float:
     rho = check_finite("keep_rate", value)
     if not 0.0 < rho <= 1.0:
         raise InvalidParameterError("keep_rate", "in (0, 1]", value)
-    return rho
+    return domains.check("keep_rate", rho)  # the documented range (propcalc.domains)
 
 
 @dataclass(frozen=True)
@@ -132,7 +124,7 @@ class DropoutPropagation(Result):
     chi_c: float | None
     xi_c: float | None
     trainable_depth: float | None
-    trainable_depth_rule: str = field(default=_TRAINABLE_RULE, init=False)
+    trainable_depth_rule: str = field(default=TRAINABLE_RULE, init=False)
     depth: int | None
     gradient_growth: float | None
     depth_ok: bool | None
@@ -159,50 +151,114 @@ class DropoutSweep(Result):
     reports: tuple[DropoutPropagation, ...]
 
 
-def _correlation_fixed_point(act: Activation, sw: float, sb: float, q: float,
-                             rule: QuadratureRule) -> tuple[float, float, str]:
-    """(c*, C'(c*), how) for C(c) = (sw E[phi phi] + sb) / q with C(1) <= 1."""
+def _reports(act: Activation, sw: np.ndarray, sb: float, rho: np.ndarray, depth: int | None,
+             qi: float, rule: QuadratureRule) -> list[DropoutPropagation]:
+    """Dropout reports for arrays of (sigma_w2, keep rate): the core once for all of them."""
+    n = sw.size
+    sbs = np.full(n, sb)
+    sw_diag = sw / rho
+    var = solve_variance(act, sw_diag, sbs, np.full(n, qi), rule)
+    check_reached(var, sw_diag, sbs)
+    q = var.q_star
+    status = var.status
+    live = np.flatnonzero((status != VarianceStatus.UNBOUNDED.value)
+                          & (status != VarianceStatus.COLLAPSE.value))
+    chi1 = np.full(n, np.nan)
+    c_star = np.full(n, np.nan)
+    chi_c = np.full(n, np.nan)
+    m2 = np.zeros(n)
+    if live.size:
+        qs = q[live]
+        chi1[live] = sw_diag[live] * derivative_second_moment(act, qs, rule)
+        m2[live] = second_moment(act, qs, rule)
+        # off-diagonal map C(c) = (sigma_w2 E[phi phi] + sigma_b2) / q*: without dropout
+        # (rho = 1) q* = V(q*) and c = 1 is a fixed point; with it C(1) < 1
+        plain = rho[live] == 1.0
+        # C'(1) = sigma_w2 q E[phi'^2] / D (Price 1958): chi_1 rho q / D, D = V(q) or q*
+        slope1 = chi1[live] * rho[live] * qs / np.where(plain, sw[live] * m2[live] + sb, qs)
+        for mask, den in ((plain, None), (~plain, qs)):
+            if np.any(mask):
+                k = live[mask]
+                sol = solve_correlation(act, sw[k], sbs[k], q[k], rule, slope_at_one=slope1[mask],
+                                        denominator=None if den is None else den[mask])
+                c_star[k], chi_c[k] = sol.c_star, sol.chi_c
+    coll = np.flatnonzero(status == VarianceStatus.COLLAPSE.value)
+    # q -> 0 with phi(0) = 0 and sigma_b2 = 0: the network acts linearly, the off-diagonal
+    # over the diagonal: sigma_w2 phi'(0)^2 c / (sigma_w2 phi'(0)^2 / rho) = rho c
+    chi1[coll] = collapse_rate(act, sw_diag[coll])
+    c_star[coll], chi_c[coll] = 0.0, rho[coll]
+    xi = np.where(chi_c < 1.0, depth_scales(np.nan_to_num(chi_c)), math.inf).tolist()
+    reports = []
+    for i in range(n):
+        reports.append(_report(act, float(sw[i]), sb, float(rho[i]), qi, depth, str(status[i]),
+                               float(var.q_star[i]), float(var.chi_q[i]), float(chi1[i]),
+                               float(c_star[i]), float(chi_c[i]), xi[i], float(m2[i]),
+                               _flow_message(var, i, sb)))
+    return reports
 
-    if q <= 0.0:
-        raise ComputationError("the variance collapses to 0 here, so the correlation map is "
-                               "undefined; give the inputs a positive mean square or add bias")
 
-    def gap(c: float) -> float:
-        return (sw * float(pair_expectation(act, c, q, rule)) + sb) / q - c
+def _flow_message(var: VarianceSolution, i: int, sb: float) -> str:
+    """The one wording of the variance flow (as in :func:`propcalc.variance_fixed_points`)."""
+    return variance_result(var, i, sb).message
 
-    hi = 1.0
-    if gap(1.0) >= -1e-15:
-        # no dropout (rho = 1): c = 1 is a fixed point; it is the one reached if it attracts
-        slope1 = sw * float(derivative_pair_expectation(act, 1.0, q, rule))
-        if slope1 <= 1.0:
-            return 1.0, slope1, "c = 1 is a fixed point and attracts (C'(1) <= 1)"
-        hi = 1.0 - 1e-2  # chaotic: C(c) < c just below 1; bracket the root below
-        while gap(hi) >= 0.0 and hi < 1.0 - 1e-13:
-            hi = 1.0 - (1.0 - hi) * 1e-2
-    g0 = gap(0.0)
-    if g0 <= 0.0:
-        # C(0) = 0 (odd phi, no bias) and C convex with C(1) < 1: c* = 0
-        c_star = 0.0
-        how = "C(0) = 0 and C(c) < c on (0, 1]: c* = 0"
-    elif gap(hi) >= 0.0:
-        # C(c) > c all the way up to 1 - 1e-13: the fixed point is within rounding of 1
-        c_star = hi
-        how = f"C(c) > c up to c = {hi:.15g}: c* is within 1e-13 of 1"
+
+def _report(act: Activation, sw: float, sb: float, rho: float, qi: float, depth: int | None,
+            status: str, q: float, chi_q: float, chi1: float, c_star: float, chi_c: float,
+            xi_c: float, m2: float, message: str) -> DropoutPropagation:
+    notes = [message]
+    base = dict(activation=act.label, keep_rate=rho, sigma_w2=sw, sigma_b2=sb, q_input=qi,
+                status=VarianceStatus(status), depth=depth)
+    if status == VarianceStatus.UNBOUNDED:
+        notes.append("the forward variance (with the 1/rho rescaling) grows without bound: lower "
+                     "sigma_w2 or raise the keep rate")
+        return DropoutPropagation(q_star=None, chi_q=None, chi_1=None, c_star=None, chi_c=None,
+                                  xi_c=None, trainable_depth=None, gradient_growth=None,
+                                  depth_ok=False if depth is not None else None,
+                                  verdict="the forward signal explodes; no depth is trainable "
+                                  "as planned", notes=tuple(notes), **base)
+    if status == VarianceStatus.COLLAPSE:
+        notes.append("the variance collapses to 0, where the network is linear: C(c) = rho c, "
+                     "so c* = 0 and chi_c = rho")
     else:
-        c_star = float(optimize.brentq(gap, 0.0, hi, xtol=1e-15, rtol=4e-15, maxiter=200))
-        how = f"Brent's method on C(c) - c over [0, {hi:.15g}]"
-    slope = sw * float(derivative_pair_expectation(act, c_star, q, rule))
-    return c_star, slope, how
+        if rho == 1.0:
+            notes.append("keep rate 1 is no dropout: see propcalc.propagation for the phase "
+                         "diagram; c* here is the fixed point reached from c = 1")
+        how = ("c = 1 is a fixed point and attracts (C'(1) <= 1)" if c_star == 1.0
+               else "C(0) = 0 and C(c) < c on (0, 1]: c* = 0" if c_star == 0.0
+               else "the root of C(c) - c in [0, 1), solved in 1 - c")
+        notes.append(f"c* = {c_star:.10g} ({how})")
+    trainable = TRAINABLE_DEPTH_FACTOR * xi_c
+    if rho < 1.0:
+        c1 = (sw * m2 + sb) / q if q > 0 else rho
+        notes.append(f"with dropout C(1) = {c1:.6g} < 1: c = 1 is not a fixed point, xi_c is "
+                     "finite and there is no edge of chaos (Schoenholz et al. 2017)")
+    grad = gradient_growth(chi1, depth)
+    if depth is None:
+        verdict, ok = "no depth given", None
+    elif math.isinf(trainable):
+        verdict, ok = f"{depth} layers: no depth limit from the correlation depth scale", True
+    else:
+        ok = bool(depth <= trainable)
+        verdict = (f"{depth} layers {'is within' if ok else 'exceeds'} the predicted trainable "
+                   f"depth of about {trainable:.0f} layers at keep rate {rho:g} (6 xi_c, "
+                   f"xi_c = {xi_c:.4g}; empirical rule of Schoenholz et al. 2017)")
+        if not ok:
+            verdict += "; raise the keep rate or use fewer layers"
+    return DropoutPropagation(q_star=float(q), chi_q=float(chi_q), chi_1=float(chi1),
+                              c_star=float(c_star), chi_c=float(chi_c), xi_c=float(xi_c),
+                              trainable_depth=float(trainable), gradient_growth=grad,
+                              depth_ok=ok, verdict=verdict, notes=tuple(notes), **base)
 
 
-def dropout_propagation(act: Activation, sigma_w2: float, sigma_b2: float, keep_rate: float,
-                        depth: int | None = None, q_input: float = 1.0,
+def dropout_propagation(act: Activation | str, sigma_w2: float, sigma_b2: float,
+                        keep_rate: float, depth: int | None = None, q_input: float = 1.0,
                         rule: QuadratureRule = DEFAULT_RULE) -> DropoutPropagation:
     """Signal propagation with dropout at keep rate rho (Schoenholz et al. 2017).
 
     Parameters
     ----------
-    act : Activation
+    act : Activation or str
+        An Activation, a built-in name or a formula.
     sigma_w2 : float
         > 0.
     sigma_b2 : float
@@ -221,77 +277,25 @@ def dropout_propagation(act: Activation, sigma_w2: float, sigma_b2: float, keep_
 
     Notes
     -----
-    q* comes from :func:`propcalc.criticality.variance_fixed_points` applied
-    with ``sigma_w2 / rho``; c* from Brent's method on C(c) - c; the pair
-    expectations from :func:`propcalc.maps.pair_expectation` and
-    :func:`propcalc.maps.derivative_pair_expectation`.
+    q* is the variance fixed point with ``sigma_w2 / rho``; c* the root of
+    ``C(c) - c`` with the diagonal variance as the map's denominator (see the
+    module docstring); both from the mean-field core.
     """
-    sw = check_positive("sigma_w2", sigma_w2)
-    sb = check_nonnegative("sigma_b2", sigma_b2)
+    act = resolve(act)
+    sw = checked("sigma_w2", sigma_w2)
+    sb = checked("sigma_b2", sigma_b2)
     rho = _keep_rate(keep_rate)
-    qi = check_nonnegative("q_input", q_input)
+    qi = checked("q_input", q_input)
     if depth is not None:
-        depth = check_int("depth", depth, 1)
-    sw_diag = sw / rho
-    fps = variance_fixed_points(act, sw_diag, sb, qi, rule)
-    notes = [fps.message]
-    base = dict(activation=act.label, keep_rate=rho, sigma_w2=sw, sigma_b2=sb, q_input=qi,
-                status=fps.status, depth=depth)
-    if fps.status == "unbounded" or fps.reached is None:
-        notes.append("the forward variance (with the 1/rho rescaling) grows without bound: lower "
-                     "sigma_w2 or raise the keep rate")
-        return DropoutPropagation(q_star=None, chi_q=None, chi_1=None, c_star=None, chi_c=None,
-                                  xi_c=None, trainable_depth=None, gradient_growth=None,
-                                  depth_ok=False if depth is not None else None,
-                                  verdict="the forward signal explodes; no depth is trainable "
-                                  "as planned", notes=tuple(notes), **base)
-    q = fps.reached.q
-    chi_q = fps.reached.chi_q
-    if fps.status == "collapse":
-        # q -> 0 with phi(0) = 0 and sigma_b2 = 0: the network acts linearly, the
-        # off-diagonal over the diagonal:
-        # sigma_w2 phi'(0)^2 c / (sigma_w2 phi'(0)^2 / rho) = rho c
-        dl, dr = act.derivative(np.array([-1e-12, 1e-12]))
-        chi1 = float(sw_diag * (dl * dl + dr * dr) / 2.0)
-        c_star, chi_c = 0.0, rho
-        notes.append("the variance collapses to 0, where the network is linear: C(c) = rho c, "
-                     "so c* = 0 and chi_c = rho")
-    else:
-        chi1 = float(chi_1_map(act, q, sw_diag, rule))
-        if rho == 1.0:
-            notes.append("keep rate 1 is no dropout: see propcalc.propagation for the phase "
-                         "diagram; c* here is the fixed point reached from c = 1")
-        c_star, chi_c, how = _correlation_fixed_point(act, sw, sb, q, rule)
-        notes.append(f"c* = {c_star:.10g} ({how})")
-    xi_c = depth_scale(chi_c) if chi_c < 1.0 else math.inf
-    trainable = TRAINABLE_DEPTH_FACTOR * xi_c
-    if rho < 1.0:
-        m2 = float(second_moment(act, q, rule)) if q > 0 else 0.0
-        c1 = (sw * m2 + sb) / q if q > 0 else rho
-        notes.append(f"with dropout C(1) = {c1:.6g} < 1: c = 1 is not a fixed point, xi_c is "
-                     "finite and there is no edge of chaos (Schoenholz et al. 2017)")
-    grad = gradient_growth(chi1, depth)
-    if depth is None:
-        verdict, ok = "no depth given", None
-    elif math.isinf(trainable):
-        verdict, ok = f"{depth} layers: no depth limit from the correlation depth scale", True
-    else:
-        ok = depth <= trainable
-        verdict = (f"{depth} layers {'is within' if ok else 'exceeds'} the predicted trainable "
-                   f"depth of about {trainable:.0f} layers at keep rate {rho:g} (6 xi_c, "
-                   f"xi_c = {xi_c:.4g}; empirical rule of Schoenholz et al. 2017)")
-        if not ok:
-            verdict += "; raise the keep rate or use fewer layers"
-    return DropoutPropagation(q_star=q, chi_q=chi_q, chi_1=chi1, c_star=c_star, chi_c=chi_c,
-                              xi_c=xi_c, trainable_depth=trainable, gradient_growth=grad,
-                              depth_ok=ok, verdict=verdict, notes=tuple(notes), **base)
+        depth = checked("depth", depth)
+    return _reports(act, np.array([sw]), sb, np.array([rho]), depth, qi, rule)[0]
 
 
-def dropout_sweep(act: Activation, sigma_w2: float, sigma_b2: float,
+def dropout_sweep(act: Activation | str, sigma_w2: float, sigma_b2: float,
                   keep_rates: Sequence[float], depth: int | None = None, q_input: float = 1.0,
                   scale_with_keep_rate: bool = False,
                   rule: QuadratureRule = DEFAULT_RULE) -> DropoutSweep:
-    """:func:`dropout_propagation` over several keep rates.
+    """:func:`dropout_propagation` over several keep rates, computed together.
 
     Parameters
     ----------
@@ -301,20 +305,27 @@ def dropout_sweep(act: Activation, sigma_w2: float, sigma_b2: float,
         ``2 rho``, whose variance stays put).
     Other parameters as :func:`dropout_propagation`.
     """
+    act = resolve(act)
     rates = list(keep_rates)
     if not rates:
         raise InvalidParameterError("keep_rates", "a non-empty list", rates)
     if len(rates) > 1000:
         raise InvalidParameterError("keep_rates", "at most 1000 values", len(rates))
-    reports = []
+    rhos = []
     for i, r in enumerate(rates):
         try:
-            rho = _keep_rate(r)
+            rhos.append(_keep_rate(r))
         except InvalidParameterError as exc:
             raise InvalidParameterError(f"keep_rates[{i}]", "in (0, 1]", r) from exc
-        sw = check_positive("sigma_w2", sigma_w2) * (rho if scale_with_keep_rate else 1.0)
-        reports.append(dropout_propagation(act, sw, sigma_b2, rho, depth, q_input, rule))
-    return DropoutSweep(act.label, bool(scale_with_keep_rate), tuple(reports))
+    sw = checked("sigma_w2", sigma_w2)
+    sb = checked("sigma_b2", sigma_b2)
+    qi = checked("q_input", q_input)
+    if depth is not None:
+        depth = checked("depth", depth)
+    rho = np.array(rhos)
+    sws = sw * rho if scale_with_keep_rate else np.full(rho.size, sw)
+    return DropoutSweep(act.label, bool(scale_with_keep_rate),
+                        tuple(_reports(act, sws, sb, rho, depth, qi, rule)))
 
 
 def relu_dropout_correlation_map(c: Any, keep_rate: float) -> np.ndarray:

@@ -94,7 +94,9 @@ from typing import Any
 import numpy as np
 from scipy import special
 
-from ..meanfield.criticality import TRAINABLE_DEPTH_FACTOR, depth_scale, gradient_growth
+from ..vocabulary import EDGE_TOLERANCE
+from ..meanfield.core import TRAINABLE_DEPTH_FACTOR, depth_scale
+from ..meanfield.report import gradient_growth
 from ..errors import InvalidParameterError, check_int, check_nonnegative, check_positive
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation, legendre_rule
 from ..results import Result
@@ -497,12 +499,12 @@ def maxout_propagation(k: int, sigma_w2: float | None = None, sigma_b2: float = 
         c_star = 1.0
         # C'(1) = sigma_w2 q K'(1) / V(q) with K'(1) = 1; at sigma_b2 = 0 it is 1 / M2 for every q
         chi_c = 1.0 / m2 if sb == 0.0 else sw * q_star / (slope * q_star + sb)
-        if abs(chi_c - 1.0) <= 1e-9:
+        if abs(chi_c - 1.0) <= EDGE_TOLERANCE:
             phase, xi_c = "edge of chaos", math.inf
         else:
             phase, xi_c = "ordered", depth_scale(chi_c)
         trainable = TRAINABLE_DEPTH_FACTOR * xi_c
-    if abs(chi1 - 1.0) > 1e-9 and kk >= 3 and status != "unbounded":
+    if abs(chi1 - 1.0) > EDGE_TOLERANCE and kk >= 3 and status != "unbounded":
         notes.append(f"for k >= 3 no single sigma_w2 keeps both the forward variance "
                      f"(needs sigma_w2 <= 1/M2 = {1 / m2:.6g}) and the gradient (needs "
                      "sigma_w2 = 1): there is no edge of chaos with a finite variance")

@@ -50,7 +50,7 @@ from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
-from scipy import optimize, special
+from scipy import special
 
 from ..activations.base import Activation
 from ..errors import (
@@ -61,6 +61,7 @@ from ..errors import (
     check_positive,
 )
 from ..meanfield.maps import second_moment
+from ..numerics import roots
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation, legendre_rule
 from ..results import Result
 
@@ -338,7 +339,7 @@ def _max_variance_for_margin(k: int, margin: float, rule: QuadratureRule) -> flo
     lo = hi / 4.0
     while lo > 1e-300 and gap(lo) > 0.0:
         lo /= 4.0
-    return float(optimize.brentq(gap, lo, hi, xtol=1e-300, rtol=1e-12))
+    return roots.brent(gap, lo, hi, rtol=1e-12)
 
 
 def output_layer_scale(n_classes: int, penultimate_second_moment: float,

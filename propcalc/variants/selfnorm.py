@@ -75,8 +75,10 @@ from scipy import optimize
 from .. import domains
 from ..activations import SELU_ALPHA, SELU_SCALE, Activation
 from ..errors import InvalidParameterError, check_finite, check_nonnegative, check_positive
+from ..numerics import roots
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation
 from ..results import Result
+from ..vocabulary import NEUTRAL_TOLERANCE
 
 __all__ = [
     "ALPHA_PRIME_SELU",
@@ -203,7 +205,7 @@ class MeanVarianceFixedPoint(Result):
         Largest singular value: < 1 means g contracts near the point (the
         criterion of Klambauer et al. 2017).
     attracting : bool
-        spectral_radius < 1 - 1e-9.
+        spectral_radius < 1 - NEUTRAL_TOLERANCE.
     """
 
     mu: float
@@ -264,7 +266,7 @@ def _point(act: Activation, mu: float, nu: float, omega: float, tau: float,
         float(mu), float(nu), ((float(jac[0, 0]), float(jac[0, 1])),
                                (float(jac[1, 0]), float(jac[1, 1]))),
         (float(ev[0].real), float(ev[1].real)), (float(ev[0].imag), float(ev[1].imag)),
-        radius, norm, radius < 1.0 - 1e-9)
+        radius, norm, radius < 1.0 - NEUTRAL_TOLERANCE)
 
 
 def _fixed_points_omega_zero(act: Activation, tau: float, rule: QuadratureRule
@@ -278,20 +280,8 @@ def _fixed_points_omega_zero(act: Activation, tau: float, rule: QuadratureRule
     def h(nu: float) -> float:
         return float(mean_variance_map(act, 0.0, nu, 0.0, tau, rule)[1]) - nu
 
-    roots: list[float] = []
-    sign = np.sign(gap)
-    for i in range(grid.size - 1):
-        if sign[i] == 0.0:
-            roots.append(float(grid[i]))
-        elif sign[i] * sign[i + 1] < 0:
-            a, b = float(grid[i]), float(grid[i + 1])
-            fa, fb = h(a), h(b)
-            if fa * fb < 0:
-                roots.append(float(optimize.brentq(h, a, b, xtol=1e-300, rtol=4e-15)))
-            else:
-                roots.append(a if abs(fa) < abs(fb) else b)
     out = []
-    for nu in roots:
+    for nu in roots.roots_on_grid(h, grid, gap, hidden_pairs=False):
         mu = float(mean_variance_map(act, 0.0, nu, 0.0, tau, rule)[0])
         out.append((mu, nu))
     return out, False

@@ -55,10 +55,10 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import optimize
 
+from ..vocabulary import EDGE_TOLERANCE
 from ..activations.base import Activation
-from ..meanfield.criticality import edge_of_chaos
+from ..meanfield.edge import edge_of_chaos
 from ..errors import (
     ComputationError,
     InvalidParameterError,
@@ -67,6 +67,7 @@ from ..errors import (
     check_positive,
 )
 from ..meanfield.maps import derivative_second_moment
+from ..numerics import roots
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation
 from ..results import Result
 
@@ -222,7 +223,7 @@ def jacobian_spectrum(act: Activation, depth: int, q_star: float = 1.0,
     notes.append("variances add under free multiplicative convolution "
                  "(Pennington, Schoenholz & Ganguli 2017): Gaussian L mu_2/mu_1^2, "
                  "orthogonal L (mu_2/mu_1^2 - 1), in units of the squared mean")
-    if abs(chi1 - 1.0) > 1e-9:
+    if abs(chi1 - 1.0) > EDGE_TOLERANCE:
         notes.append(f"chi_1 = {chi1:.6g} != 1: the mean {mean:.6g} is not 1 (off the edge of "
                      "chaos); the normalised variances still hold")
     return JacobianSpectrum(act.label, n, q, sw, sb, mu1, mu2, ratio, chi1, mean, ng, no,
@@ -337,8 +338,8 @@ def dynamical_isometry(act: Activation, depth: int, max_variance: float = DEFAUL
     i = int(np.flatnonzero(ok)[-1])
     q_best = float(grid[i])
     if i + 1 < grid.size and valid[i + 1] and not ok[i + 1]:
-        q_best = float(optimize.brentq(lambda q: orth_var(q) - target, grid[i], grid[i + 1],
-                                       xtol=1e-14, rtol=1e-12))
+        q_best = roots.brent(lambda q: orth_var(q) - target, float(grid[i]), float(grid[i + 1]),
+                             rtol=1e-12)
         if not edge_of_chaos(act, q_best, rule).valid:
             q_best = float(grid[i])
     spec = jacobian_spectrum(act, n, q_best, rule=rule)

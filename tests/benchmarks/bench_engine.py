@@ -68,7 +68,7 @@ import propcalc
 from propcalc import Activation
 from propcalc.meanfield import maps as pc_maps
 from propcalc.numerics import hermite, quadrature
-from propcalc.meanfield.criticality import edge_of_chaos_line_arrays
+from propcalc.meanfield.edge import edge_of_chaos_line_arrays
 from propcalc.numerics.smoothing import Smoothing
 
 # ---------------------------------------------------------------------------------------------
