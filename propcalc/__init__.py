@@ -118,6 +118,7 @@ from .networks import (
     simulate,
     simulate_network,
 )
+from .shaping import ShapedActivation, ShapingError, UnreachableTargetError, shape_activation
 
 __version__ = "0.1.0"
 
@@ -213,6 +214,10 @@ __all__ = [
     "recommend",
     "resolve",
     "nearest_name",
+    "ShapedActivation",
+    "ShapingError",
+    "UnreachableTargetError",
+    "shape_activation",
     "variance_fixed_points",
     "variance_map",
     "variance_map_slope",
