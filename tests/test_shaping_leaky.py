@@ -195,3 +195,12 @@ def test_composed_map_against_seeded_finite_width_networks(orthogonal):
     # sampling band plus 0.02 for the O(depth / width) finite-width correction (common
     # practice, no source)
     assert abs(measured.mean() - 0.8) <= 3 * se + 0.02, (measured.mean(), se)
+
+
+def test_builtin_recognised_after_the_activation_caches_are_emptied():
+    # the registry's cache is bounded: an activation built earlier is still a built-in
+    from propcalc.activations import clear_activation_caches
+
+    act = propcalc.activation("leaky_relu", slope=0.2)
+    clear_activation_caches()
+    assert propcalc.shape_activation(act, 30).form == "slope"

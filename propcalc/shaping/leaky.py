@@ -47,6 +47,7 @@ __all__ = [
     "leaky_map",
     "leaky_map_slope",
     "leaky_trajectory",
+    "leaky_network_map",
     "network_value",
     "solve_coefficient",
     "UnreachableTargetError",
@@ -106,6 +107,14 @@ def network_value(k: float, depth: int, c0: float = 0.0) -> float:
     for _ in range(depth):
         c = _step(c, k)
     return c
+
+
+def leaky_network_map(c: np.ndarray | float, k: float, depth: int) -> np.ndarray:
+    """C_L(c), the map of :func:`leaky_map` composed ``depth`` times, vectorised over c."""
+    out = np.clip(np.asarray(c, dtype=float), -1.0, 1.0)
+    for _ in range(depth):
+        out = leaky_map(out, k)
+    return out
 
 
 def leaky_trajectory(k: float, depth: int, c0: float = 0.0) -> np.ndarray:

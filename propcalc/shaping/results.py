@@ -272,10 +272,36 @@ class ShapedActivation(Result):
     base_activation: Activation | None = field(default=None, metadata=OMIT, repr=False)
 
     def network_map(self, c: Any) -> np.ndarray:
-        """C_L(c) of the shaped network (propcalc's maps composed over the depth)."""
+        """C_L(c) of the shaped network, vectorised over c.
+
+        The closed form of :mod:`propcalc.shaping.leaky` for the slope form (equal to
+        propcalc's maps to rounding), else propcalc's maps composed over the depth.
+        """
+        from .leaky import leaky_coefficient, leaky_network_map
         from .network_map import compose_correlation_map
 
+        if self.form == "slope":
+            return leaky_network_map(c, leaky_coefficient(float(self.params["slope"])),
+                                     self.depth)
         return compose_correlation_map(self.activation, c, self.depth, 1.0, 0.0, 1.0)
+
+    def reference_network_map(self, c: Any) -> np.ndarray | None:
+        """C_L(c) of the base activation at its edge of chaos (None without a reference).
+
+        For ReLU and leaky ReLU the normalised map at the edge (sigma_w2 = 2 / (1 + s^2),
+        sigma_b2 = 0) is the closed form with k = (1 - s)^2 / (pi (1 + s^2)).
+        """
+        from .leaky import leaky_coefficient, leaky_network_map
+        from .network_map import compose_correlation_map
+
+        ref, base = self.reference, self.base_activation
+        if ref is None or base is None:
+            return None
+        if self.form == "slope":
+            slope = float(base.params.get("slope", 0.0)) if base.name == "leaky_relu" else 0.0
+            return leaky_network_map(c, leaky_coefficient(slope), self.depth)
+        return compose_correlation_map(base, c, self.depth, ref.sigma_w2, ref.sigma_b2,
+                                       ref.q_star)
 
     def torch_module(self) -> Any:
         """A ``torch.nn.Module`` computing phi_hat (torch imported here).

@@ -29,7 +29,7 @@ from typing import Any
 import numpy as np
 
 from ..activations.base import Activation
-from ..activations.formula import activation
+from ..activations.resolver import activation
 from ..errors import InvalidParameterError, check_finite, check_int
 from ..meanfield.criticality import propagation
 from ..meanfield.maps import chi_1, correlation_map, variance_map, variance_map_slope

@@ -17,7 +17,8 @@ from __future__ import annotations
 import math
 from typing import Any
 
-from ..activations.base import SELU_ALPHA, SELU_SCALE, Activation
+from ..activations.base import Activation
+from ..activations.builtins import SELU_ALPHA, SELU_SCALE
 from .transform import is_registry_builtin, substitute
 
 __all__ = ["TORCH_HINT", "torch_function", "activation_module", "shaped_module"]
