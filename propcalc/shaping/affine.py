@@ -346,7 +346,7 @@ def _beta_on_curve(system: ShapingSystem, alpha: float, guess: float, width: flo
         x2 = x1 - g1 * (x1 - x0) / (g1 - g0)
         if not abs(x2 - guess) <= 4.0 * width:
             break
-        if abs(x2 - x1) <= 4e-16 * max(1.0, abs(x2)):
+        if abs(x2 - x1) <= 1e-13 * max(1.0, abs(x2)):
             return x2
         x0, g0, x1 = x1, g1, x2
     # ... and a bracket with Brent's method when they wander off
@@ -384,15 +384,22 @@ def _refine(system: ShapingSystem, a0: float, b0: float, a1: float, b1: float, w
         b = beta_at(u)
         if b is None:
             raise _OffCurve
-        return float(system.gap(np.array(math.exp(u)), np.array(b), branch, precise=True))
+        value = float(system.gap(np.array(math.exp(u)), np.array(b), branch, precise=True))
+        if abs(value) <= _GAP_DONE:
+            raise _Converged(u)
+        return value
 
     u0, u1 = math.log(a0), math.log(a1)
     try:
         h0, h1 = h(u0), h(u1)
         if not (math.isfinite(h0) and math.isfinite(h1)) or h0 * h1 > 0:
             return None
-        u = u0 if h0 == 0 else u1 if h1 == 0 else float(
-            optimize.brentq(h, u0, u1, xtol=1e-15, rtol=1e-15, maxiter=200))
+        u = float(optimize.brentq(h, u0, u1, xtol=1e-15, rtol=1e-15, maxiter=200))
+    except _Converged as done:
+        u = done.u
+    except _OffCurve:
+        return None
+    try:
         b = beta_at(u)
     except _OffCurve:
         return None
@@ -407,6 +414,19 @@ def _refine(system: ShapingSystem, a0: float, b0: float, a1: float, b1: float, w
 
 class _OffCurve(Exception):
     """The inner solve lost the curve (a turning point between two columns)."""
+
+
+class _Converged(Exception):
+    """The target gap is within _GAP_DONE at u: no further step can improve the conditions."""
+
+    def __init__(self, u: float) -> None:
+        super().__init__(u)
+        self.u = u
+
+
+#: |target gap| at which the refinement stops (the conditions are then met to about this,
+#: two orders below the 1e-10 the final check asks for)
+_GAP_DONE = 1e-13
 
 
 def find_candidates(system: ShapingSystem) -> tuple[list[Candidate], int]:
@@ -425,6 +445,9 @@ def find_candidates(system: ShapingSystem) -> tuple[list[Candidate], int]:
     step = float(betas[1] - betas[0])
     found: list[Candidate] = []
     n_links = 0
+    # odd phi: (beta, branch) and (-beta, -branch) give mirrored phi_hat and the same maps;
+    # even phi: (beta, branch) and (-beta, branch). Only beta >= 0 is refined then.
+    parity = system.act.exact_parity
     for branch in system.branches:
         cols = _curve_points(system, alphas, betas, system.curve(mom, branch), branch)
         pa = np.array([alphas[j] for j, c in enumerate(cols) for _ in c])
@@ -439,11 +462,26 @@ def find_candidates(system: ShapingSystem) -> tuple[list[Candidate], int]:
                 continue
             n_links += 1
             b0, b1 = cols[j][i], cols[j + 1][k]
+            if parity is not None and max(b0, b1) < 0:
+                continue
             cand = _refine(system, float(alphas[j]), b0, float(alphas[j + 1]), b1,
                            max(abs(b1 - b0), step), branch)
-            if cand is not None and not any(_same(cand, c, system.act.scale) for c in found):
-                found.append(cand)
+            if cand is None:
+                continue
+            new = [cand]
+            if parity is not None and abs(cand.beta) > 1e-9 * system.act.scale:
+                new.append(_mirror(cand, parity))
+            for c in new:
+                if not any(_same(c, d, system.act.scale) for d in found):
+                    found.append(c)
     return found, n_links
+
+
+def _mirror(c: Candidate, parity: str) -> Candidate:
+    """The root of the reflected activation (see find_candidates)."""
+    if parity == "odd":
+        return Candidate(c.alpha, -c.beta, c.gamma, -c.delta, -c.branch)
+    return Candidate(c.alpha, -c.beta, c.gamma, c.delta, c.branch)
 
 
 def _same(a: Candidate, b: Candidate, scale: float) -> bool:

@@ -65,9 +65,12 @@ def variance_map_deviation(act: Activation) -> float:
     return float(np.max(np.abs(variance_map(act, qs, 1.0, 0.0) - qs)))
 
 
-def edge_reference(base: Activation, depth: int) -> tuple[EdgeReference | None, str]:
+def edge_reference(base: Activation, depth: int, leaky_k: float | None = None
+                   ) -> tuple[EdgeReference | None, str]:
     """The base at its edge of chaos with q* = 1 (or sigma_b2 = 0), its network map.
 
+    ``leaky_k``: for ReLU and leaky ReLU, whose normalised map at the edge is the
+    closed form of :mod:`.leaky` with this coefficient, the trajectory comes from it.
     Returns the reference (None when the base has no edge of chaos) and a note.
     """
     point = edge_of_chaos(base, 1.0)
@@ -79,7 +82,8 @@ def edge_reference(base: Activation, depth: int) -> tuple[EdgeReference | None, 
         point = others[0]
     sw, sb, q = float(point.sigma_w2), float(point.sigma_b2), float(point.q_star)
     sb = 0.0 if abs(sb) <= 1e-12 * q else sb  # the rounding of q* - sigma_w2 E[phi^2]
-    cs = compose_correlation_map(base, 0.0, depth, sw, sb, q, trajectory=True)
+    cs = (leaky_trajectory(leaky_k, depth) if leaky_k is not None
+          else compose_correlation_map(base, 0.0, depth, sw, sb, q, trajectory=True))
     ref = EdgeReference(activation=base.label, sigma_w2=sw, sigma_b2=sb, q_star=q,
                         network_map_at_0=float(cs[-1]),
                         network_slope_at_1=network_slope_at_one(base, depth, sw, q),

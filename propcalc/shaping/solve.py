@@ -277,7 +277,11 @@ def _finish(base: Activation, shaped: Activation, method: str, form: str, depth:
             target: float, params: dict[str, float], lm: Any, conditions: tuple[Condition, ...],
             trajectory: np.ndarray, roots: tuple[ShapingRoot, ...], choice: str,
             residual: Any, notes: list[str]) -> ShapedActivation:
-    reference, ref_note = edge_reference(base, depth)
+    leaky_k = None
+    if form == "slope":  # ReLU or leaky ReLU: the closed form at the edge (module leaky)
+        leaky_k = leaky_coefficient(float(base.params.get("slope", 0.0))
+                                    if base.name == "leaky_relu" else 0.0)
+    reference, ref_note = edge_reference(base, depth, leaky_k)
     notes.append(ref_note)
     prop = propagation(shaped, 1.0, 0.0, depth=depth, q_input=1.0)
     reached = float(trajectory[-1])
