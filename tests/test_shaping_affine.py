@@ -213,10 +213,23 @@ def test_homogeneous_activation_has_no_dks_root():
 
 
 def test_linear_activation_cannot_be_shaped():
-    with pytest.raises(propcalc.ShapingError, match="no transform"):
+    with pytest.raises(propcalc.ShapingError, match="affine"):
         propcalc.shape_activation("linear", 50, method="dks")
-    with pytest.raises(propcalc.ShapingError):
-        propcalc.shape_activation("x", 50, method="tat")
+    with pytest.raises(propcalc.ShapingError, match="nothing to shape"):
+        propcalc.shape_activation("2 * x + 1", 50, method="tat")
+
+
+def test_typed_homogeneous_formula_is_refused_with_the_way_out():
+    with pytest.raises(propcalc.ShapingError, match="leaky_relu' with method 'tat'"):
+        propcalc.shape_activation("where(x > 0, x, 0.2 * x)", 50, method="tat")
+
+
+def test_no_root_is_reported_with_the_search_region():
+    # hard_tanh: the curve Q'(1) = 1 runs along beta = 1, where f = alpha min(z, 0) + 1 up to
+    # the clip and C'(1) = (1/2) / (1/2 - 1/(2 pi)) = 1.467 for every alpha (closed form), so
+    # there is no DKS root at zeta^(1/L) = 1.5^(1/100)
+    with pytest.raises(propcalc.ShapingError, match="searched alpha in"):
+        propcalc.shape_activation("hard_tanh", 100, method="dks")
 
 
 @pytest.mark.parametrize("kwargs,field", [
