@@ -15,7 +15,7 @@ Networks: ``depth`` hidden Linear layers of ``width`` units without bias, each f
 the activation, and a Linear readout to 10 classes (std 1 / sqrt(width), no bias). Cases:
 
 * ``relu, edge of chaos``: ReLU with weights of variance 2 / fan_in (He et al. 2015; the edge
-  of chaos of ReLU, sigma_b2 = 0);
+  of chaos of ReLU, sigma_b2 = 0), Gaussian or scaled orthogonal;
 * ``shaped (tat)``: ``propcalc.shape_activation("relu", depth, target=0.9)``, the leaky
   form, with weights of variance 1 / fan_in (Gaussian), as the result says;
 * ``shaped (tat), orthogonal``: the same with scaled orthogonal weights.
@@ -132,6 +132,9 @@ def main() -> None:
     parser.add_argument("--lrs", type=float, nargs="+", default=[0.001],
                         help="learning rates, each case trained at every one")
     parser.add_argument("--target", type=float, default=0.9)
+    parser.add_argument("--cases", type=int, nargs="*", default=None,
+                        help="indices of the cases to run (0: relu, 1: relu orthogonal, "
+                             "2: shaped, 3: shaped orthogonal); all by default")
     args = parser.parse_args()
     import torch
 
@@ -145,10 +148,13 @@ def main() -> None:
     ref = shaped.reference
     cases = [
         ("relu, edge of chaos", relu, 2.0, False, ref.network_map_at_0),
+        ("relu, edge of chaos, orthogonal", relu, 2.0, True, ref.network_map_at_0),
         (f"shaped (tat, slope {shaped.params['slope']:.4f})", act_shaped, 1.0, False,
          shaped.network_map_at_0),
         ("shaped (tat), orthogonal", act_shaped, 1.0, True, shaped.network_map_at_0),
     ]
+    if args.cases:
+        cases = [cases[i] for i in args.cases]
     print(f"digits (sklearn), depth {args.depth}, width {args.width}, {args.steps} steps of "
           f"{args.optimizer}{' (momentum 0.9)' if args.optimizer == 'sgd' else ''}, batch 128, "
           f"seeds {args.seeds}")
