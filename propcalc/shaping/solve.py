@@ -126,7 +126,7 @@ def shape_activation(act: str | Activation, depth: int, target: float | None = N
     >>> import propcalc
     >>> shaped = propcalc.shape_activation("relu", 100, target=0.9)
     >>> round(shaped.params["slope"], 4)
-    0.9698
+    0.5704
     """
     method, depth, value = _check(method, depth, target, allow_negative_slope)
     base = activation(act)
