@@ -119,3 +119,23 @@ def test_no_residual_equivalent_beyond_relu():
     shaped = propcalc.shape_activation("relu", 5, target=0.9, allow_negative_slope=True)
     assert shaped.residual_equivalent is None
     assert network_value(K_RELU, 5) < 0.9
+
+
+@pytest.mark.parametrize("spec,method", [("relu", "tat"), ("tanh", "dks"), ("gelu", "tat")])
+def test_network_description_through_the_network_analysis(spec, method):
+    # the shaped plain network, described block by block, through propcalc.network_propagation
+    # (the network analysis of issue 14): the same C_L(0) and, for dks, gradient growth zeta
+    shaped = propcalc.shape_activation(spec, 40, method=method)
+    result = propcalc.network_propagation(shaped.network_description, q0=1.0, c0=0.0)
+    assert len(result.c) == 2 + 2 * 40  # the input, the first dense layer, 40 x (act, dense)
+    assert result.c[-1] == pytest.approx(shaped.network_map_at_0, abs=1e-10)
+    assert result.q[-1] == pytest.approx(1.0, rel=1e-10)  # Q(1) = 1 every layer
+    assert result.gradient[0] == pytest.approx(shaped.network_slope_at_1, rel=1e-10)
+
+
+def test_residual_equivalent_through_the_network_analysis():
+    for spec in ("relu", "gelu"):
+        shaped = propcalc.shape_activation(spec, 60, target=0.85)
+        result = propcalc.network_propagation(shaped.residual_equivalent.description,
+                                              q0=1.0, c0=0.0)
+        assert result.c[-1] == pytest.approx(0.85, abs=1e-10)

@@ -44,7 +44,7 @@ class _Passes:
         yield from self.done
         while not self.failed and len(self.done) < len(SERIES_PASSES):
             kmax, rule = SERIES_PASSES[len(self.done)]
-            b, m2 = coefficients_at(self.act, self.q, kmax, rule)
+            b, m2 = coefficients_at(self.act.value, self.act.breakpoints, self.q, kmax, rule)
             rest = m2 - float(b.sum())
             if not (math.isfinite(rest) and m2 > 0 and rest >= -1e-12 * m2):
                 self.failed = True  # Parseval's check failed: no series for this activation

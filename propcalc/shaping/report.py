@@ -10,7 +10,8 @@ import numpy as np
 from ..activations.base import Activation
 from ..activations.formula import formula_activation
 from ..errors import PropcalcError
-from ..meanfield.criticality import Propagation, edge_of_chaos, edge_of_chaos_at_bias
+from ..meanfield.edge import edge_of_chaos, edge_of_chaos_at_bias
+from ..meanfield.report import Propagation
 from ..meanfield.maps import (chi_1, correlation_map, variance_map, variance_map_slope)
 from ..numerics.quadrature import gaussian_expectation
 from .leaky import K_RELU, UnreachableTargetError, leaky_trajectory, solve_coefficient

@@ -10,7 +10,7 @@ import numpy as np
 
 from ..activations.base import Activation
 from ..errors import PropcalcError
-from ..meanfield.criticality import Propagation
+from ..meanfield.report import Propagation
 from ..results import OMIT, Result
 
 __all__ = [
@@ -238,6 +238,11 @@ class ShapedActivation(Result):
     reference : EdgeReference or None
         The base activation at its edge of chaos (the map before shaping).
     residual_equivalent : ResidualEquivalent or None
+    network_description : mapping or None
+        The shaped plain network in the blocks format of the network analysis
+        (:func:`propcalc.network_propagation`): a dense input layer, then ``depth``
+        times the shaped activation (as its formula) and a dense layer, all with
+        sigma_w2 = 1 and sigma_b2 = 0. None when the activation has no formula text.
     notes : tuple of str
     propagation : Propagation
         The full propagation report of the shaped activation (not in the dict form).
@@ -267,6 +272,7 @@ class ShapedActivation(Result):
     depth_verdict: DepthVerdict | None = None
     reference: EdgeReference | None = None
     residual_equivalent: ResidualEquivalent | None = None
+    network_description: Mapping[str, Any] | None = None
     notes: tuple[str, ...] = ()
     propagation: Propagation | None = field(default=None, metadata=OMIT, repr=False)
     base_activation: Activation | None = field(default=None, metadata=OMIT, repr=False)

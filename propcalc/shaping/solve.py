@@ -31,7 +31,7 @@ import numpy as np
 from ..activations.base import Activation
 from ..activations.resolver import activation
 from ..errors import InvalidParameterError, check_finite, check_int
-from ..meanfield.criticality import propagation
+from ..meanfield.report import propagation
 from ..meanfield.maps import chi_1, correlation_map, variance_map, variance_map_slope
 from .affine import ALPHA_RANGE, BETA_HALF_WIDTH, Candidate, ShapingSystem, find_candidates
 from .leaky import (K_ABS, K_RELU, leaky_coefficient, leaky_trajectory,
@@ -301,6 +301,16 @@ def _homogeneous_message(base: Activation, method: str) -> str | None:
             f"has one parameter fewer than the four conditions of '{method}': {tip}")
 
 
+def _description(shaped: Activation, params: dict[str, float], depth: int
+                 ) -> dict[str, Any] | None:
+    """The shaped plain network as a network description (see ShapedActivation)."""
+    if shaped.formula is None:
+        return None
+    dense = {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0}}
+    act = {"activation": {"formula": shaped.formula, "params": dict(params)}}
+    return {"blocks": [dense, {"repeat": {"times": depth, "blocks": [act, dense]}}]}
+
+
 def _finish(base: Activation, shaped: Activation, method: str, form: str, depth: int,
             target: float, params: dict[str, float], lm: Any, conditions: tuple[Condition, ...],
             trajectory: np.ndarray, roots: tuple[ShapingRoot, ...], choice: str,
@@ -323,5 +333,6 @@ def _finish(base: Activation, shaped: Activation, method: str, form: str, depth:
         activation=shaped, weights=WEIGHTS, layer_map=lm, network_map_at_0=reached,
         network_slope_at_1=slope, correlations=tuple(float(c) for c in trajectory),
         conditions=conditions, roots=roots, choice_rule=choice, depth_verdict=verdict,
-        reference=reference, residual_equivalent=residual, notes=tuple(notes),
+        reference=reference, residual_equivalent=residual,
+        network_description=_description(shaped, params, depth), notes=tuple(notes),
         propagation=prop, base_activation=base)
