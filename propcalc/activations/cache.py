@@ -90,6 +90,14 @@ class ActivationCache(Generic[V]):
         return len(self._data)
 
     @property
+    def maxsize(self) -> int:
+        """The bound on entries (the name the engine's cache registry reads)."""
+        return self.max_entries
+
+    def __repr__(self) -> str:
+        return f"ActivationCache({self.name!r}, {len(self)}/{self.max_entries})"
+
+    @property
     def total_weight(self) -> int:
         """Sum of the weights of the entries kept."""
         return self._total
