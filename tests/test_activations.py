@@ -602,7 +602,23 @@ def test_clear_activation_caches_empties_every_activation_cache():
 
     activation("leaky_relu", slope=0.3)
     activation("x * sigmoid(x) + 0.125 * x")
-    assert {c.name for c in activation_caches()} >= {"built-in activations", "typed formulas"}
+    assert {c.name for c in activation_caches()} >= {"activations.builtins", "activations.formulas"}
     assert sum(len(c) for c in activation_caches()) >= 2
     clear_activation_caches()
     assert all(len(c) == 0 for c in activation_caches())
+
+
+def test_activation_caches_are_in_the_engine_registry():
+    # propcalc.clear_caches() (the one public call) empties the activation caches too
+    from propcalc import caches
+
+    registered = caches.caches()
+    assert {"activations.builtins", "activations.formulas"} <= set(registered)
+    a = activation("leaky_relu", slope=0.37)
+    activation("x * sigmoid(x) + 0.375 * x")
+    assert len(registered["activations.builtins"]) >= 1
+    propcalc.clear_caches()
+    assert len(registered["activations.builtins"]) == 0
+    assert len(registered["activations.formulas"]) == 0
+    b = activation("leaky_relu", slope=0.37)
+    assert b is not a and b.params == a.params  # rebuilt after the clear, same values

@@ -303,7 +303,7 @@ _PARAMS: dict[str, tuple[str, ...]] = {"leaky_relu": ("slope",), "elu": ("alpha"
 
 #: built activations per (name, parameters); bounded (issue 11: one entry per distinct
 #: parameter value must not grow without limit in a long-running service)
-BUILTIN_CACHE: ActivationCache[Activation] = ActivationCache("built-in activations", 256)
+BUILTIN_CACHE: ActivationCache[Activation] = ActivationCache("activations.builtins", 256)
 
 
 def canonical_builtin_name(text: str) -> str | None:

@@ -5,7 +5,8 @@ activation twice should give the same object. A service that takes parameters an
 anyone must not keep every distinct one forever, though: each cache here holds at most
 ``max_entries`` activations (and at most ``max_weight`` units of size, for formulas whose
 compiled graphs differ in size), evicting the least recently used. While an activation is
-cached, the same key returns the same object.
+cached, the same key returns the same object. Each cache joins the engine's registry
+(:mod:`propcalc.caches`), so :func:`propcalc.clear_caches` empties them with the others.
 """
 
 from __future__ import annotations
@@ -14,6 +15,8 @@ import threading
 from collections import OrderedDict
 from collections.abc import Callable, Hashable
 from typing import Generic, TypeVar
+
+from ..caches import register
 
 __all__ = ["ActivationCache", "clear_activation_caches", "activation_caches"]
 
@@ -28,7 +31,8 @@ class ActivationCache(Generic[V]):
     Parameters
     ----------
     name : str
-        What the cache holds (shown by :func:`activation_caches`).
+        Dotted name in the engine's cache registry (:mod:`propcalc.caches`), e.g.
+        ``"activations.builtins"``.
     max_entries : int
         Most entries kept.
     max_weight : int, optional
@@ -48,6 +52,7 @@ class ActivationCache(Generic[V]):
         self._total = 0
         self._lock = threading.Lock()
         _ALL.append(self)
+        register(self)  # propcalc.clear_caches() empties it too
 
     def get(self, key: Hashable) -> V | None:
         """The value kept under ``key`` (marked as recently used), or None."""

@@ -2,7 +2,8 @@
 ``max``/``min``, or a kinked built-in's argument changes sign.
 
 Found by bracketing on a fine grid over [-50, 50] and a coarse grid out to 1e4,
-and refined with :func:`scipy.optimize.brentq` (sign changes) or bisection on the
+and refined with Brent's method (:func:`propcalc.numerics.roots.brent`, to full
+precision) for sign changes, or bisection on the
 sign (the ends of runs of exact zeros).
 """
 
@@ -12,9 +13,9 @@ import math
 from collections.abc import Callable
 
 import numpy as np
-from scipy import optimize
 
 from ...errors import FormulaError
+from ...numerics.roots import brent
 from ..builtins import builtin_activation
 from .compiler import compile_node, evaluate_many
 from .tree import Builder, Node, postorder
@@ -27,6 +28,9 @@ Array = np.ndarray
 
 #: switch functions evaluated together on the grid (bounds the memory of one pass)
 _BATCH = 16
+#: relative width of a breakpoint's final bracket: 4 ulps (a breakpoint is a place, not a
+#: value of a noisy map, so it is located to the last bits)
+_FULL_PRECISION = 4 * float(np.finfo(float).eps)
 
 def _core_grid() -> Array:
     # k / 1000 exactly rounded: 0 and the integers are on the grid
@@ -130,11 +134,8 @@ def roots_of(fn: Callable[[Array], Array], grid: Array,
             continue
         if c1 != 0.0 and c2 != 0.0:
             fa, fb = scalar(a), scalar(b)
-            if fa * fb < 0:
-                roots.append(float(optimize.brentq(scalar, a, b, xtol=1e-300,
-                                                   rtol=4 * np.finfo(float).eps, maxiter=200)))
-            else:
-                roots.append(a if abs(fa) <= abs(fb) else b)
+            # Brent's method to full precision (same-signed ends: the better end)
+            roots.append(brent(scalar, a, b, fa, fb, rtol=_FULL_PRECISION))
         elif c2 == 0.0:
             after = runs[k + 2][0] if k + 2 < len(runs) else 2.0
             if s2 == e2 and after not in (0.0, 2.0):

@@ -142,7 +142,7 @@ def _weight(entry: tuple[Activation, FormulaSize]) -> int:
 #: formulas and 200,000 graph nodes in all (issue 11, section 4: a service taking formulas
 #: from anyone must not grow without bound)
 FORMULA_CACHE: ActivationCache[tuple[Activation, FormulaSize]] = ActivationCache(
-    "typed formulas", 512, max_weight=200_000, weight=_weight)
+    "activations.formulas", 512, max_weight=200_000, weight=_weight)
 
 
 def clear_formula_cache() -> None:

@@ -6,7 +6,8 @@ are its zeros (``(x - a)**2`` -> ``x - a``, ``2 * sqrt(u)`` -> ``u``), the facto
 evaluated on the search grid in one pass, and three kinds of candidate are collected:
 
 * exact zeros on the grid;
-* sign changes between neighbours, refined with Brent's method (a simple zero);
+* sign changes between neighbours, refined with Brent's method
+  (:func:`propcalc.numerics.roots.brent`; a simple zero);
 * local minima of ``|factor|`` whose parabola through the three grid values comes below
   1e-3 of the neighbours, refined by a bounded minimisation: zeros that touch 0 without a sign change
   (``(x - 0.0005)**2``, ``1 + cos(x)`` at pi) and near-zeros (``x**2 + 1e-150``); a minimum
@@ -31,6 +32,7 @@ import numpy as np
 from scipy import optimize
 
 from ...errors import FormulaError
+from ...numerics.roots import brent
 from .breakpoints import grid_points
 from .compiler import NodeFn, compile_node, constant_value, evaluate_many, vectorise
 from .printer import short_text
@@ -105,8 +107,7 @@ class _Candidate:
         if self.kind == "zero":
             return self.guess, 0.0
         if self.kind == "sign":
-            r = float(optimize.brentq(scalar, self.lo, self.hi, xtol=1e-300,
-                                      rtol=4 * np.finfo(float).eps, maxiter=200))
+            r = brent(scalar, self.lo, self.hi, rtol=4 * float(np.finfo(float).eps))
             return r, abs(scalar(r))
         res = optimize.minimize_scalar(lambda t: abs(scalar(t)), bounds=(self.lo, self.hi),
                                        method="bounded",
