@@ -99,6 +99,10 @@ class ActivationCache(Generic[V]):
         """The bound on entries (the name the engine's cache registry reads)."""
         return self.max_entries
 
+    @maxsize.setter
+    def maxsize(self, value: int) -> None:
+        self.max_entries = int(value)
+
     def __repr__(self) -> str:
         return f"ActivationCache({self.name!r}, {len(self)}/{self.max_entries})"
 
