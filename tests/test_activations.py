@@ -32,7 +32,7 @@ from propcalc import (
     activation,
     builtin_names,
 )
-from propcalc.activations.base import SELU_ALPHA, SELU_SCALE
+from propcalc.activations import SELU_ALPHA, SELU_SCALE
 
 # ---------------------------------------------------------------------------------------------
 # mpmath references: the textbook definition of each built-in, written independently
