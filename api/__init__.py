@@ -16,6 +16,16 @@ phase diagram, the variance and correlation maps and the depth scales
 
 from __future__ import annotations
 
-from ._app import create_app
+from typing import Any
 
 __all__ = ["create_app"]
+
+
+def __getattr__(name: str) -> Any:
+    # create_app on first use: importing propcalc_api (``propcalc serve`` is registered from
+    # propcalc_api._command) must not import flask
+    if name == "create_app":
+        from ._app import create_app
+
+        return create_app
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

@@ -31,6 +31,7 @@ from propcalc import (
     propagation,
     recommend,
 )
+from propcalc.cli.commands import propagation as propagation_commands
 from cli_helpers import run, strict_json
 
 
@@ -355,7 +356,7 @@ def test_a_computation_error_anywhere_exits_1(monkeypatch):
     def broken(*args, **kwargs):
         raise ComputationError("the quadrature did not converge (simulated)")
 
-    monkeypatch.setattr(cli.command, "propagation", broken)
+    monkeypatch.setattr(propagation_commands, "propagation", broken)
     code, out, err = run("report", "tanh", "-w", "1")
     assert (code, out) == (1, "")
     assert err == "propcalc: computation failed: the quadrature did not converge (simulated)\n"

@@ -520,7 +520,7 @@ def test_module_docstring_lists_every_subcommand():
     parser = cli.build_parser()
     sub = next(a for a in parser._actions if a.dest == "command")
     for name in sub.choices:
-        assert f"propcalc {name}" in cli.command.__doc__, name
+        assert f"propcalc {name}" in cli.__doc__, name
 
 
 # ---------------------------------------------------------------------------------------------

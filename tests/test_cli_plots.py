@@ -22,6 +22,7 @@ pytest.importorskip("matplotlib")
 
 import propcalc  # noqa: E402
 from propcalc import cli  # noqa: E402
+from propcalc.cli.commands import propagation as propagation_commands  # noqa: E402
 from propcalc.output import plots  # noqa: E402
 from cli_helpers import run  # noqa: E402
 
@@ -246,7 +247,7 @@ def test_without_matplotlib_one_line_exit_2_before_any_work(tmp_path, monkeypatc
     def no_work(*args, **kwargs):
         raise AssertionError("computed although the picture cannot be drawn")
 
-    monkeypatch.setattr(cli.command, "propagation", no_work)
+    monkeypatch.setattr(propagation_commands, "propagation", no_work)
     for argv in (["phase", "tanh"], ["report", "tanh", "-w", "1"], ["edge", "tanh"],
                  ["depth-scales", "tanh"]):
         code, out, err = run(*argv, "--plot", str(tmp_path / "x.png"))
