@@ -14,9 +14,9 @@ import pytest
 NETWORKS = pathlib.Path(__file__).resolve().parents[1] / "propcalc" / "networks"
 
 #: a module may import only the modules of a lower rank
-RANK = {"fields": 0, "blocks": 0, "description": 1, "kernels": 1, "rules": 2, "walk": 3,
-        "sim_blocks": 2, "simulate": 3, "spatial": 2, "summary": 4, "propagate": 5,
-        "targets": 6, "check": 6}
+RANK = {"fields": 0, "blocks": 0, "description": 1, "kernels": 1, "rules": 2, "mixing": 3, "walk": 4,
+        "sim_blocks": 2, "simulate": 3, "spatial": 2, "summary": 5, "propagate": 6,
+        "targets": 7, "check": 7}
 #: the engine's lower layers (errors/results/domains -> numerics -> activations -> meanfield)
 BELOW = {"errors", "results", "domains", "jsonable", "numerics", "activations", "meanfield"}
 

@@ -271,3 +271,44 @@ def test_position_correlations_must_be_compatible():
     with pytest.raises(propcalc.NetworkDescriptionError, match="several positions"):
         network_propagation({"blocks": [{"pooling": {"kind": "global_average", "positions": 4}},
                                         {"attention": {"tokens": 4}}]})
+
+
+def test_exploding_and_vanishing_signals_stop_with_their_reason():
+    # no NaN and no error from the maps' domain: the positions are reported as not computed
+    for blocks, word in (([repeat(100, dense(1e4), act("relu"))], "exploded"),
+                         ([repeat(400, dense(1e-6), act("tanh"))], "vanished"),
+                         ([dense(1.0), act("x**3"), dense(1.0), act("x**3"), dense(1.0),
+                           act("x**3")], "exploded")):
+        r = network_propagation({"blocks": blocks}, 100.0 if "x**3" in str(blocks) else 1.0, 0.2)
+        assert r.gaussian_positions < len(r.q) - 1
+        assert r.q[-1] is None and r.gradient[0] is None and r.simulation is None
+        assert word in r.notes[0] and "not run" in r.notes[1]
+        assert r.summary.findings[0].topic == "validity"
+        json.dumps(propcalc.jsonable(r.to_dict()), allow_nan=False)
+    # relu is homogeneous: its closed forms hold at any variance, so it underflows to 0 cleanly
+    r = network_propagation({"blocks": [repeat(100, dense(1e-6), act("relu"))]}, 1.0, 0.2)
+    assert r.q[-1] == 0.0 and r.c[-1] == 1.0
+
+
+def test_batch_norm_of_identical_inputs_is_refused_with_its_reason():
+    r = network_propagation({"blocks": [dense(1.0), act("relu"), {"norm": "batch"}]}, 1.0, 1.0)
+    assert r.gaussian_positions == 2 and "zero variance" in r.notes[0]
+    assert r.q[3] is None
+
+
+def test_summary_finds_merging_decorrelation_and_power_laws():
+    # ordered phase (Poole et al. 2016): c -> 1, inputs merge
+    r = network_propagation({"blocks": [repeat(60, dense(0.5, 0.1), act("tanh"))]}, 1.0, 0.0)
+    merged = r.summary.indistinguishable_at
+    assert merged is not None and 1 - r.c[merged] <= r.summary.distance < 1 - r.c[merged - 1]
+    # chaotic tanh without bias: c* = 0 (odd phi), similar inputs decorrelate
+    r = network_propagation({"blocks": [repeat(60, dense(4.0), act("tanh"))]}, 1.0, 0.99)
+    lost = r.summary.decorrelated_at
+    assert lost is not None and abs(r.c[lost]) <= 0.05 < abs(r.c[lost - 2])
+    assert r.summary.distance_ratio > 10
+    # ReLU residual network: 1 - c ~ 1/l^2 asymptotically (Yang & Schoenholz 2017: power laws,
+    # no exponential depth scale); c' = c + w^2 (2 k1(c) - c) / (1 + w^2), 2 k1(c) - c ~ (1-c)^1.5
+    r = network_propagation({"blocks": [repeat(3000, residual(act("relu"), dense(2.0)))]},
+                            1.0, 0.0)
+    law = next(x for x in r.summary.depth_laws if x.quantity == "1 - c")
+    assert law.law == "power" and -2.3 < law.exponent < -1.7

@@ -15,7 +15,7 @@ import math
 from dataclasses import dataclass, field
 from typing import Any
 
-from ..errors import InvalidParameterError, check_finite, check_positive
+from ..errors import ComputationError, InvalidParameterError, check_finite, check_positive
 from ..results import OMIT, Result
 from .blocks import Network
 from .description import network as parse_network
@@ -208,10 +208,14 @@ def network_propagation(network: Any, q0: float = 1.0, c0: float = 0.0, *,
     source = ["mean field"] * (n + 1)
     if known < n:
         reason = streams[known + 1].reason
+        fill = (simulate and not streams[known + 1].degenerate)
         notes.append(f"from position {known + 1} on ({tr.visits[known].path}) {reason}; "
                      + ("those positions are measured by a seeded finite-width simulation, "
-                        "with bands" if simulate else "no number is given there"))
-        if simulate:
+                        "with bands" if fill else "no number is given there"))
+        if simulate and streams[known + 1].degenerate:
+            notes.append("the simulation was not run: a finite-width network overflows or "
+                         "divides by zero there too")
+        elif simulate:
             sim, why = _simulate(net, q0, c0, cw, cb, simulation_width, seed)
             if sim is None:
                 notes.append(f"the simulation was not run: {why}")
@@ -246,6 +250,8 @@ def _simulate(net: Network, q0: float, c0: float, cw: float, cb: float, width: i
                               seed=seed)
     except InvalidParameterError as exc:
         return None, f"{exc} (call propcalc.simulate with a smaller width or grid)"
+    except ComputationError as exc:
+        return None, str(exc)
     return sim, ""
 
 

@@ -34,13 +34,15 @@ from typing import Any
 import numpy as np
 
 from ..activations.base import Activation
-from .blocks import Attention, Convolution, Dense, Dropout, Norm, Pooling
+from .blocks import Convolution, Dense, Dropout, Norm
+from ..domains import Q_MAX, Q_POSITIVE_MIN
 from .kernels import (
     Elementwise,
     composed,
     derivative_cross,
     moments,
     outer_derivative_moments,
+    piecewise_linear_slopes,
 )
 
 __all__ = [
@@ -57,10 +59,12 @@ __all__ = [
     "activation",
     "norm",
     "dropout",
-    "pooling",
-    "attention",
     "residual",
-    "logit_std",
+    "unknown",
+    "passed",
+    "width_ratio",
+    "product",
+    "Matrix",
 ]
 
 GAUSSIAN = "gaussian"
@@ -88,6 +92,7 @@ class Stream:
     fn: Elementwise | None = None
     width: int | None = None
     reason: str = ""
+    degenerate: bool = False
 
     @property
     def c(self) -> float:
@@ -127,10 +132,20 @@ def _diag(a: float, b: float | None = None) -> Matrix:
     return ((a, 0.0), (0.0, a if b is None else b))
 
 
-def unknown(stream: Stream, reason: str) -> Step:
-    """The stream becomes unknown from here on."""
+def unknown(stream: Stream, reason: str, degenerate: bool = False) -> Step:
+    """The stream becomes unknown from here on.
+
+    ``degenerate``: the signal itself has exploded, vanished or lost all variance (a
+    finite-width simulation would overflow or divide by zero too), as opposed to a stream
+    that is merely not Gaussian.
+    """
     return Step(Stream(math.nan, math.nan, math.nan, form=UNKNOWN, width=stream.width,
-                       reason=reason), None, (reason,))
+                       reason=reason, degenerate=degenerate), None, (reason,))
+
+
+def passed(stream: Stream) -> Step:
+    """An unknown stream through one more block: still unknown, no new note."""
+    return Step(stream, None)
 
 
 def _scaled(stream: Stream, scale: float, shift_moment: float, form: str,
@@ -147,7 +162,8 @@ def _scaled(stream: Stream, scale: float, shift_moment: float, form: str,
 
 
 # ---------------------------------------------------------------- weight blocks
-def _ratio(stream: Stream, width: int | None) -> float:
+def width_ratio(stream: Stream, width: int | None) -> float:
+    """n_out / n_in when both widths are known, else 1 (equal widths assumed)."""
     return 1.0 if (width is None or stream.width is None) else width / stream.width
 
 
@@ -165,8 +181,8 @@ def _linear(stream: Stream, sw: float, sb: float, width: int | None) -> Stream:
 def dense(stream: Stream, block: Dense) -> Step:
     """``h = W s + b``; backward factor sigma_w2 * n_out / n_in (fan-in scaling)."""
     if stream.form == UNKNOWN:
-        return unknown(stream, stream.reason)
-    f = block.sigma_w2 * _ratio(stream, block.width)
+        return passed(stream)
+    f = block.sigma_w2 * width_ratio(stream, block.width)
     return Step(_linear(stream, block.sigma_w2, block.sigma_b2, block.width), _diag(f))
 
 
@@ -177,11 +193,11 @@ def convolution(stream: Stream, block: Convolution) -> Step:
     Backward: sigma_w2 * (channels_out / channels_in) / prod(stride) per unit.
     """
     if stream.form == UNKNOWN:
-        return unknown(stream, stream.reason)
+        return passed(stream)
     stride = 1
     for s in block.stride:
         stride *= s
-    f = block.sigma_w2 * _ratio(stream, block.width) / stride
+    f = block.sigma_w2 * width_ratio(stream, block.width) / stride
     return Step(_linear(stream, block.sigma_w2, block.sigma_b2, block.width), _diag(f))
 
 
@@ -197,7 +213,7 @@ def activation(stream: Stream, act: Activation, *, derivative_pair: bool = False
     factor of the neural tangent kernel recursion of Jacot et al. 2018).
     """
     if stream.form == UNKNOWN:
-        return unknown(stream, stream.reason)
+        return passed(stream)
     if stream.form == GENERAL:
         return unknown(stream, "an activation applied to a stream that is not a function of one "
                                "Gaussian (after a residual sum of non-Gaussian parts, dropout, "
@@ -208,6 +224,11 @@ def activation(stream: Stream, act: Activation, *, derivative_pair: bool = False
     else:
         assert stream.u is not None and stream.fn is not None
         u, fn = stream.u, Elementwise(composed(act, stream.fn))
+    if (u.q > Q_MAX or 0.0 < u.q < Q_POSITIVE_MIN) and piecewise_linear_slopes(fn.act) is None:
+        grown = "exploded" if u.q > Q_MAX else "vanished"
+        return unknown(stream, f"the signal has {grown}: the activation {act.label} meets a "
+                               f"variance q = {u.q:.3g}, outside the range [1e-200, 1e12] where "
+                               "its Gaussian integrals are tested", degenerate=True)
     cu = [u.c]
     if u.kw is not None and u.kb is not None:
         cu += [_corr(u.kw, u.q), _corr(u.kb, u.q)]
@@ -254,7 +275,7 @@ def norm(stream: Stream, block: Norm) -> Step:
     nothing at infinite width; derived here).
     """
     if stream.form == UNKNOWN:
-        return unknown(stream, stream.reason)
+        return passed(stream)
     notes: tuple[str, ...] = ()
     if block.kind == "layer":
         shift = stream.m * stream.m
@@ -269,7 +290,7 @@ def norm(stream: Stream, block: Norm) -> Step:
         what = ("the two inputs (and the batch) are identical per unit" if block.kind == "batch"
                 else "the stream is constant across units")
         return unknown(stream, f"{block.kind} norm of a stream with zero variance ({what}): "
-                               "the normalisation divides by zero")
+                               "the normalisation divides by zero", degenerate=True)
     scale = block.gain / math.sqrt(denom)
     if block.kind == "batch":
         if stream.form == GAUSSIAN:
@@ -300,125 +321,12 @@ def dropout(stream: Stream, block: Dropout) -> Step:
     et al. 2017, section on dropout); backward ``1 / keep_rate`` on G.
     """
     if stream.form == UNKNOWN:
-        return unknown(stream, stream.reason)
+        return passed(stream)
     p = block.keep_rate
     if p == 1.0:
         return Step(stream, identity_matrix())
     out = replace(stream, q=stream.q / p, form=GENERAL, u=None, fn=None)
     return Step(out, _diag(1.0 / p, 1.0))
-
-
-# ---------------------------------------------------------------- positions
-def _need_positions(stream: Stream, what: str) -> None:
-    if stream.kw is None or stream.kb is None:
-        from .description import NetworkDescriptionError  # the error type only
-        raise NetworkDescriptionError("", f"a network where {what} sees several positions "
-                                          "(none after a global average pooling)", what)
-
-
-def pooling(stream: Stream, block: Pooling) -> Step:
-    """Average pooling over windows of k positions (stride: n = k / step windows per input
-    position), global average over P positions, or max pooling.
-
-    With exchangeable positions: ``q' = (q + (k - 1) kw) / k``,
-    ``k' = (k_ab + (k - 1) kb) / k``, cross-position moments unchanged; backward
-    ``G' = (n G + n (n - 1) Gw) / k^2``, ``Gw' = n^2 Gw / k^2`` (derived here).
-    Max pooling: the maximum of correlated values is not Gaussian; unknown.
-    """
-    if stream.form == UNKNOWN:
-        return unknown(stream, stream.reason)
-    if block.kind == "max":
-        return unknown(stream, "max pooling: the maximum of correlated units is not Gaussian")
-    _need_positions(stream, "pooling")
-    assert stream.kw is not None and stream.kb is not None
-    size = block.size
-    form = GAUSSIAN if stream.form == GAUSSIAN else GENERAL
-    q = (stream.q + (size - 1) * stream.kw) / size
-    k = (stream.k + (size - 1) * stream.kb) / size
-    if block.kind == "global_average":
-        out = Stream(q, k, stream.m, None, None, form, width=stream.width)
-        inv = 1.0 / (size * size)
-        return Step(out, ((inv, 0.0), (inv, 0.0)))
-    n = size / block.step
-    out = Stream(q, k, stream.m, stream.kw, stream.kb, form, width=stream.width)
-    inv = 1.0 / (size * size)
-    return Step(out, ((n * inv, n * (n - 1.0) * inv), (0.0, n * n * inv)))
-
-
-def logit_std(stream: Stream, block: Attention) -> float:
-    """Spread of one query's logits over the keys at initialisation.
-
-    ``query_key_scale * query_key_sigma_w2 * sqrt(q (q - kw) (1 - 1/T))``: the
-    query has per-component variance ``sigma_qk q``, the keys vary around their
-    mean with ``sigma_qk (q - kw)(1 - 1/T)``, and a shift common to all keys does
-    not change the softmax (derived here).
-    """
-    assert stream.kw is not None
-    t = block.tokens
-    spread = max(stream.q * (stream.q - stream.kw) * (1.0 - 1.0 / t), 0.0)
-    return block.query_key_scale * block.query_key_sigma_w2 * math.sqrt(spread)
-
-
-#: Above this logit spread the large-T lognormal approximation of the attention weights is
-#: off by more than a few percent (measured against seeded simulations at T = 16): a note.
-LOGIT_SPREAD_NOTE = 0.7
-
-
-def attention(stream: Stream, block: Attention) -> Step:
-    """Self-attention at initialisation, to second order in the logit spread.
-
-    With uniform weights (``query_key_scale = 0``) every output token is
-    ``W_O W_V xbar + b``, xbar the mean of the T input tokens: the output is rank
-    one (Noci et al. 2022, section 3), ``q' = kw' = S (q + (T - 1) kw) / T + sigma_b2``,
-    ``k' = kb' = S (k + (T - 1) kb) / T + sigma_b2`` with ``S = sigma_v sigma_o``.
-
-    Logits of spread s (:func:`logit_std`) are Gaussian at infinite width; for
-    many tokens the softmax normaliser concentrates, so
-    ``E[A_ts A_t's'] ~ exp(cov(l_ts, l_t's')) / T^2`` (a lognormal moment). Then
-    ``E[out_t out_t'] = S (kw + (q - kw) sum_s E[A_ts A_t's])`` gives
-    ``q' = S (kw + (q - kw) e^{s^2} / T)``, ``kw' = S (kw + (q - kw) e^{r_w s^2} / T)``,
-    ``k' = S (kb + (k - kb) e^{r_k s^2} / T)``, ``kb' = S (kb + (k - kb) e^{r_b s^2} / T)``
-    (plus sigma_b2), with ``r_w = kw / q``, ``r_k = k (k - kb) / (q (q - kw))``,
-    ``r_b = kb (k - kb) / (q (q - kw))`` (derived here; exact at s = 0).
-
-    Backward (output gradient moments G, Gw): the value path passes
-    ``S (e^{s^2} G + (T - 1) e^{r_w s^2} Gw) / T``; the query and key paths add
-    ``S tau^2 sigma_qk^2 (q - kw) ((2 q - kw) G + (T - 1) kw Gw) / T`` (tau the
-    query_key_scale; derived here to order tau^2); the cross-position moment
-    is that of uniform attention, ``S (G + (T - 1) Gw) / T``.
-    """
-    if stream.form == UNKNOWN:
-        return unknown(stream, stream.reason)
-    _need_positions(stream, "attention")
-    assert stream.kw is not None and stream.kb is not None
-    t = block.tokens
-    q, k, kw, kb = stream.q, stream.k, stream.kw, stream.kb
-    big = block.value_sigma_w2 * block.output_sigma_w2
-    spread = logit_std(stream, block)
-    s2 = spread * spread
-    gap = q - kw
-    if gap > 0.0 and q > 0.0:
-        r_w, r_k, r_b = kw / q, k * (k - kb) / (q * gap), kb * (k - kb) / (q * gap)
-    else:
-        r_w = r_k = r_b = 0.0
-    sb = block.sigma_b2
-    q_new = big * (kw + gap * math.exp(s2) / t) + sb
-    kw_new = big * (kw + gap * math.exp(r_w * s2) / t) + sb
-    k_new = big * (kb + (k - kb) * math.exp(r_k * s2) / t) + sb
-    kb_new = big * (kb + (k - kb) * math.exp(r_b * s2) / t) + sb
-    width = block.width if block.width is not None else stream.width
-    out = Stream(q_new, k_new, 0.0, kw_new, kb_new, GAUSSIAN, width=width)
-    notes: tuple[str, ...] = ()
-    if spread > LOGIT_SPREAD_NOTE:
-        notes = (f"the query-key logits spread by {spread:.3g} (standard deviation over keys) "
-                 "at initialisation: the attention weights are far from uniform and the "
-                 "second-order prediction here is an approximation; lower query_key_scale or "
-                 "query_key_sigma_w2, or check with propcalc.simulate",)
-    f = big * _ratio(stream, width) / t
-    tau2 = (block.query_key_scale * block.query_key_sigma_w2) ** 2
-    g_g = f * (math.exp(s2) + tau2 * gap * (2.0 * q - kw))
-    g_w = f * (t - 1) * (math.exp(r_w * s2) + tau2 * gap * kw)
-    return Step(out, ((g_g, g_w), (f, f * (t - 1))), notes, {"logit_std": spread})
 
 
 # ---------------------------------------------------------------- residual
@@ -434,9 +342,10 @@ def residual(stream: Stream, branch_out: Stream, branch_matrix: Matrix | None, w
     weight in it; Yang & Schoenholz 2017).
     """
     a, w = shortcut, weight
-    if stream.form == UNKNOWN or (w != 0.0 and branch_out.form == UNKNOWN):
-        reason = stream.reason if stream.form == UNKNOWN else branch_out.reason
-        return unknown(stream, reason).stream, None
+    if stream.form == UNKNOWN:
+        return stream, None
+    if w != 0.0 and branch_out.form == UNKNOWN:
+        return branch_out, None
     if w == 0.0:
         return stream, _diag(a * a)
     mm = 2.0 * a * w * stream.m * branch_out.m

@@ -29,7 +29,14 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import InvalidParameterError, check_finite, check_int, check_nonnegative, check_positive
+from ..errors import (
+    ComputationError,
+    InvalidParameterError,
+    check_finite,
+    check_int,
+    check_nonnegative,
+    check_positive,
+)
 from ..results import OMIT, Result
 from .blocks import Attention, Block, Convolution, Dense, Network, Pooling, Repeat, Residual
 from .description import network as parse_network
@@ -317,6 +324,22 @@ def measure_network(description: Any, *, q0: float = 1.0, c0: float = 0.5,
                                              "(width, inputs, grid and repetitions)",
                                     n, f"this simulation needs {work:.3g}")
     root = np.random.SeedSequence(seed)
+    with np.errstate(all="ignore"):
+        data = _run_all(net, root, reps, n, n_inputs, n_pos, shape, q0, c0, cw, cb)
+    # q, c and the gradient must be finite (c_within and c_between are NaN at one position)
+    bad = ~np.all(np.isfinite(data[:, :, [0, 1, 4]]), axis=(0, 2))
+    if np.any(bad):
+        i = int(np.argmax(bad))
+        raise ComputationError(f"the simulated networks overflow or divide by zero at position "
+                               f"{i}: no finite measurement there (lower the weight variances "
+                               "or the depth)")
+    return _assemble(net, data, n, shape, n_inputs, reps, seed, tol, predict, q0, c0, cw, cb)
+
+
+def _run_all(net: Network, root: np.random.SeedSequence, reps: int, n: int, n_inputs: int,
+             n_pos: int, shape: tuple[int, ...], q0: float, c0: float, cw: float,
+             cb: float) -> np.ndarray:
+    """(repetitions, positions, 5): q, c, c_within, c_between, gradient per position."""
     per_rep = []
     for child in root.spawn(reps):
         run = _Run(child, n)
@@ -337,8 +360,7 @@ def measure_network(description: Any, *, q0: float = 1.0, c0: float = 0.5,
         grads = grads[::-1]
         rows = [_measure(x) + (gr / grads[-1],) for x, gr in zip(record, grads)]
         per_rep.append(rows)
-    data = np.array(per_rep)  # (reps, positions, 5)
-    return _assemble(net, data, n, shape, n_inputs, reps, seed, tol, predict, q0, c0, cw, cb)
+    return np.array(per_rep)
 
 
 def _grid(net: Network, grid: Any) -> tuple[int, ...]:

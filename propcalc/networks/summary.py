@@ -200,11 +200,16 @@ def summarise(net: Network, tr: Trace, q: list[float | None], c: list[float | No
     n = len(q) - 1
     residual = _has(net.blocks, lambda b: isinstance(b, Residual))
     batch = _has(net.blocks, lambda b: isinstance(b, Norm) and b.kind == "batch")
-    for note in notes:
-        findings.append(Finding("validity", known + 1 if known < n else None, None, note,
-                                "keep activations inside residual branches (x + F(x) with F "
-                                "ending in a dense or convolution block) so the stream stays "
-                                "Gaussian" if known < n else ""))
+    for i, note in enumerate(notes):
+        if i == 0 and known < n:
+            degenerate = tr.visits[known].step.stream.degenerate
+            advice = ("scale the weight variances or branch weights so the signal stays in range, "
+                      "or add a normalisation layer" if degenerate else
+                      "keep activations inside residual branches (x + F(x) with F ending in a "
+                      "dense or convolution block) so the stream stays Gaussian")
+        else:
+            advice = ""
+        findings.append(Finding("validity", known + 1 if known < n else None, None, note, advice))
     fix_corr = ("lower the residual branch weight (propcalc.networks.branch_weight finds one "
                 "for a target)" if residual else
                 "move the initialisation towards the edge of chaos (propcalc.recommend)")

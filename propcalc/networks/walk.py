@@ -25,6 +25,7 @@ from .blocks import (
     Repeat,
     Residual,
 )
+from .mixing import attention, pooling
 from .rules import (
     GAUSSIAN,
     Q_LIMIT,
@@ -33,13 +34,11 @@ from .rules import (
     Step,
     Stream,
     activation,
-    attention,
     convolution,
     dense,
     dropout,
     identity_matrix,
     norm,
-    pooling,
     residual,
     unknown,
 )
@@ -111,7 +110,8 @@ def _checked(step: Step) -> Step:
     values = [s.q, s.k, s.m] + [x for x in (s.kw, s.kb) if x is not None]
     if all(math.isfinite(x) for x in values) and s.q <= Q_LIMIT:
         return step
-    gone = unknown(s, f"the signal has exploded (second moment above {Q_LIMIT:g})")
+    gone = unknown(s, f"the signal has exploded (second moment above {Q_LIMIT:g})",
+                   degenerate=True)
     return replace(gone, matrix=None)
 
 
