@@ -238,6 +238,9 @@ def moments(fn: Elementwise, q: float, cs: Any) -> tuple[Moments, float]:
         cross = _linear_moments(slopes, q, cs).cross
     elif q == 0.0:
         cross = np.full(cs.shape, m1 * m1)
+    elif fn.act.smoothing is not None and cs.size > 1:
+        # one vectorised call of the 1-D conditional route for every correlation
+        cross = np.asarray(maps.correlation_map(fn.act, cs, 1.0, 0.0, q), dtype=float) * m2
     else:
         cross = np.empty(cs.shape)
         for i, c in enumerate(cs.ravel()):

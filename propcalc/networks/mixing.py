@@ -117,10 +117,10 @@ def attention(stream: Stream, block: Attention) -> Step:
     out = Stream(q_new, k_new, 0.0, kw_new, kb_new, GAUSSIAN, width=width)
     notes: tuple[str, ...] = ()
     if spread > LOGIT_SPREAD_NOTE:
-        notes = (f"the query-key logits spread by {spread:.3g} (standard deviation over keys) "
-                 "at initialisation: the attention weights are far from uniform and the "
-                 "second-order prediction here is an approximation; lower query_key_scale or "
-                 "query_key_sigma_w2, or check with propcalc.simulate",)
+        notes = (f"the query-key logits spread by more than {LOGIT_SPREAD_NOTE:g} (standard "
+                 "deviation over keys at initialisation, logit_std): the attention weights are "
+                 "far from uniform and the second-order prediction is an approximation; lower "
+                 "query_key_scale or query_key_sigma_w2, or check with propcalc.simulate",)
     f = big * width_ratio(stream, width) / t
     tau2 = (block.query_key_scale * block.query_key_sigma_w2) ** 2
     g_g = f * (math.exp(s2) + tau2 * gap * (2.0 * q - kw))
