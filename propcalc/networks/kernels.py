@@ -89,13 +89,13 @@ class Moments:
     ----------
     mean, second : float
         E[f(u)], E[f(u)^2].
-    cross : ndarray
+    cross : tuple of float
         E[f(u_1) f(u_2)] at each requested correlation.
     """
 
     mean: float
     second: float
-    cross: Array
+    cross: tuple[float, ...]
 
 
 class _Lru:
@@ -167,21 +167,10 @@ def piecewise_linear_slopes(act: Activation) -> tuple[float, float] | None:
     return out
 
 
-def _k1(c: Array) -> Array:
-    # Cho & Saul 2009, eq. 6 with n = 1, divided by 2 pi: E[relu(u1) relu(u2)] / q;
-    # sqrt(1 - c^2) as sqrt((1 - c)(1 + c)), which keeps its digits near c = +-1
-    return (np.sqrt((1.0 - c) * (1.0 + c)) + (math.pi - np.arccos(c)) * c) / _TWO_PI
-
-
 def _k1_scalar(c: float) -> float:
+    """E[relu(u1) relu(u2)] / q at correlation c (Cho & Saul 2009, eq. 6 with n = 1, divided by
+    2 pi); sqrt(1 - c^2) as sqrt((1 - c)(1 + c)), which keeps its digits near c = +-1."""
     return (math.sqrt((1.0 - c) * (1.0 + c)) + (math.pi - math.acos(c)) * c) / _TWO_PI
-
-
-def _linear_moments(slopes: tuple[float, float], q: float, cs: Array) -> Moments:
-    alpha, beta = slopes
-    s2 = alpha * alpha + beta * beta
-    cross = q * (s2 * _k1(cs) - 2.0 * alpha * beta * _k1(-cs))
-    return Moments((alpha - beta) * math.sqrt(q / _TWO_PI), q * s2 / 2.0, cross)
 
 
 def _linear_derivative_cross(slopes: tuple[float, float], cs: Array) -> Array:
@@ -227,31 +216,28 @@ def moments(fn: Elementwise, q: float, cs: Any) -> tuple[Moments, float]:
     """
     m1, m2, d2 = _one_d(fn.act, q)
     slopes = piecewise_linear_slopes(fn.act)
-    cs = np.clip(np.asarray(cs, dtype=float), -1.0, 1.0)
-    if slopes is not None and cs.size == 1:
-        # the closed form on a Python float (no array overhead in long walks)
-        c = float(cs.ravel()[0])
+    cl = [min(1.0, max(-1.0, float(c))) for c in np.ravel(cs)]
+    if slopes is not None:
+        # Cho & Saul 2009 on Python floats (no array overhead in long walks)
         alpha, beta = slopes
-        cross = np.array([q * ((alpha * alpha + beta * beta) * _k1_scalar(c)
-                               - 2.0 * alpha * beta * _k1_scalar(-c))])
-    elif slopes is not None:
-        cross = _linear_moments(slopes, q, cs).cross
+        s2, ab = alpha * alpha + beta * beta, 2.0 * alpha * beta
+        cross = [q * (s2 * _k1_scalar(c) - ab * _k1_scalar(-c)) for c in cl]
     elif q == 0.0:
-        cross = np.full(cs.shape, m1 * m1)
-    elif fn.act.smoothing is not None and cs.size > 1:
+        cross = [m1 * m1] * len(cl)
+    elif fn.act.smoothing is not None and len(cl) > 1:
         # one vectorised call of the 1-D conditional route for every correlation
-        cross = np.asarray(maps.correlation_map(fn.act, cs, 1.0, 0.0, q), dtype=float) * m2
+        cross = [float(v) * m2 for v in
+                 np.ravel(maps.correlation_map(fn.act, np.array(cl), 1.0, 0.0, q))]
     else:
-        cross = np.empty(cs.shape)
-        for i, c in enumerate(cs.ravel()):
-            # the engine's correlation map at sigma_w2 = 1, sigma_b2 = 0 is E[f f'] / E[f^2]; its
-            # scalar route uses the cached Hermite series at a repeated q (tens of us a call)
-            cross.flat[i] = m2 if c == 1.0 else float(
-                maps.correlation_map(fn.act, float(c), 1.0, 0.0, q)) * m2
+        # the engine's correlation map at sigma_w2 = 1, sigma_b2 = 0 is E[f f'] / E[f^2]; its
+        # scalar route uses the cached Hermite series at a repeated q (tens of us a call)
+        cross = [m2 if c == 1.0 else float(maps.correlation_map(fn.act, c, 1.0, 0.0, q)) * m2
+                 for c in cl]
     a, b = fn.a, fn.b
     # s = a f + b: E[s] = a E[f] + b, E[s s'] = a^2 E[f f'] + 2 a b E[f] + b^2
-    return (Moments(a * m1 + b, a * a * m2 + 2 * a * b * m1 + b * b,
-                    a * a * cross + 2 * a * b * m1 + b * b), d2)
+    shift = 2 * a * b * m1 + b * b
+    return (Moments(a * m1 + b, a * a * m2 + shift,
+                    tuple(a * a * x + shift for x in cross)), d2)
 
 
 def derivative_cross(act: Activation, q: float, cs: Any) -> Array:
