@@ -18,7 +18,8 @@ RANK = {"fields": 0, "blocks": 0, "description": 1, "kernels": 1, "rules": 2, "m
         "sim_blocks": 2, "simulate": 3, "spatial": 2, "summary": 5, "propagate": 6,
         "targets": 7, "check": 7}
 #: the engine's lower layers (errors/results/domains -> numerics -> activations -> meanfield)
-BELOW = {"errors", "results", "domains", "jsonable", "numerics", "activations", "meanfield"}
+BELOW = {"errors", "results", "domains", "caches", "jsonable", "numerics", "activations",
+         "meanfield"}
 
 
 def _imports(name: str) -> tuple[set[str], set[str]]:

@@ -31,8 +31,6 @@ a breakpoint of phi (found by bracketing on a fixed grid).
 from __future__ import annotations
 
 import math
-import threading
-from collections import OrderedDict
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
@@ -41,6 +39,7 @@ import numpy as np
 from scipy import optimize
 
 from ..activations.base import Activation
+from ..caches import BoundedCache
 from ..meanfield import maps
 from ..numerics.quadrature import bivariate_expectation, gaussian_expectation
 
@@ -98,48 +97,16 @@ class Moments:
     cross: tuple[float, ...]
 
 
-class _Lru:
-    """A small thread-safe LRU dictionary."""
-
-    def __init__(self, size: int) -> None:
-        self.size = size
-        self.data: OrderedDict[Any, Any] = OrderedDict()
-        self.lock = threading.Lock()
-
-    def get(self, key: Any) -> Any:
-        with self.lock:
-            if key in self.data:
-                self.data.move_to_end(key)
-                return self.data[key]
-        return None
-
-    def put(self, key: Any, value: Any) -> None:
-        with self.lock:
-            self.data[key] = value
-            if len(self.data) > self.size:
-                self.data.popitem(last=False)
-
-    def clear(self) -> None:
-        with self.lock:
-            self.data.clear()
-
-
-_ONE_D = _Lru(8192)        # (act id, q) -> (E[phi], E[phi^2], E[phi'^2])
-_SLOPES = _Lru(256)        # act id -> (alpha, beta) or None
-_COMPOSED = _Lru(256)      # (outer id, inner key) -> Activation
-_KEEP: dict[int, Activation] = {}  # activations whose id is a cache key stay alive
+#: (activation, q) -> (E[phi], E[phi^2], E[phi'^2]); activation -> slopes or (); compositions
+_ONE_D = BoundedCache("networks.moments", 8192)
+_SLOPES = BoundedCache("networks.slopes", 256)
+_COMPOSED = BoundedCache("networks.compositions", 256)
 
 
 def clear_kernel_caches() -> None:
-    """Forget the cached moments and composed activations."""
+    """Forget the cached moments and composed activations (also done by propcalc.clear_caches)."""
     for c in (_ONE_D, _SLOPES, _COMPOSED):
         c.clear()
-    _KEEP.clear()
-
-
-def _keep(act: Activation) -> int:
-    _KEEP.setdefault(id(act), act)
-    return id(act)
 
 
 # ------------------------------------------------------------------ piecewise linear
@@ -150,7 +117,7 @@ def piecewise_linear_slopes(act: Activation) -> tuple[float, float] | None:
     equal the slope times x exactly (relu, leaky relu, linear and formulas such
     as ``max(x, 0.2 * x)`` pass), and phi(0) = 0.
     """
-    key = _keep(act)
+    key = act  # activations hash by identity; the cache holds them, so keys stay valid
     hit = _SLOPES.get(key)
     if hit is not None:
         return hit or None
@@ -183,7 +150,7 @@ def _linear_derivative_cross(slopes: tuple[float, float], cs: Array) -> Array:
 # ------------------------------------------------------------------ one activation
 def _one_d(act: Activation, q: float) -> tuple[float, float, float]:
     """(E[phi], E[phi^2], E[phi'^2]) at variance q, cached per (act, q)."""
-    key = (_keep(act), q)
+    key = (act, q)
     hit = _ONE_D.get(key)
     if hit is not None:
         return hit
@@ -275,8 +242,7 @@ def _preimages(fn: Callable[[Array], Array], levels: tuple[float, ...]) -> list[
 
 def composed(outer: Activation, inner: Elementwise) -> Activation:
     """The Activation ``x -> outer(a inner(x) + b)`` with its exact derivative and breakpoints."""
-    key = (_keep(outer), inner._key())
-    _keep(inner.act)
+    key = (outer, inner.act, inner.a, inner.b)
     hit = _COMPOSED.get(key)
     if hit is not None:
         return hit

@@ -188,7 +188,7 @@ def network_propagation(network: Any, q0: float = 1.0, c0: float = 0.0, *,
     >>> r = propcalc.network_propagation({"blocks": [{"repeat": {"times": 20, "blocks": [
     ...     {"dense": {"sigma_w2": 2.0, "sigma_b2": 0.0}}, {"activation": "relu"}]}}]})
     >>> round(r.q[-1], 12), len(r.c)
-    (0.5, 41)
+    (1.0, 41)
     """
     net = parse_network(network)
     q0, c0, cw, cb = check_inputs(q0, c0, c0_within, c0_between, net.uses_positions())

@@ -9,9 +9,8 @@ single-point propagation reports, measured in the same run.
 
 Baseline: propcalc.propagation(act, sigma_w2, sigma_b2) at 10 distinct points of the plane
 (so no report reuses another's cached per-q numbers), for tanh, relu and gelu; the mean time of
-one report. Each network is timed from cold caches (the network moments' caches and the
-engine's per-q caches emptied; the cached quadrature rules kept, as any second call keeps
-them), with simulate=False (the networks here stay Gaussian). Both wall-clock and CPU time of
+one report, from cold caches (propcalc.clear_caches()). Each network is timed from cold caches
+too, with simulate=False (the networks here stay Gaussian). Both wall-clock and CPU time of
 this process are given (other users' load inflates the first, not the second); the ratio uses
 CPU time. OMP_NUM_THREADS=1 is set before numpy is imported.
 Nothing here asserts on time.
@@ -27,8 +26,6 @@ import argparse  # noqa: E402
 import time  # noqa: E402
 
 import propcalc  # noqa: E402
-from propcalc.networks.kernels import clear_kernel_caches  # noqa: E402
-from propcalc.numerics import hermite, quadrature  # noqa: E402
 
 
 def dense(sw, sb=0.0):
@@ -71,9 +68,7 @@ POINTS = [(1.0 + 0.1 * i, 0.01 * (i + 1)) for i in range(10)]
 
 
 def cold() -> None:
-    clear_kernel_caches()
-    quadrature._scalar_nodes.cache_clear()
-    hermite.coefficients_at.cache_clear()
+    propcalc.clear_caches()
 
 
 def timed(fn) -> tuple[float, float]:
