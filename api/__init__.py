@@ -10,15 +10,15 @@ points and alpha dropout, Jacobian spectra and the isometry advice, the
 softmax output layer, and finite-width simulations; PNG/SVG images of the
 phase diagram, the variance and correlation maps and the depth scales
 (``/v1/plots/...``, with the ``plot`` extra); ``/health``. Run it locally with
-``propcalc serve``; in production with gunicorn (the command is in
-``docs/service.md``).
+``propcalc serve``; in production with ``propcalc serve --production`` (gunicorn
+with waitress workers: see ``docs/service.md``).
 """
 
 from __future__ import annotations
 
 from typing import Any
 
-__all__ = ["create_app"]
+__all__ = ["create_app", "serve"]
 
 
 def __getattr__(name: str) -> Any:
@@ -28,4 +28,8 @@ def __getattr__(name: str) -> Any:
         from ._app import create_app
 
         return create_app
+    if name == "serve":
+        from ._production import serve
+
+        return serve
     raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

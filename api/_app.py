@@ -9,7 +9,7 @@ from typing import Any
 from flask import Flask
 
 from ._cache import LRUCache
-from ._config import DEFAULTS, limits_from_config
+from ._config import DEFAULTS, guard_from_config, limits_from_config
 from ._json import StrictJSONProvider
 from ._openapi import build_openapi
 from ._plots import Plots
@@ -32,7 +32,8 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         e.g. ``PROPCALC_WORK_BUDGET=5000``). Keys: MAX_CONTENT_LENGTH,
         MAX_ARRAY_LENGTH, MAX_GRID_POINTS, MAX_LAYERS, MAX_DEPTH,
         MAX_SIMULATION_SIZE, MAX_FORMULA_LENGTH, MAX_FORMULA_PARAMS, WORK_BUDGET, WALL_CLOCK_LIMIT,
-        RESULT_CACHE_ENTRIES, RESULT_CACHE_BYTES, PLOT_CACHE_ENTRIES, PLOT_CACHE_BYTES,
+        CPU_TIME_LIMIT, EXPENSIVE_UNITS, EXPENSIVE_SLOTS, EXPENSIVE_QUEUE, EXPENSIVE_WAIT,
+        EXPENSIVE_LOCK_DIR, RESULT_CACHE_ENTRIES, RESULT_CACHE_BYTES, PLOT_CACHE_ENTRIES, PLOT_CACHE_BYTES,
         ACTIVATION_CACHE_ENTRIES, VALIDATE_RESPONSES, GET_MAX_AGE, and any Flask setting.
 
     Returns
@@ -57,6 +58,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     if config:
         app.config.from_mapping(config)
     limits = limits_from_config(app.config)
+    guard = guard_from_config(app.config, limits)
     app.json = StrictJSONProvider(app)
     schemas = build_schemas(limits)
     computations = Computations(limits, app.config["ACTIVATION_CACHE_ENTRIES"])
@@ -69,6 +71,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         get_max_age=app.config["GET_MAX_AGE"],
         plots=Plots(computations),
         images=LRUCache(app.config["PLOT_CACHE_ENTRIES"], app.config["PLOT_CACHE_BYTES"]),
+        guard=guard,
     )
     app.extensions["propcalc_api"] = st
     app.register_blueprint(make_blueprint())

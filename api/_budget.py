@@ -70,14 +70,14 @@ elsewhere the guard is off and gunicorn's ``--timeout`` is the backstop).
 from __future__ import annotations
 
 import math
-import signal
-import threading
-from collections.abc import Callable, Iterator
-from contextlib import contextmanager
-from typing import Any, TypeVar
+from collections.abc import Callable
+from typing import TypeVar
 
 from ._fields import format_number
-from ._problems import WorkBudgetExceeded
+from ._guard import Guard, Ticket, current_ticket
+from ._guard import run_guarded as _run
+from ._lane import LaneBusy
+from ._problems import Problem, WorkBudgetExceeded
 
 __all__ = [
     "FORMULA_FACTOR",
@@ -90,8 +90,6 @@ __all__ = [
     "simulation_cost",
     "check_budget",
     "max_points",
-    "WallClockExceeded",
-    "guard_available",
     "run_guarded",
 ]
 
@@ -200,6 +198,14 @@ def check_budget(estimate: float, budget: float, what: str, pointer: str | None 
         How to fit ("send at most 480 c values").
     """
     if estimate <= budget:
+        ticket = current_ticket()
+        if ticket is not None:
+            try:
+                ticket.record(estimate)  # may wait for a slot of the expensive lane
+            except LaneBusy as busy:
+                raise Problem(503, str(busy), title="The service is busy",
+                              headers={"Retry-After": str(busy.retry_after)},
+                              extra={"retry_after": busy.retry_after}) from None
         return
     detail = (f"{what} needs an estimated {format_number(round(estimate))} work units "
               f"(about {estimate / 1000:.1f} s of CPU); the limit is "
@@ -211,64 +217,37 @@ def check_budget(estimate: float, budget: float, what: str, pointer: str | None 
                              entry=entry)
 
 
-class WallClockExceeded(BaseException):
-    """Raised inside a computation by the SIGALRM guard (a BaseException, so that no
-    ``except Exception`` in the engine can swallow it)."""
+def _stopped(ticket: Ticket) -> WorkBudgetExceeded:
+    g = ticket.guard
+    if ticket.stopped == "cpu":
+        return WorkBudgetExceeded(
+            f"the computation was stopped after {format_number(g.cpu_seconds)} s of CPU time "
+            "(CPU_TIME_LIMIT); ask for fewer points or simpler parameters",
+            "CPU_TIME_LIMIT", g.cpu_seconds, estimate=ticket.estimate or None)
+    return WorkBudgetExceeded(
+        f"the computation was stopped after {format_number(g.wall_seconds)} s of wall-clock time "
+        "(WALL_CLOCK_LIMIT); ask for fewer points or simpler parameters",
+        "WALL_CLOCK_LIMIT", g.wall_seconds, estimate=ticket.estimate or None)
 
 
-_ALARM = {"armed": False, "installed": False}
+def run_guarded(guard: Guard | float, fn: Callable[[], T]) -> T:
+    """Run ``fn()`` under the limits of ``guard`` (see :mod:`propcalc_api._guard`).
 
-
-def _on_alarm(signum: int, frame: Any) -> None:
-    if _ALARM["armed"]:
-        _ALARM["armed"] = False
-        raise WallClockExceeded()
-
-
-@contextmanager
-def _alarm(seconds: float) -> Iterator[None]:
-    if not _ALARM["installed"]:
-        # installed once and kept: when disarmed it does nothing, so a late signal can
-        # never fall through to SIGALRM's default action (terminating the worker)
-        signal.signal(signal.SIGALRM, _on_alarm)
-        _ALARM["installed"] = True
-    _ALARM["armed"] = True
-    signal.setitimer(signal.ITIMER_REAL, seconds)
-    try:
-        yield
-    finally:
-        _ALARM["armed"] = False
-        signal.setitimer(signal.ITIMER_REAL, 0)
-
-
-def guard_available(seconds: float) -> bool:
-    """True if :func:`run_guarded` can arm a timer here (main thread, POSIX, seconds > 0)."""
-    return (seconds > 0 and hasattr(signal, "setitimer")
-            and threading.current_thread() is threading.main_thread())
-
-
-def run_guarded(seconds: float, fn: Callable[[], T]) -> T:
-    """Run ``fn()``, stopping it after ``seconds`` of wall-clock time.
-
-    The guard is armed only in the main thread of a process on a platform
-    with ``signal.setitimer`` (gunicorn's sync workers, ``propcalc serve``,
-    the Flask test client); elsewhere ``fn`` runs unguarded. The engine keeps
-    no state that an exception between two bytecodes could corrupt (its
-    caches are single dict and lru_cache assignments), so stopping it this
-    way is safe; nothing else (caches, locks) runs under the timer.
+    Parameters
+    ----------
+    guard : Guard or float
+        The app's limits; a number is a wall-clock limit alone (seconds, 0: none).
+    fn : callable
+        The computation.
 
     Raises
     ------
     WorkBudgetExceeded
-        When the time runs out (422, ``limit`` = WALL_CLOCK_LIMIT).
+        When the watchdog stopped it (422, ``limit`` = WALL_CLOCK_LIMIT or CPU_TIME_LIMIT).
+    Problem
+        503 with ``Retry-After`` when the expensive lane is full (raised by
+        :func:`check_budget` inside the computation).
     """
-    if not guard_available(seconds):
-        return fn()
-    try:
-        with _alarm(seconds):
-            return fn()
-    except WallClockExceeded:
-        raise WorkBudgetExceeded(
-            f"the computation was stopped after {format_number(seconds)} s of wall-clock time "
-            "(WALL_CLOCK_LIMIT); ask for fewer points or simpler parameters",
-            "WALL_CLOCK_LIMIT", seconds) from None
+    if not isinstance(guard, Guard):
+        guard = Guard(wall_seconds=float(guard), cpu_seconds=0.0)
+    return _run(guard, fn, on_stop=_stopped)

@@ -16,30 +16,31 @@ __all__ = ["register"]
 
 
 def _serve(args: argparse.Namespace, out: TextIO) -> int:
-    """Run the HTTP service on werkzeug's development server (local use; gunicorn in production)."""
+    """Run the HTTP service: the development server, or the production one (--production)."""
     try:
-        from propcalc_api import create_app  # lazily: the service extra is optional
+        from propcalc_api import serve  # lazily: the service extra is optional
     except ImportError as exc:
         missing = exc.name or str(exc)
         raise UsageError(f"the HTTP service needs the 'service' extra ({missing} is not "
                          "installed): pip install 'propcalc[service]'") from None
-    if not 0 <= args.port <= 65535:
-        raise UsageError(f"--port must be in [0, 65535], got {args.port}")
+    if args.workers is not None and not args.production:
+        raise UsageError(f"--workers is an option of the production server (--production), "
+                         f"got --workers {args.workers} without it")
     try:
-        app = create_app()
-    except ValueError as exc:  # a bad PROPCALC_* setting
+        return int(serve(args.host, args.port, production=args.production,
+                         workers=2 if args.workers is None else args.workers, out=out))
+    except ValueError as exc:  # a bad option or PROPCALC_* setting (ServeError)
         raise UsageError(str(exc)) from None
-    out.write(f"propcalc service on http://{args.host}:{args.port}/ (development server, one "
-              "request at a time; for production use gunicorn, see docs/service.md). "
-              "Ctrl-C stops it.\n")
-    out.flush()
-    app.run(host=args.host, port=args.port, threaded=False, use_reloader=False, debug=False)
-    return 0
 
 
 def register(sub: Any) -> None:
     """Add ``serve`` to the ``propcalc`` subcommands (``sub``: an argparse subparsers object)."""
-    p = sub.add_parser("serve", help="run the HTTP service locally (development server)")
+    p = sub.add_parser("serve", help="run the HTTP service (development server; --production: "
+                       "gunicorn with waitress workers)")
     p.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
     p.add_argument("--port", type=int, default=8000, help="port (default 8000)")
+    p.add_argument("--production", action="store_true",
+                   help="the production server with the shipped settings (see docs/service.md)")
+    p.add_argument("--workers", type=int, default=None,
+                   help="worker processes of the production server (default 2)")
     p.set_defaults(func=_serve)

@@ -11,11 +11,15 @@ states the limits the running service enforces.
 from __future__ import annotations
 
 import math
+import os
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass
 from typing import Any
 
-__all__ = ["DEFAULTS", "Limits", "limits_from_config", "VARIANCE_MAX", "MAP_Q_MAX",
+from ._guard import Guard
+from ._lane import Lane
+
+__all__ = ["DEFAULTS", "Limits", "limits_from_config", "lane_from_config", "guard_from_config", "VARIANCE_MAX", "MAP_Q_MAX",
            "BIAS_MIN_POSITIVE", "SIGMA_W2_MIN", "Q_STAR_MAX", "Q_STAR_MIN", "PLAN_Q_INPUT_MIN",
            "PARAM_ABS_MAX", "KEEP_RATE_MIN", "MAXOUT_MAX_RANK", "OMEGA_ABS_MAX", "MEAN_ABS_MAX",
            "SMALL_VARIANCE_MIN", "ALPHA_PRIME_ABS_MAX", "SPECTRAL_VARIANCE_MAX", "MAX_CLASSES",
@@ -110,8 +114,19 @@ DEFAULTS: dict[str, Any] = {
     "MAX_FORMULA_PARAMS": 8,
     # estimated work per request, in work units (1 unit ~ 1 ms of one core; see _budget.py)
     "WORK_BUDGET": 3000.0,
-    # wall-clock guard in seconds for one computation (0 disables; main thread only)
+    # wall-clock guard in seconds for one computation, from its admission (0 disables)
     "WALL_CLOCK_LIMIT": 10.0,
+    # CPU seconds one computation's thread may use (0 disables; see _guard.py)
+    "CPU_TIME_LIMIT": 6.0,
+    # the expensive lane (see _lane.py): estimates of at least EXPENSIVE_UNITS work units
+    # hold one of EXPENSIVE_SLOTS slots while they compute; at most EXPENSIVE_QUEUE of them
+    # per process wait for one, at most EXPENSIVE_WAIT seconds, else 503 + Retry-After;
+    # EXPENSIVE_LOCK_DIR (a directory) shares the slots between the processes of a server
+    "EXPENSIVE_UNITS": 500.0,
+    "EXPENSIVE_SLOTS": 1,
+    "EXPENSIVE_QUEUE": 8,
+    "EXPENSIVE_WAIT": 30.0,
+    "EXPENSIVE_LOCK_DIR": None,
     # in-process LRU of response bodies
     "RESULT_CACHE_ENTRIES": 512,
     "RESULT_CACHE_BYTES": 32 * 1024 * 1024,
@@ -129,13 +144,14 @@ DEFAULTS: dict[str, Any] = {
 _INT_KEYS = ("MAX_CONTENT_LENGTH", "MAX_ARRAY_LENGTH", "MAX_GRID_POINTS", "MAX_LAYERS",
              "MAX_DEPTH", "MAX_SIMULATION_SIZE", "MAX_FORMULA_LENGTH", "MAX_FORMULA_PARAMS",
              "RESULT_CACHE_ENTRIES", "RESULT_CACHE_BYTES", "PLOT_CACHE_ENTRIES",
-             "PLOT_CACHE_BYTES", "ACTIVATION_CACHE_ENTRIES", "GET_MAX_AGE")
+             "PLOT_CACHE_BYTES", "ACTIVATION_CACHE_ENTRIES", "GET_MAX_AGE", "EXPENSIVE_SLOTS",
+             "EXPENSIVE_QUEUE")
 # MAX_SIMULATION_SIZE >= 8: the smallest simulation (width 2, depth 1, 2 repetitions)
 _MINIMA = {"MAX_CONTENT_LENGTH": 1024, "MAX_ARRAY_LENGTH": 1, "MAX_GRID_POINTS": 2,
            "MAX_LAYERS": 1, "MAX_DEPTH": 1, "MAX_SIMULATION_SIZE": 8, "MAX_FORMULA_LENGTH": 1,
            "MAX_FORMULA_PARAMS": 0, "RESULT_CACHE_ENTRIES": 0, "RESULT_CACHE_BYTES": 0,
            "PLOT_CACHE_ENTRIES": 0, "PLOT_CACHE_BYTES": 0, "ACTIVATION_CACHE_ENTRIES": 0,
-           "GET_MAX_AGE": 0}
+           "GET_MAX_AGE": 0, "EXPENSIVE_SLOTS": 1, "EXPENSIVE_QUEUE": 0}
 
 
 @dataclass(frozen=True)
@@ -162,6 +178,11 @@ class Limits:
         Largest estimated cost of one request, in work units.
     wall_clock_limit : float
         Seconds one computation may run before it is stopped (0: no guard).
+    cpu_time_limit : float
+        CPU seconds one computation may use before it is stopped (0: no guard).
+    expensive_units : float
+        Requests estimated at this many work units or more take a slot of the
+        expensive lane (at most ``EXPENSIVE_SLOTS`` of them compute at once).
     """
 
     max_body_bytes: int
@@ -174,10 +195,14 @@ class Limits:
     max_formula_params: int
     work_budget: float
     wall_clock_limit: float
+    cpu_time_limit: float = 0.0
+    expensive_units: float = math.inf
 
     def to_dict(self) -> dict[str, Any]:
         """Plain view, with the fixed parameter ranges (served at /v1/limits)."""
         out: dict[str, Any] = asdict(self)
+        if math.isinf(self.expensive_units):
+            out["expensive_units"] = None  # no lane
         out["ranges"] = {
             "variance_max": VARIANCE_MAX,
             "sigma_w2_min": SIGMA_W2_MIN,
@@ -249,4 +274,27 @@ def limits_from_config(config: Mapping[str, Any]) -> Limits:
         work_budget=_check_seconds("WORK_BUDGET", config["WORK_BUDGET"], positive=True),
         wall_clock_limit=_check_seconds("WALL_CLOCK_LIMIT", config["WALL_CLOCK_LIMIT"],
                                         positive=False),
+        cpu_time_limit=_check_seconds("CPU_TIME_LIMIT", config["CPU_TIME_LIMIT"],
+                                      positive=False),
+        expensive_units=_check_seconds("EXPENSIVE_UNITS", config["EXPENSIVE_UNITS"],
+                                       positive=True),
     )
+
+
+def lane_from_config(config: Mapping[str, Any], limits: Limits) -> Lane:
+    """The expensive lane of an app (its settings checked; a bad one raises ValueError)."""
+    slots = _check_int("EXPENSIVE_SLOTS", config["EXPENSIVE_SLOTS"])
+    queue = _check_int("EXPENSIVE_QUEUE", config["EXPENSIVE_QUEUE"])
+    wait = _check_seconds("EXPENSIVE_WAIT", config["EXPENSIVE_WAIT"], positive=False)
+    lock_dir = config["EXPENSIVE_LOCK_DIR"]
+    if lock_dir is not None and not (isinstance(lock_dir, str) and os.path.isdir(lock_dir)):
+        raise ValueError(f"config EXPENSIVE_LOCK_DIR must be an existing directory, got "
+                         f"{lock_dir!r}")
+    retry_after = max(1, math.ceil(limits.work_budget / 1000.0))  # about one expensive request
+    return Lane(slots, queue, wait, retry_after, lock_dir)
+
+
+def guard_from_config(config: Mapping[str, Any], limits: Limits) -> Guard:
+    """The run-time limits of an app: wall clock, CPU time and the expensive lane."""
+    return Guard(limits.wall_clock_limit, limits.cpu_time_limit,
+                 lane_from_config(config, limits), limits.expensive_units)

@@ -25,6 +25,7 @@ from propcalc import builtin_names
 from ._budget import run_guarded
 from ._cache import LRUCache
 from ._config import PLOT_DPI_DEFAULT, Limits
+from ._guard import Guard
 from ._json import canonical_dumps, strict_loads
 from ._plots import FORMAT_OF, MIMETYPES, Plots
 from ._problems import TYPE_INVALID_FIELDS, ErrorContext, Problem
@@ -257,6 +258,7 @@ class ServiceState:
     images: LRUCache[bytes] | None = None
     openapi: bytes = b""
     schema_instances: dict[type[Schema], Schema] = field(default_factory=dict)
+    guard: Guard = field(default_factory=lambda: Guard(0.0, 0.0))
 
 
 def state() -> ServiceState:
@@ -344,7 +346,7 @@ def _respond(key: tuple[str, str], compute: Callable[[], Any], response_schema: 
     body = st.results.get(key)
     hit = body is not None
     if body is None:
-        result = run_guarded(st.limits.wall_clock_limit, compute)
+        result = run_guarded(st.guard, compute)
         if st.validate_responses:
             try:
                 _schema(response_schema).load(result)
@@ -426,7 +428,7 @@ def _image_view(ep: Endpoint) -> Callable[..., Response]:
         hit = body is not None
         if body is None:
             fn = getattr(st.plots, str(ep.compute))
-            body = run_guarded(st.limits.wall_clock_limit, lambda: fn(req, fmt))
+            body = run_guarded(st.guard, lambda: fn(req, fmt))
             st.images.put(key, body)
         return _send_image(body, fmt, ep.rule.rsplit("/", 1)[1], ep.method == "GET",
                            "hit" if hit else "miss")

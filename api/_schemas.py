@@ -1304,6 +1304,8 @@ def build_schemas(limits: Limits) -> Schemas:
         max_formula_params = _r(JSONInteger())
         work_budget = num()
         wall_clock_limit = num()
+        cpu_time_limit = num()
+        expensive_units = num(allow_none=True)
         ranges = _r(fields.Nested(RangesSchema))
 
     local = dict(locals())

@@ -1,4 +1,4 @@
-"""Fixtures of the service tests: the Flask app and client, and a live gunicorn server."""
+"""Fixtures of the service tests: the Flask app and client, and a live production server."""
 
 from __future__ import annotations
 
@@ -36,7 +36,7 @@ def make_client():
 
 @pytest.fixture(scope="session")
 def live_server() -> Iterator[server_process.LiveServer]:
-    """gunicorn (2 sync workers) on a free port of 127.0.0.1, shared by the session."""
+    """`propcalc serve --production` (2 workers) on a free port of 127.0.0.1, shared by the session."""
     server = server_process.shared()
     yield server
     server_process.stop_shared()

@@ -1,4 +1,4 @@
-"""A real gunicorn server on 127.0.0.1 for the live tests (a helper, not a test module).
+"""``propcalc serve --production`` on 127.0.0.1 for the live tests (a helper, not a test module).
 
 One server per test session, started on first use (the schemathesis module
 needs it while it is imported, the ``live_server`` fixture afterwards) and
@@ -33,7 +33,7 @@ def free_port() -> int:
 
 
 class LiveServer:
-    """gunicorn serving ``propcalc_api:create_app()`` on a free loopback port.
+    """The production server (``propcalc serve --production``) on a free loopback port.
 
     Parameters
     ----------
@@ -48,21 +48,20 @@ class LiveServer:
         self.workers = workers
         self._env = env or {}
         self._proc: subprocess.Popen[bytes] | None = None
-        self._log = tempfile.NamedTemporaryFile(prefix="propcalc-gunicorn-", suffix=".log",
+        self._log = tempfile.NamedTemporaryFile(prefix="propcalc-server-", suffix=".log",
                                                 delete=False)
 
     def start(self) -> "LiveServer":
-        """Start gunicorn and wait until /health answers (raises if it does not)."""
+        """Start the server and wait until /health answers (raises if it does not)."""
         env = {**os.environ, "OMP_NUM_THREADS": "1", **self._env}
-        cmd = [sys.executable, "-m", "gunicorn", "-w", str(self.workers), "--threads", "1",
-               "--timeout", "30", "--preload", "--no-control-socket",
-               "-b", f"127.0.0.1:{self.port}", "propcalc_api:create_app()"]
+        cmd = [sys.executable, "-m", "propcalc.cli", "serve", "--production",
+               "--host", "127.0.0.1", "--port", str(self.port), "--workers", str(self.workers)]
         self._proc = subprocess.Popen(cmd, stdout=self._log, stderr=subprocess.STDOUT, env=env,
                                       cwd=tempfile.gettempdir(), start_new_session=True)
         deadline = time.monotonic() + _STARTUP_SECONDS
         while time.monotonic() < deadline:
             if self._proc.poll() is not None:
-                raise RuntimeError(f"gunicorn exited with status {self._proc.returncode}:\n"
+                raise RuntimeError(f"the server exited with status {self._proc.returncode}:\n"
                                    + self.log_text())
             try:
                 if requests.get(self.url + "/health", timeout=2).status_code == 200:
@@ -71,11 +70,11 @@ class LiveServer:
                 pass
             time.sleep(0.2)
         self.stop()
-        raise RuntimeError(f"gunicorn did not answer /health within {_STARTUP_SECONDS} s:\n"
+        raise RuntimeError(f"the server did not answer /health within {_STARTUP_SECONDS} s:\n"
                            + self.log_text())
 
     def log_text(self) -> str:
-        """What gunicorn wrote so far."""
+        """What the server wrote so far."""
         self._log.flush()
         return Path(self._log.name).read_text(errors="replace")
 

@@ -1,4 +1,4 @@
-"""The service behind a real gunicorn (2 sync workers) on 127.0.0.1, driven with requests.
+"""The service behind ``propcalc serve --production`` (2 workers) on 127.0.0.1, driven with requests.
 
 The numbers it returns must equal the Python API's (``to_dict()`` through
 ``propcalc.jsonable``), byte for byte after JSON parsing.
@@ -29,7 +29,7 @@ def call(http, method, path, **kw):
 def test_health_and_server(http):
     resp = call(http, "GET", "/health")
     assert resp.status_code == 200
-    assert resp.headers["Server"].startswith("gunicorn")
+    assert resp.headers["Server"] == "propcalc"  # waitress inside the gunicorn workers
 
 
 @pytest.mark.parametrize("name, sw, sb, depth", [
