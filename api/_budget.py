@@ -69,15 +69,21 @@ elsewhere the guard is off and gunicorn's ``--timeout`` is the backstop).
 
 from __future__ import annotations
 
+import logging
 import math
+import uuid
 from collections.abc import Callable
-from typing import TypeVar
+from typing import Any, TypeVar
+
+from marshmallow import ValidationError
+
+from propcalc import PropcalcError
 
 from ._fields import format_number
 from ._guard import Guard, Ticket, current_ticket
 from ._guard import run_guarded as _run
 from ._lane import LaneBusy
-from ._problems import Problem, WorkBudgetExceeded
+from ._problems import TYPE_COMPUTATION, Problem, WorkBudgetExceeded
 
 __all__ = [
     "FORMULA_FACTOR",
@@ -91,7 +97,10 @@ __all__ = [
     "check_budget",
     "max_points",
     "run_guarded",
+    "first_nonfinite",
 ]
+
+_log = logging.getLogger("propcalc_api")
 
 T = TypeVar("T")
 
@@ -230,6 +239,83 @@ def _stopped(ticket: Ticket) -> WorkBudgetExceeded:
         "WALL_CLOCK_LIMIT", g.wall_seconds, estimate=ticket.estimate or None)
 
 
+def first_nonfinite(value: Any) -> str | None:
+    """Where the first NaN or infinite float of a JSON-ready value is ("/chi_c"), or None.
+
+    The JSON form writes infinities as the strings "inf"/"-inf", so a float
+    that is not finite is an engine failure, never a result.
+    """
+    stack: list[tuple[Any, str]] = [(value, "")]
+    while stack:
+        item, where = stack.pop()
+        if isinstance(item, float):
+            if not math.isfinite(item):
+                return where or "/"
+        elif isinstance(item, dict):
+            stack.extend((v, f"{where}/{k}") for k, v in item.items())
+        elif isinstance(item, (list, tuple)):
+            stack.extend((v, f"{where}/{i}") for i, v in enumerate(item))
+    return None
+
+
+def _failed(detail: str, exc: BaseException | None) -> Problem:
+    incident = uuid.uuid4().hex[:16]
+    _log.error("computation failed (incident %s): %s", incident, detail,
+               exc_info=(type(exc), exc, exc.__traceback__) if exc is not None else None)
+    return Problem(422, f"{detail}; it has been logged as incident {incident}",
+                   type=TYPE_COMPUTATION,
+                   title="The computation could not produce a trustworthy result",
+                   extra={"incident": incident})
+
+
+def _from_engine(exc: BaseException) -> bool:
+    """True if the exception passed through the engine (a frame of a ``propcalc.`` module)."""
+    tb = exc.__traceback__
+    while tb is not None:
+        name = str(tb.tb_frame.f_globals.get("__name__", ""))
+        if name == "propcalc" or name.startswith("propcalc."):
+            return True
+        tb = tb.tb_next
+    return False
+
+
+def _checked(fn: Callable[[], T]) -> Callable[[], T]:
+    """``fn`` with every failure of the engine turned into a problem (never a 500).
+
+    Errors the handler already words (problems, validation and PropcalcError)
+    pass through; MemoryError is a 503 (the worker could not hold this
+    request); any other exception that passed through the engine (a NaN
+    refused by :func:`propcalc.jsonable`, a ZeroDivisionError deep in a
+    quadrature...), and a result with a NaN or an infinite float, is a 422
+    ``computation-failed`` logged with an incident id. An exception raised by
+    the service's own code alone stays a 500: that is a bug of the service.
+    """
+
+    def run() -> T:
+        try:
+            result = fn()
+        except (Problem, ValidationError, PropcalcError):
+            raise
+        except MemoryError:
+            raise Problem(503, "this request needed more memory than the service can give "
+                          "it; ask for fewer points", headers={"Retry-After": "60"}) from None
+        except RecursionError as exc:
+            raise _failed("the engine could not evaluate these inputs (too deeply nested)",
+                          exc) from None
+        except Exception as exc:
+            if not _from_engine(exc):
+                raise
+            raise _failed(f"the engine failed on these inputs ({type(exc).__name__})",
+                          exc) from None
+        where = first_nonfinite(result)
+        if where is not None:
+            raise _failed(f"the engine produced a non-finite number at {where} for these "
+                          "inputs", None)
+        return result
+
+    return run
+
+
 def run_guarded(guard: Guard | float, fn: Callable[[], T]) -> T:
     """Run ``fn()`` under the limits of ``guard`` (see :mod:`propcalc_api._guard`).
 
@@ -246,8 +332,11 @@ def run_guarded(guard: Guard | float, fn: Callable[[], T]) -> T:
         When the watchdog stopped it (422, ``limit`` = WALL_CLOCK_LIMIT or CPU_TIME_LIMIT).
     Problem
         503 with ``Retry-After`` when the expensive lane is full (raised by
-        :func:`check_budget` inside the computation).
+        :func:`check_budget` inside the computation) or memory ran out; 422
+        ``computation-failed`` when the engine raised something other than a
+        PropcalcError or returned a NaN or an infinite float (logged with an
+        incident id): client input never gets a 500.
     """
     if not isinstance(guard, Guard):
         guard = Guard(wall_seconds=float(guard), cpu_seconds=0.0)
-    return _run(guard, fn, on_stop=_stopped)
+    return _run(guard, _checked(fn), on_stop=_stopped)

@@ -379,7 +379,10 @@ def test_nan_never_leaves(make_client, monkeypatch, caplog):
                         lambda req: propcalc.jsonable({"chi_1": float("nan")}))
     with caplog.at_level(logging.ERROR, logger="propcalc_api"):
         resp = c.post("/v1/propagation", json={"activation": "tanh", "sigma_w2": 1.0})
-    problem(resp, 500)
+    # issue 11: a failure of the engine on the client's input is a 422 (logged with an
+    # incident id), never a 500; it was a 500 before
+    body = problem(resp, 422)
+    assert body["type"].endswith("computation-failed") and len(body["incident"]) == 16
     assert b"NaN" not in resp.data
 
 
