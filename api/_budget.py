@@ -98,6 +98,7 @@ __all__ = [
     "max_points",
     "run_guarded",
     "first_nonfinite",
+    "busy_problem",
 ]
 
 _log = logging.getLogger("propcalc_api")
@@ -116,6 +117,7 @@ COSTS = {
     "plan_layer": 0.05,
     "variance_point": 0.5,
     "correlation_base": 6.0,
+    "correlation_growth": 0.5,
     "correlation_slope_factor": 3.0,
     "dropout_rate": 300.0,
     "maxout": 10.0,
@@ -134,6 +136,7 @@ COSTS = {
     "simulation_base": 50.0,
     "simulation_layer": 1.5,
     "simulation_layer_repetition": 0.1,
+    "simulation_layer_repetition_pair": 6e-4,
     "simulation_element": 3e-5,
     "simulation_pairs_scale": 100.0,
     "plot_image": 300.0,
@@ -146,7 +149,8 @@ COSTS = {
 
 def correlation_point_cost(q: float, with_slope: bool) -> float:
     """Estimated units for one c value of the correlation map at variance q."""
-    k = COSTS["correlation_base"] * 2.0 ** (math.log10(max(q, 1.0)) / 2.0)
+    k = COSTS["correlation_base"] * 2.0 ** (COSTS["correlation_growth"]
+                                            * math.log10(max(q, 1.0)))
     return k * (1.0 + (COSTS["correlation_slope_factor"] if with_slope else 0.0))
 
 
@@ -181,6 +185,7 @@ def simulation_cost(width: int, depth: int, repetitions: int, n_pairs: int) -> f
     pairs = 1.0 + n_pairs / COSTS["simulation_pairs_scale"]
     return (COSTS["simulation_base"] + COSTS["simulation_layer"] * depth
             + COSTS["simulation_layer_repetition"] * depth * repetitions
+            + COSTS["simulation_layer_repetition_pair"] * depth * repetitions * n_pairs
             + COSTS["simulation_element"] * size * pairs)
 
 
@@ -212,9 +217,7 @@ def check_budget(estimate: float, budget: float, what: str, pointer: str | None 
             try:
                 ticket.record(estimate)  # may wait for a slot of the expensive lane
             except LaneBusy as busy:
-                raise Problem(503, str(busy), title="The service is busy",
-                              headers={"Retry-After": str(busy.retry_after)},
-                              extra={"retry_after": busy.retry_after}) from None
+                raise busy_problem(busy) from None
         return
     detail = (f"{what} needs an estimated {format_number(round(estimate))} work units "
               f"(about {estimate / 1000:.1f} s of CPU); the limit is "
@@ -237,6 +240,13 @@ def _stopped(ticket: Ticket) -> WorkBudgetExceeded:
         f"the computation was stopped after {format_number(g.wall_seconds)} s of wall-clock time "
         "(WALL_CLOCK_LIMIT); ask for fewer points or simpler parameters",
         "WALL_CLOCK_LIMIT", g.wall_seconds, estimate=ticket.estimate or None)
+
+
+def busy_problem(busy: LaneBusy) -> Problem:
+    """The 503 answer when the expensive lane is full (with ``Retry-After``)."""
+    return Problem(503, str(busy), title="The service is busy",
+                   headers={"Retry-After": str(busy.retry_after)},
+                   extra={"retry_after": busy.retry_after})
 
 
 def first_nonfinite(value: Any) -> str | None:

@@ -127,10 +127,19 @@ class Ticket:
     def record(self, estimate: float) -> None:
         """Note an estimate; take a lane slot when it reaches the expensive threshold."""
         self.estimate = max(self.estimate, estimate)
+        if estimate >= self.guard.expensive_units:
+            self.take_slot()
+
+    def take_slot(self) -> None:
+        """Take a slot of the expensive lane now (waiting if needed), whatever the estimate.
+
+        For work whose cost is only known once it runs (metered sweeps): it
+        takes its slot before it starts, and before any lock it will hold.
+        """
         lane = self.guard.lane
-        if self.slot is None and lane is not None and estimate >= self.guard.expensive_units:
+        if self.slot is None and lane is not None:
             t0 = time.monotonic()
-            self.slot = lane.admit(estimate)
+            self.slot = lane.admit(max(self.estimate, self.guard.expensive_units))
             self.waited += time.monotonic() - t0
             self.admitted = time.monotonic()  # the wall clock counts the work, not the queue
 

@@ -38,6 +38,7 @@ from ._budget import (
     sweep_point_cost,
 )
 from ._config import PLOT_DPI_DEFAULT
+from ._meter import MeteredExecutor, metered_chunk_size, take_expensive_slot
 from ._problems import Problem
 from ._service import Computations
 
@@ -142,12 +143,17 @@ class Plots:
                     f"a phase diagram of {nw} x {nb} grid points{kind}", "/n_sigma_w2",
                     _grid_advice(fits, nw, nb))
         point = (req["sigma_w2"], req["sigma_b2"]) if has_point else None
+        take_expensive_slot()
+        meter = MeteredExecutor(nw * nb, fixed, self._budget_units, factor,
+                                f"a phase diagram of {nw} x {nb} grid points{kind}",
+                                "/n_sigma_w2")
 
         def make(mod: ModuleType) -> Any:
             return mod.plot_phase_diagram(
                 act, point, sigma_w2_range=_window(req, "sigma_w2"),
                 sigma_b2_range=_window(req, "sigma_b2"), n_grid=(nw, nb),
-                q_input=req["q_input"], depth=req.get("depth"), progress=False)
+                q_input=req["q_input"], depth=req.get("depth"), progress=False,
+                executor=meter, chunk_size=metered_chunk_size(nw * nb))
 
         return self._render(make, fmt, req["dpi"])
 
@@ -214,11 +220,17 @@ class Plots:
         self._check(spec, fixed + per * n, f"a depth-scales image of {n} samples", "/n_points",
                     f"ask for at most {fits} samples")
         point = (req["sigma_w2"], req["sigma_b2"]) if has_point else None
+        take_expensive_slot()
+        meter = MeteredExecutor(n + int(COSTS["depth_scales_extra_points"]), fixed,
+                                self._budget_units, factor,
+                                f"a depth-scales image of {n} samples", "/n_points")
 
         def make(mod: ModuleType) -> Any:
             return mod.plot_depth_scales(act, point, sigma_b2=req["sigma_b2"],
                                          sigma_w2_range=_window(req, "sigma_w2"), n_points=n,
                                          xi_max=req.get("xi_max"), depth=req.get("depth"),
-                                         q_input=req["q_input"], progress=False)
+                                         q_input=req["q_input"], progress=False,
+                                         executor=meter,
+                                         chunk_size=metered_chunk_size(meter.total_points))
 
         return self._render(make, fmt, req["dpi"])

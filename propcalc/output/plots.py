@@ -195,6 +195,7 @@ def plot_phase_diagram(act: Activation, point: PointLike = None, *,
                        depth_levels: Sequence[float] = (100.0, 500.0),
                        depth: int | None = None, result: SweepResult | None = None,
                        executor: Executor | None = None, progress: bool | None = False,
+                       chunk_size: int | None = None,
                        rule: QuadratureRule = DEFAULT_RULE) -> Figure:
     """Ordered and chaotic phases over (sigma_w2, sigma_b2), with depth-scale contours.
 
@@ -223,7 +224,7 @@ def plot_phase_diagram(act: Activation, point: PointLike = None, *,
     result : SweepResult, optional
         A precomputed :func:`propcalc.sweep.sweep` over this activation (its
         axes are used, the ranges ignored).
-    executor, progress
+    executor, progress, chunk_size
         Passed to :func:`propcalc.sweep.sweep`.
     rule : QuadratureRule
 
@@ -244,7 +245,8 @@ def plot_phase_diagram(act: Activation, point: PointLike = None, *,
                 sb_hi = max(sb_hi, 1.15 * prop.sigma_b2)
         nw, nb = _grid_shape(n_grid)
         result = sweep(act, np.linspace(sw_lo, sw_hi, nw), np.linspace(sb_lo, sb_hi, nb),
-                       q_input=q_input, executor=executor, progress=progress, rule=rule)
+                       q_input=q_input, executor=executor, progress=progress, rule=rule,
+                       chunk_size=chunk_size)
     if act.label not in result.activations:
         raise InvalidParameterError("result", f"a sweep over {act.label}", list(result.activations))
     a = result.activations.index(act.label)
@@ -528,7 +530,7 @@ def plot_depth_scales(act: Activation, point: PointLike = None, *, sigma_b2: flo
                       sigma_w2_range: tuple[float, float] | None = None, n_points: int = 121,
                       xi_max: float | None = None, depth: int | None = None,
                       q_input: float = 1.0, executor: Executor | None = None,
-                      progress: bool | None = False,
+                      progress: bool | None = False, chunk_size: int | None = None,
                       rule: QuadratureRule = DEFAULT_RULE) -> Figure:
     """xi_q and xi_c against sigma_w2 at a fixed sigma_b2, with the edge of chaos marked.
 
@@ -550,7 +552,7 @@ def plot_depth_scales(act: Activation, point: PointLike = None, *, sigma_b2: flo
         samples, between 30 and 1e4.
     depth : int, optional
         The user's depth L: the line xi = L / 6 is the trainable-depth rule.
-    q_input, executor, progress, rule
+    q_input, executor, progress, chunk_size, rule
         As for :func:`propcalc.sweep.sweep`.
 
     Returns
@@ -583,7 +585,8 @@ def plot_depth_scales(act: Activation, point: PointLike = None, *, sigma_b2: flo
     near = [e * (1 + s * offsets) for e in edges for s in (-1.0, 1.0)]
     grid = np.unique(np.concatenate([regular] + near + ([np.array(edges)] if edges else [])))
     grid = grid[(grid >= lo) & (grid <= hi)]
-    res = sweep(act, grid, [sb], q_input=q_input, executor=executor, progress=progress, rule=rule)
+    res = sweep(act, grid, [sb], q_input=q_input, executor=executor, progress=progress, rule=rule,
+                chunk_size=chunk_size)
     xi_q, xi_c = res.xi_q[0, :, 0], res.xi_c[0, :, 0]
     unbounded = res.phase[0, :, 0] == "unbounded variance"
     on_regular = np.isin(grid, regular)

@@ -1,0 +1,100 @@
+"""Requests at the limits of every endpoint, for the cost-model test and benchmark (a helper).
+
+Each case is the largest (or the slowest kind of) request that the default
+``WORK_BUDGET`` admits for one endpoint: the longest arrays, the largest grids,
+the extreme parameters, the slowest activations (step and hard_tanh for the
+kinked and jumping built-ins, a formula with a jump), measured one by one with
+a new value in every call so that no cache answers.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+__all__ = ["CASES", "REFERENCE"]
+
+_FORMULA = {"formula": "where(x > 0, x, 0.1 * x) + 0.5 * tanh(3 * x)"}
+_JUMP_FORMULA = {"formula": "where(x > 0.3, 1.0, -0.5)"}
+_LONG_FORMULA = {"formula": "a*tanh(b*x) + c*x*sigmoid(d*x) + f*softplus(g*x) + h*erf(k*x) "
+                            "+ 0.1*abs(x) + where(x > 1, 0.5*x, x)",
+                 "params": {k: 0.5 + i / 10 for i, k in enumerate("abcdfghk")}}
+
+#: the reference request of the test: 40 propagation reports of tanh at new points
+REFERENCE = ("/v1/propagation", {"activation": "tanh", "sigma_w2": 1.3, "sigma_b2": 0.05})
+
+#: (name, path, body) at the endpoints' limits; bodies get a tiny new offset per call
+CASES: list[tuple[str, str, dict[str, Any]]] = [
+    ("describe a long formula", "/v1/describe", {"activation": _LONG_FORMULA}),
+    ("propagation step, extreme", "/v1/propagation",
+     {"activation": "step", "sigma_w2": 1.5, "sigma_b2": 1e4}),
+    ("propagation hard_tanh, extreme", "/v1/propagation",
+     {"activation": "hard_tanh", "sigma_w2": 1e4, "sigma_b2": 1e-100}),
+    ("propagation formula with a jump", "/v1/propagation",
+     {"activation": _JUMP_FORMULA, "sigma_w2": 2.0, "sigma_b2": 0.5}),
+    ("critical point step, q* = 1e6", "/v1/critical-point", {"activation": "step",
+                                                             "q_star": 1e6}),
+    ("critical point formula, q* = 1e-30", "/v1/critical-point",
+     {"activation": _FORMULA, "q_star": 1e-30}),
+    ("edge line, 1400 q* (formula)", "/v1/edge-of-chaos",
+     {"activation": _FORMULA, "q_star_grid": {"start": 1e-30, "stop": 1e6, "num": 1400,
+                                              "spacing": "log"}}),
+    ("edge line, 2000 q* (step)", "/v1/edge-of-chaos",
+     {"activation": "step", "q_star_grid": {"start": 1e-30, "stop": 1e6, "num": 2000,
+                                            "spacing": "log"}}),
+    ("edge at a bias (step)", "/v1/edge-of-chaos", {"activation": "step", "sigma_b2": 1e4}),
+    ("plan of 1000 layers (formula)", "/v1/plan", {"activation": _FORMULA, "depth": 1000}),
+    ("variance map, 2000 q to 1e8 (formula)", "/v1/maps/variance",
+     {"activation": _FORMULA, "sigma_w2": 1.5,
+      "q_grid": {"start": 1e-30, "stop": 1e8, "num": 2000, "spacing": "log"}}),
+    ("correlation map, q = 1, 500 c", "/v1/maps/correlation",
+     {"activation": "hard_tanh", "sigma_w2": 1.5, "q": 1.0,
+      "c_grid": {"start": -1, "stop": 1, "num": 500}}),
+    ("correlation map, q = 1e8, slope", "/v1/maps/correlation",
+     {"activation": "gelu_tanh", "sigma_w2": 1.5, "q": 1e8, "with_slope": True,
+      "c_grid": {"start": -1, "stop": 1, "num": 7}}),
+    ("correlation map, q*, slope (step)", "/v1/maps/correlation",
+     {"activation": "step", "sigma_w2": 1.5, "sigma_b2": 0.3, "with_slope": True,
+      "c_grid": {"start": -1, "stop": 1, "num": 115}}),
+    ("dropout sweep, 10 rates (hard_tanh)", "/v1/dropout/sweep",
+     {"activation": "hard_tanh", "sigma_w2": 1e4, "sigma_b2": 1e4,
+      "keep_rates": [0.001, 0.01, 0.1, 0.3, 0.5, 0.7, 0.9, 0.95, 0.99, 1.0]}),
+    ("maxout k = 1024", "/v1/maxout", {"k": 1024, "sigma_b2": 1e4, "depth": 10**6}),
+    ("mean-variance, omega != 0 (hard_tanh)", "/v1/self-normalization",
+     {"activation": "hard_tanh", "omega": 50.0, "tau": 1e4}),
+    ("mean-variance, omega != 0 (relu)", "/v1/self-normalization",
+     {"activation": "relu", "omega": 0.5, "tau": 1.0}),
+    ("jacobian spectrum (formula)", "/v1/jacobian-spectrum",
+     {"activation": _FORMULA, "depth": 10**6, "q_star": 1e6}),
+    ("isometry advice (hard_tanh)", "/v1/dynamical-isometry",
+     {"activation": "hard_tanh", "depth": 10**6, "q_star_min": 1e-6, "q_star_max": 1e4}),
+    ("softmax, 1e7 classes", "/v1/softmax",
+     {"n_classes": 10**7, "logit_variance": 1e4, "n_samples": 4}),
+    ("softmax, 1000 classes", "/v1/softmax",
+     {"n_classes": 1000, "logit_variance": 1e4, "n_samples": 40000}),
+    ("output scale", "/v1/softmax/output-scale",
+     {"n_classes": 1000, "margin": 10.0, "current_sigma_w2": 1e4, "n_samples": 17000}),
+    ("simulation at MAX_SIMULATION_SIZE", "/v1/simulate",
+     {"activation": "tanh", "sigma_w2": 1.5, "width": 1000, "depth": 10, "repetitions": 2,
+      "n_pairs": 4}),
+    ("simulation, depth 1000", "/v1/simulate",
+     {"activation": "tanh", "sigma_w2": 1.5, "width": 20, "depth": 1000, "repetitions": 8,
+      "n_pairs": 64}),
+    ("phase diagram, default window", "/v1/plots/phase-diagram",
+     {"activation": "hard_tanh", "n_sigma_w2": 50, "n_sigma_b2": 48, "format": "svg"}),
+    ("phase diagram, wide window", "/v1/plots/phase-diagram",
+     {"activation": "hard_tanh", "sigma_w2_min": 1e-6, "sigma_w2_max": 1e4,
+      "sigma_b2_min": 0, "sigma_b2_max": 1e4, "n_sigma_w2": 50, "n_sigma_b2": 48,
+      "format": "svg"}),
+    ("phase diagram, step, biased window", "/v1/plots/phase-diagram",
+     {"activation": "step", "sigma_w2_min": 1, "sigma_w2_max": 3, "sigma_b2_min": 1e3,
+      "sigma_b2_max": 1e4, "n_sigma_w2": 27, "n_sigma_b2": 20, "format": "svg"}),
+    ("variance-map image, 2000 samples (png 300 dpi)", "/v1/plots/variance-map",
+     {"activation": "hard_tanh", "sigma_w2": 1.5, "sigma_b2": 0.1, "n_points": 2000,
+      "iterations": 100, "format": "png", "dpi": 300}),
+    ("correlation-map image (step)", "/v1/plots/correlation-map",
+     {"activation": "step", "sigma_w2": 1.5, "sigma_b2": 0.3, "n_points": 400,
+      "format": "svg"}),
+    ("depth-scales image, wide", "/v1/plots/depth-scales",
+     {"activation": "hard_tanh", "sigma_b2": 1e4, "sigma_w2_min": 1e-6, "sigma_w2_max": 1e4,
+      "n_points": 2000, "format": "svg"}),
+]
