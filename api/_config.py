@@ -114,8 +114,10 @@ DEFAULTS: dict[str, Any] = {
     "MAX_FORMULA_PARAMS": 8,
     # estimated work per request, in work units (1 unit ~ 1 ms of one core; see _budget.py)
     "WORK_BUDGET": 3000.0,
-    # wall-clock guard in seconds for one computation, from its admission (0 disables)
-    "WALL_CLOCK_LIMIT": 10.0,
+    # wall-clock guard in seconds for one computation, from its admission (0 disables): a
+    # backstop for work that waits rather than computes; CPU_TIME_LIMIT bounds the computing
+    # (on a loaded machine 3 s of CPU can take 10 s of wall-clock time)
+    "WALL_CLOCK_LIMIT": 30.0,
     # CPU seconds one computation's thread may use (0 disables; see _guard.py)
     "CPU_TIME_LIMIT": 6.0,
     # the expensive lane (see _lane.py): estimates of at least EXPENSIVE_UNITS work units

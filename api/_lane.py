@@ -17,6 +17,7 @@ so a killed worker can never leak a slot.
 
 from __future__ import annotations
 
+import logging
 import math
 import os
 import threading
@@ -24,6 +25,8 @@ import time
 from typing import Protocol
 
 __all__ = ["Lane", "LaneBusy", "Slot"]
+
+_log = logging.getLogger("propcalc_api")
 
 #: how often a waiter looks at the shared slot files again (seconds)
 _POLL = 0.01
@@ -106,8 +109,13 @@ class Lane:
     def _try_file(self) -> Slot | None:
         assert self.lock_dir is not None and fcntl is not None
         for i in range(self.slots):
-            fd = os.open(os.path.join(self.lock_dir, f"expensive-{i}.lock"),
-                         os.O_RDWR | os.O_CREAT, 0o600)
+            try:
+                fd = os.open(os.path.join(self.lock_dir, f"expensive-{i}.lock"),
+                             os.O_RDWR | os.O_CREAT, 0o600)
+            except OSError as exc:  # the directory is gone: the slots are per process now
+                _log.warning("expensive lane: %s; slots are now per process", exc)
+                self.lock_dir = None
+                return self._try(0.0)
             try:
                 fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
             except OSError:
@@ -128,6 +136,8 @@ class Lane:
             slot = self._try_file()
             if slot is not None or time.monotonic() >= deadline:
                 return slot
+            if self.lock_dir is None:
+                return self._try(deadline - time.monotonic())
             time.sleep(_POLL)
 
     def _busy(self, why: str, estimate: float) -> LaneBusy:

@@ -41,8 +41,8 @@ PRODUCTION_SETTINGS: dict[str, Any] = {
     "preload_app": True,
     "timeout": 30,
     "graceful_timeout": 15,
-    "max_requests": 2000,
-    "max_requests_jitter": 200,
+    "max_requests": 50000,
+    "max_requests_jitter": 5000,
     "control_socket_disable": True,
     "proc_name": "propcalc",
 }
@@ -99,6 +99,7 @@ def serve_production(host: str, port: int, workers: int, out: TextIO) -> int:
     from gunicorn.app.base import BaseApplication
 
     lock_dir = tempfile.mkdtemp(prefix="propcalc-lane-")
+    arbiter_pid = os.getpid()
     try:
         app = _make_app(production_app_config(lock_dir))  # checks the settings up front
         settings = {**PRODUCTION_SETTINGS, "bind": [_bind(host, port)], "workers": workers}
@@ -116,7 +117,10 @@ def serve_production(host: str, port: int, workers: int, out: TextIO) -> int:
         out.flush()
         _Server().run()
     finally:
-        shutil.rmtree(lock_dir, ignore_errors=True)
+        # a worker that exits unwinds through here too (it is a fork of this process): only
+        # the arbiter removes the directory that every worker's lane uses
+        if os.getpid() == arbiter_pid:
+            shutil.rmtree(lock_dir, ignore_errors=True)
     return 0
 
 

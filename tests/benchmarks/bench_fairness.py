@@ -50,23 +50,25 @@ def cheap_body(i: int) -> tuple[str, dict]:
 
 
 def expensive_body(i: int) -> tuple[str, dict]:
-    """The i-th of a rotation of the most expensive admitted requests (never cached)."""
+    """The i-th of a rotation of the most expensive admitted requests (never cached).
+
+    Each is among the costliest requests the default WORK_BUDGET admits (see
+    ``tests/benchmarks/bench_costs.py``): 1.2 to 2.5 s of CPU on the 2-core box.
+    """
     e = 1e-6 * (i % 1_000_000)
     kind = i % 4
     if kind == 0:
-        return "/v1/plots/phase-diagram", {
-            "activation": "hard_tanh", "sigma_w2_min": 1e-6, "sigma_w2_max": 1e4 - e,
-            "sigma_b2_min": 0, "sigma_b2_max": 1e4, "n_sigma_w2": 20, "n_sigma_b2": 20,
-            "format": "png"}
+        return "/v1/plots/phase-diagram", {"activation": "hard_tanh", "n_sigma_w2": 50,
+                                           "n_sigma_b2": 48, "sigma_w2_min": 0.1,
+                                           "sigma_w2_max": 4.0 + e, "format": "svg"}
     if kind == 1:
-        return "/v1/self-normalization", {"activation": "hard_tanh", "omega": 0.5 + e,
-                                          "tau": 1.0}
+        return "/v1/softmax", {"n_classes": 10**7, "logit_variance": 1e4, "n_samples": 4,
+                               "seed": i % 2**32}
     if kind == 2:
-        return "/v1/simulate", {"activation": "tanh", "sigma_w2": 1.5 + e, "width": 1000,
-                                "depth": 5, "repetitions": 4, "n_pairs": 4}
-    return "/v1/maps/correlation", {"activation": "gelu_tanh", "sigma_w2": 1.5 + e, "q": 1e8,
-                                    "c_grid": {"start": -1, "stop": 1, "num": 40},
-                                    "with_slope": True}
+        return "/v1/softmax/output-scale", {"n_classes": 1000, "margin": 10.0 - e,
+                                            "current_sigma_w2": 1e4, "n_samples": 17000}
+    return "/v1/simulate", {"activation": "tanh", "sigma_w2": 1.5 + e, "width": 20,
+                            "depth": 1000, "repetitions": 8, "n_pairs": 64}
 
 
 def percentile(values: list[float], p: float) -> float:
@@ -85,6 +87,7 @@ class Client(threading.Thread):
         self.latencies: list[float] = []
         self.statuses: Counter[int] = Counter()
         self.errors = 0
+        self.stops = 0
 
     def run(self) -> None:
         conn = None
@@ -98,7 +101,9 @@ class Client(threading.Thread):
                     conn = http.client.HTTPConnection("127.0.0.1", self.port, timeout=60)
                 conn.request("POST", path, payload, {"Content-Type": "application/json"})
                 resp = conn.getresponse()
-                resp.read()
+                data = resp.read()
+                if resp.status == 422 and b"_LIMIT" in data:
+                    self.stops += 1
                 if resp.getheader("Connection", "").lower() == "close":
                     conn.close()
                     conn = None
@@ -130,6 +135,7 @@ def scenario(port: int, seconds: float, expensive: bool) -> dict:
         "max": max(lat) if lat else float("nan"),
         "cheap_status": sum((c.statuses for c in cheap), Counter()),
         "heavy_status": sum((c.statuses for c in heavy), Counter()),
+        "heavy_cpu_stops": sum(c.stops for c in heavy),
         "heavy_n": sum(len(c.latencies) for c in heavy),
         "heavy_p50": percentile([x for c in heavy for x in c.latencies], 50),
         "errors": sum(c.errors for c in cheap + heavy),
@@ -143,7 +149,8 @@ def show(label: str, r: dict) -> None:
           f"statuses {dict(r['cheap_status'])}")
     if r["heavy_n"]:
         print(f"  expensive: {r['heavy_n']} requests, p50 {r['heavy_p50']:.2f} s, "
-              f"statuses {dict(r['heavy_status'])}")
+              f"statuses {dict(r['heavy_status'])} ({r['heavy_cpu_stops']} stopped by a "
+              "run-time limit)")
     print(f"  connection errors: {r['errors']}")
 
 
@@ -155,9 +162,13 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--seconds", type=float, default=30.0)
     parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--slots", type=int, default=None,
+                        help="EXPENSIVE_SLOTS of the server (default: the shipped 1), to "
+                             "compare the lane with more slots")
     args = parser.parse_args(argv)
     seconds = min(max(args.seconds, 5.0), 120.0)
-    server = server_process.LiveServer(workers=min(max(args.workers, 1), 8)).start()
+    env = {} if args.slots is None else {"PROPCALC_EXPENSIVE_SLOTS": str(max(1, args.slots))}
+    server = server_process.LiveServer(workers=min(max(args.workers, 1), 8), env=env).start()
     try:
         warm = scenario(server.port, 2.0, expensive=False)  # imports, first-call caches
         del warm
@@ -165,7 +176,9 @@ def main(argv: list[str] | None = None) -> int:
         loaded = scenario(server.port, seconds, expensive=True)
     finally:
         server.stop()
-    print(f"propcalc serve --production, {args.workers} workers, {seconds:g} s per scenario, "
+    slots = "1 (shipped)" if args.slots is None else str(args.slots)
+    print(f"propcalc serve --production, {args.workers} workers, expensive slots {slots}, "
+          f"{seconds:g} s per scenario, "
           f"{CHEAP_CLIENTS} cheap + {EXPENSIVE_CLIENTS} expensive clients, 127.0.0.1")
     show("baseline: cheap requests alone", base)
     show("contended: cheap requests beside the most expensive admitted ones", loaded)
