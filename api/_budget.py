@@ -4,9 +4,14 @@ Costs are in *work units*, about one millisecond of one core of the machine
 the coefficients were measured on (a shared 2-core server; the estimates sit
 above the slowest built-in activation measured there, so most requests take
 far less than their estimate). A request whose estimate exceeds
-``WORK_BUDGET`` (3000 units by default: about three seconds at most) is
-refused with 422 ``work-budget-exceeded`` before any expensive work starts;
-the problem names the limit and how much smaller the request must be.
+``WORK_BUDGET`` (3000 units by default) is refused with 422
+``work-budget-exceeded`` before any expensive work starts; the problem names
+the limit and how much smaller the request must be. An admitted request
+records its estimate on its ticket (:mod:`propcalc_api._guard`), which puts
+it in the expensive lane when the estimate reaches ``EXPENSIVE_UNITS``
+(:mod:`propcalc_api._lane`). ``tests/api/test_api_costs.py`` checks that the
+measured CPU cost of every endpoint at its limits is at most twice its
+estimate.
 
 The estimates (measured per point, common practice, no source):
 
@@ -55,16 +60,17 @@ depth-scales image          the image + 150 (the critical sigma_w2) + the
 The per-point cost of a phase diagram is its typical cost over the default
 window (sigma_w2 in [0.1, 4], sigma_b2 in [0, 0.5]): measured between 0.07 and
 1.3 ms per point for the built-ins without a jump (tanh 0.35, hard_tanh 1.26)
-and 3 to 4.4 ms for step. It is not a bound: narrow bands of (sigma_w2,
-sigma_b2) far outside that window, where c* lies very close to 1, cost up to
-50 ms per point; the wall-clock guard backs the estimate there.
+and 3 to 4.4 ms for step. It is not a bound: windows where c* lies very close
+to 1 cost 10 to 35 ms per point, so the phase diagram and the depth scales are
+metered while they run (:mod:`propcalc_api._meter`).
 
 Activations given as formulas cost twice as much (``FORMULA_FACTOR``).
 
-As a second line of defence, :func:`run_guarded` stops a computation
-that runs longer than ``WALL_CLOCK_LIMIT`` seconds (SIGALRM, so only in the
-main thread of a process: gunicorn's sync workers and ``propcalc serve``;
-elsewhere the guard is off and gunicorn's ``--timeout`` is the backstop).
+As a second line of defence, :func:`run_guarded` runs every computation
+under the watchdog of :mod:`propcalc_api._guard`, which stops it after
+``CPU_TIME_LIMIT`` seconds of CPU or ``WALL_CLOCK_LIMIT`` seconds of wall-clock
+time, in any thread; and it turns every failure of the engine into a problem
+document (422 or 503), never a 500.
 """
 
 from __future__ import annotations

@@ -104,6 +104,8 @@ _PROBLEM_TEXT = {
          "request over the work budget, or a computation that could not produce a "
          "trustworthy result.",
     500: "Internal error (logged; quote the incident id).",
+    503: "Busy: the expensive lane is full (Retry-After says when to retry), or the computation "
+         "ran out of memory.",
     501: "The service cannot draw images where it runs: matplotlib (the 'plot' extra) is not "
          "installed.",
 }
@@ -157,6 +159,9 @@ def build_openapi(app: Flask, schemas: Schemas, limits: Limits) -> bytes:
         if status == 405:
             response["headers"] = {"Allow": {"description": "the allowed methods",
                                              "schema": {"type": "string"}}}
+        if status == 503:
+            response["headers"] = {"Retry-After": {"description": "seconds to wait",
+                                                   "schema": {"type": "string"}}}
         spec.components.response(f"Problem{status}", response)
     spec.components.parameter("IfNoneMatch", "header", {
         "name": "If-None-Match", "required": False, "schema": {"type": "string"},

@@ -13,9 +13,10 @@ matplotlib is imported on first use, so the service runs without the
 
 Threads: ``save_figure`` sets matplotlib's rcParams (the SVG hash salt) for
 the time of one render, and rcParams are global to the process; figures
-are therefore built and rendered under one lock per process. With gunicorn's
-sync workers (``--threads 1``, the documented set-up) the lock is never
-contended; with threads it serialises the drawing, never the JSON endpoints.
+are therefore built and rendered under one lock per process: it serialises
+the drawing, never the JSON endpoints. The phase diagram and the depth scales
+run their sweeps metered (:mod:`propcalc_api._meter`), after taking a slot of
+the expensive lane, so that no lane wait happens under the lock.
 """
 
 from __future__ import annotations

@@ -87,9 +87,9 @@ class Endpoint:
     image: bool = False
 
 
-_POST_ERRORS = (400, 413, 415, 422, 500)
-_IMAGE_POST_ERRORS = (400, 406, 413, 415, 422, 500, 501)
-_IMAGE_GET_ERRORS = (304, 406, 422, 500, 501)
+_POST_ERRORS = (400, 413, 415, 422, 500, 503)
+_IMAGE_POST_ERRORS = (400, 406, 413, 415, 422, 500, 501, 503)
+_IMAGE_GET_ERRORS = (304, 406, 422, 500, 501, 503)
 _IMAGE_NOTE = (" The image is PNG or SVG: the member (query parameter) format chooses, else the "
                "Accept header (image/png, image/svg+xml; PNG without an Accept header or when it "
                "ranks both equally; 406 when it allows neither). The same request always gives "
@@ -132,7 +132,7 @@ ENDPOINTS: tuple[Endpoint, ...] = (
     Endpoint("propagation_get", "/v1/propagation", "GET", "Propagation report (query form)",
              "The same report as POST /v1/propagation for a built-in activation, with ETag "
              "and If-None-Match support.", None, "PropagationQuery", "Propagation",
-             "propagation", (304, 422, 500), body_of_query="PropagationRequest"),
+             "propagation", (304, 422, 500, 503), body_of_query="PropagationRequest"),
     Endpoint("propagation", "/v1/propagation", "POST", "Propagation report",
              "Fixed point q*, chi_q, xi_q, chi_1, c*, chi_c, xi_c, phase and trainable depth "
              "(about 6 xi_c, an empirical rule of Schoenholz et al. 2017) at (sigma_w2, "

@@ -2,7 +2,7 @@
 
     python tests/benchmarks/bench_service.py [--seconds 20] [--clients 16] [--workers 2]
 
-Starts gunicorn (sync workers, ``--threads 1``) on a free port of 127.0.0.1,
+Starts ``propcalc serve --production`` on a free port of 127.0.0.1,
 then for each scenario runs ``--clients`` threads for ``--seconds`` seconds,
 each sending requests one after another over http.client:
 
@@ -154,7 +154,7 @@ def main(argv: list[str] | None = None) -> int:
         port = server.port
         for _ in range(2 * args.workers):  # warm both workers' caches for the cached scenario
             load(port, 0.5, 1, lambda i: CACHED_BODY)
-        print(f"propcalc service: gunicorn, {args.workers} sync workers, {clients} clients, "
+        print(f"propcalc service: production server, {args.workers} workers, {clients} clients, "
               f"{seconds:g} s per scenario, 127.0.0.1:{port}")
         cached = load(port, seconds, clients, lambda i: CACHED_BODY)
         uncached = load(port, seconds, clients, uncached_body)
@@ -164,11 +164,11 @@ def main(argv: list[str] | None = None) -> int:
     base_engine = in_process_engine(baseline_seconds, uncached_body)
 
     print("\ncached propagation (same request)")
-    print(row("HTTP, gunicorn", cached))
+    print(row("HTTP, production server", cached))
     print(row("in-process Flask test client", base_cached))
     print(f"  ratio HTTP / in-process throughput: {cached['rps'] / base_cached['rps']:.2f}")
     print("\nuncached propagation (new sigma_w2 every request)")
-    print(row("HTTP, gunicorn", uncached))
+    print(row("HTTP, production server", uncached))
     print(row("in-process propcalc.propagation", base_engine))
     print(f"  ratio HTTP / in-process throughput: {uncached['rps'] / base_engine['rps']:.2f} "
           f"({args.workers} workers; the clients share the same cores)")
