@@ -19,7 +19,8 @@ runs the production set-up with the settings shipped here:
   thread (:mod:`propcalc_api._guard`).
 
 Settings of the app come from ``PROPCALC_*`` environment variables, as for
-``create_app``. docs/service.md ("Production server") has the measurements.
+``create_app``; ``PROPCALC_MAX_REQUESTS`` sets how many requests a worker
+serves before it is recycled (default 50000, with 10% jitter). docs/service.md ("Production server") has the measurements.
 """
 
 from __future__ import annotations
@@ -81,6 +82,20 @@ def production_app_config(lock_dir: str) -> dict[str, Any]:
     return out
 
 
+def _max_requests() -> dict[str, int]:
+    """``PROPCALC_MAX_REQUESTS`` (an integer >= 1) overrides the recycling of workers."""
+    text = os.environ.get("PROPCALC_MAX_REQUESTS")
+    if text is None:
+        return {}
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise ServeError(f"PROPCALC_MAX_REQUESTS must be an integer >= 1, got {text!r}")
+    return {"max_requests": value, "max_requests_jitter": value // 10}
+
+
 def serve_development(host: str, port: int, out: TextIO) -> int:
     """werkzeug's development server, one request at a time (local use)."""
     _check(host, port, 1)
@@ -102,7 +117,8 @@ def serve_production(host: str, port: int, workers: int, out: TextIO) -> int:
     arbiter_pid = os.getpid()
     try:
         app = _make_app(production_app_config(lock_dir))  # checks the settings up front
-        settings = {**PRODUCTION_SETTINGS, "bind": [_bind(host, port)], "workers": workers}
+        settings = {**PRODUCTION_SETTINGS, **_max_requests(), "bind": [_bind(host, port)],
+                    "workers": workers}
 
         class _Server(BaseApplication):  # type: ignore[misc]
             def load_config(self) -> None:

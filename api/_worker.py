@@ -106,6 +106,28 @@ class _StrictChannel(HTTPChannel):  # type: ignore[misc]
     parser_class = StrictFramingParser
 
 
+#: a connection accepted this recently that has sent nothing yet may be about to send a request
+_FRESH_SECONDS = 2.0
+
+
+def _idle_after_a_request(channel: Any) -> bool:
+    """A keep-alive connection that has been served and now waits (safe to close at once)."""
+    return (isinstance(channel, HTTPChannel) and not channel.requests
+            and channel.request is None and not channel.total_outbufs_len
+            and channel.last_activity > channel.creation_time)
+
+
+def _in_use(channel: Any) -> bool:
+    """A connection a stopping worker must still serve: a request read, being read or being
+    answered, or just accepted (closing it with unread bytes would reset it)."""
+    if not isinstance(channel, HTTPChannel):
+        return False
+    fresh = (channel.last_activity <= channel.creation_time
+             and time.time() - channel.creation_time < _FRESH_SECONDS)
+    return bool(channel.requests or channel.request is not None
+                or channel.total_outbufs_len or fresh)
+
+
 def _counting(app: Callable[..., Iterable[bytes]], counter: list[int],
               lock: threading.Lock) -> Callable[..., Iterable[bytes]]:
     def counted(environ: dict[str, Any], start_response: Callable[..., Any]) -> Iterable[bytes]:
@@ -166,15 +188,13 @@ class BufferingWorker(Worker):
         for listener in listeners:  # accept nothing more; the other workers take over
             listener.accepting = False
         for channel in list(socket_map.values()):  # idle keep-alive connections: close now
-            if (isinstance(channel, HTTPChannel) and not channel.requests
-                    and channel.request is None and not channel.total_outbufs_len):
+            if _idle_after_a_request(channel):
                 channel.handle_close()
         deadline = time.monotonic() + self.cfg.graceful_timeout
         while time.monotonic() < deadline:
             self.notify()
             busy = dispatcher.active_count or dispatcher.queue or any(
-                getattr(ch, "requests", None) or getattr(ch, "total_outbufs_len", 0)
-                for ch in list(socket_map.values()))
+                _in_use(ch) for ch in list(socket_map.values()))
             if not busy:
                 break
             wasyncore.loop(timeout=0.05, map=socket_map, use_poll=True, count=1)
