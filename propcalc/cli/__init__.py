@@ -25,6 +25,7 @@ Subcommands::
                                       finite-width check on seeded random networks
     propcalc demo                     the built-in demo scenario
     propcalc serve                    the HTTP service on 127.0.0.1 (development server)
+    propcalc serve --production       the production server (gunicorn + waitress)
 
 ``ACT`` is a built-in name or a formula in x (quote it); named parameters go
 with ``--param name=value``. Human-readable tables by default, ``--json`` for
