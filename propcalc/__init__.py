@@ -104,6 +104,9 @@ from .init.layers import Layer, LayerInit
 from .init.plan import InitPlan
 from .init.planner import recommend
 from .init.network_plan import BlockInit, NetworkPlan, network_plan
+from .init.torch_reader import ModuleBlock, ModuleReadError, ModuleReading, read_module
+from .init.torch_measure import ModuleMeasurement, ModulePosition, measure_module
+from .init.torch_network import AppliedLayer, ModulePlan, apply_network_plan, plan_module
 from .networks import (
     BlockRecord,
     BranchWeight,
@@ -235,5 +238,16 @@ __all__ = [
     "network",
     "network_propagation",
     "simulate_network",
+    "AppliedLayer",
+    "ModuleBlock",
+    "ModuleMeasurement",
+    "ModulePlan",
+    "ModulePosition",
+    "ModuleReadError",
+    "ModuleReading",
+    "apply_network_plan",
+    "measure_module",
+    "plan_module",
+    "read_module",
     "__version__",
 ]
