@@ -41,6 +41,7 @@ __all__ = [
     "weight_scales",
     "default_scales",
     "orthogonal_kind",
+    "ORTHOGONAL_SPREAD",
     "norm_gain",
     "named_arguments",
     "FUNCTION_ARGUMENTS",
@@ -236,8 +237,8 @@ def identity_function(target: Any) -> bool:
 def _mean_square(t: Any) -> float:
     import torch
 
-    with torch.no_grad():
-        return float(t.detach().to(torch.float64).square().mean())
+    with torch.no_grad():  # accumulated in float64 without a float64 copy of the tensor
+        return float(torch.linalg.vector_norm(t.detach(), dtype=torch.float64)) ** 2 / t.numel()
 
 
 def weight_scales(weight: Any, bias: Any, fan_in: int) -> tuple[float, float]:
@@ -256,21 +257,28 @@ def default_scales(kind: str, fan_in: int, has_bias: bool) -> tuple[float, float
     return 1.0 / 3.0, (1.0 / (3.0 * fan_in) if has_bias else 0.0)
 
 
+#: Relative spread of |W v|^2 / |v|^2 over three probes below which W counts as orthogonal.
+ORTHOGONAL_SPREAD = 1e-4
+
+
 def orthogonal_kind(weight: Any, conv: bool) -> str:
     """"orthogonal" (dense) or "delta_orthogonal" (convolution) when the weights are
     (scaled) orthogonal, else "gaussian".
 
     A probe, not a factorisation: ``|W v|^2 / |v|^2`` is the same for every v when the
     columns (or, for wide matrices, the rows through ``W^T``) are orthonormal up to one
-    scale, and varies by about ``sqrt(2 / n)`` for Gaussian weights; three probes in
-    float64 that agree to 1e-6 decide it (cost O(n^2), not O(n^3)). A convolution counts
+    scale, and varies by about ``sqrt(2 / n)`` for Gaussian weights; three probes that
+    agree to ORTHOGONAL_SPREAD (1e-4, well above float32 rounding and well below the
+    Gaussian spread up to n ~ 1e8) decide it (cost O(n^2), not O(n^3)). A convolution counts
     as delta-orthogonal when every tap but the centre is zero and the centre is
     orthogonal (Xiao et al. 2018, section 4).
     """
     import torch
 
     with torch.no_grad():
-        w = weight.detach().to(torch.float64)
+        w = weight.detach()
+        if not w.is_floating_point():
+            return "gaussian"
         if conv:
             taps = w.shape[2:]
             if any(k % 2 == 0 for k in taps):
@@ -284,15 +292,18 @@ def orthogonal_kind(weight: Any, conv: bool) -> str:
             w = centre
         else:
             w = w.reshape(w.shape[0], -1)
-        if min(w.shape) < 2 or float(w.square().sum()) == 0.0:
+        if min(w.shape) < 2 or not bool(w.any()):
             return "gaussian"
         if w.shape[0] < w.shape[1]:
             w = w.T
         gen = torch.Generator().manual_seed(0)
-        v = torch.randn(w.shape[1], 3, generator=gen, dtype=torch.float64)
-        ratios = (w @ v).square().sum(0) / v.square().sum(0)
-        spread = float((ratios.max() - ratios.min()) / ratios.mean())
-    if spread >= 1e-6:
+        ratios = []
+        for _ in range(3):  # matrix-vector products: O(n^2) and fast for one vector
+            v = torch.randn(w.shape[1], generator=gen, dtype=w.dtype)
+            ratios.append(float(torch.mv(w, v).double().square().sum())
+                          / float(v.double().square().sum()))
+        spread = (max(ratios) - min(ratios)) / (sum(ratios) / 3)
+    if spread >= ORTHOGONAL_SPREAD:
         return "gaussian"
     return "delta_orthogonal" if conv else "orthogonal"
 
