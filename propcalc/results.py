@@ -26,6 +26,7 @@ from __future__ import annotations
 import dataclasses
 import enum
 import math
+import typing
 from collections.abc import Mapping
 from typing import Any, ClassVar
 
@@ -92,6 +93,29 @@ class Result:
     __slots__ = ()
 
     dict_properties: ClassVar[tuple[str, ...]] = ()
+
+    @classmethod
+    def dict_keys(cls) -> tuple[str, ...]:
+        """The keys of :meth:`to_dict`, in order, known from the class alone.
+
+        An inlined nested result contributes its own keys (read from the field's annotation).
+        The service's response schemas are checked against these, field for field.
+        """
+        hints = typing.get_type_hints(cls)
+        keys: list[str] = []
+        for f in dataclasses.fields(cls):  # type: ignore[arg-type]
+            meta = f.metadata
+            if not meta.get("dict", True):
+                continue
+            if "inline" in meta:
+                nested = [t for t in typing.get_args(hints[f.name]) or (hints[f.name],)
+                          if isinstance(t, type) and issubclass(t, Result)]
+                keys.extend(nested[0].dict_keys())
+                keys.extend(k for k in meta["inline"] if k not in keys)
+            else:
+                keys.append(f.name)
+        keys.extend(cls.dict_properties)
+        return tuple(keys)
 
     def to_dict(self) -> dict[str, Any]:
         """Plain-Python view of the fields (floats may be inf; see :func:`propcalc.jsonable`)."""

@@ -1,0 +1,541 @@
+"""marshmallow schemas of the response bodies.
+
+A response body is the engine result's derived ``to_dict()`` passed through
+:func:`propcalc.jsonable`, so each schema here states, member for member, the fields of one
+result dataclass; ``tests/api/test_api_response_fields.py`` checks that they agree field for
+field, so a result that gains or loses a field cannot drift from its documented shape. These
+schemas do not depend on the app's limits and are built once, at import.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from marshmallow import fields
+
+from propcalc import Phase
+
+from ._fields import Choice, ExtNumber, FiniteNumber, JSONInteger, StrictBoolean, StrictString
+from ._schema_base import DISTRIBUTIONS, TARGETS, VARIANCE_STATUSES, StrictSchema, _d, _r
+
+__all__ = ["RESPONSE_SCHEMAS"]
+
+
+def num(**kw: Any) -> FiniteNumber:
+    return _r(FiniteNumber(**kw))
+
+def ext(**kw: Any) -> ExtNumber:
+    return _r(ExtNumber(**kw))
+
+def text(**kw: Any) -> StrictString:
+    return _r(StrictString(**kw))
+
+def notes_field() -> fields.List:
+    return _r(fields.List(StrictString(), metadata=_d("remarks in words")))
+
+class ActivationPropertiesSchema(StrictSchema):
+    """The profile of an activation."""
+
+    output_range = _r(fields.List(ExtNumber(), metadata=_d("[inf, sup] of phi", minItems=2,
+                                                           maxItems=2)))
+    monotonic = _r(StrictBoolean())
+    value_at_zero = num()
+    parity = _r(Choice(["odd", "even", "neither"]))
+    smoothness = _r(Choice(["smooth", "C1", "C0", "discontinuous"]))
+    dead_unit_probability = num(metadata=_d("P(phi'(z) = 0), z ~ N(0, 1)"))
+    vanishing_gradient_tails = _r(fields.List(Choice(["left", "right"])))
+
+class GainsSchema(StrictSchema):
+    """Forward and backward gains at unit pre-activation variance."""
+
+    activation = text()
+    forward = ext(metadata=_d("1 / sqrt(E[phi(z)^2])"))
+    backward = ext(metadata=_d("1 / sqrt(E[phi'(z)^2])"))
+    common_gain = ext(allow_none=True)
+    common_gain_sigma_w2 = ext(allow_none=True)
+    common_gain_chi_1 = ext(allow_none=True)
+    common_gain_phase = text(allow_none=True)
+    notes = notes_field()
+
+class ActivationSchema(StrictSchema):
+    """An activation: its description, breakpoints, properties and gains."""
+
+    name = text()
+    label = text()
+    params = _r(fields.Dict(keys=StrictString(), values=FiniteNumber()))
+    description = text()
+    formula = text(allow_none=True)
+    derivative_formula = text(allow_none=True)
+    breakpoints = _r(fields.List(FiniteNumber()))
+    properties = _r(fields.Nested(ActivationPropertiesSchema))
+    gains = _r(fields.Nested(GainsSchema))
+
+class ActivationListSchema(StrictSchema):
+    """Every built-in activation."""
+
+    activations = _r(fields.List(fields.Nested(ActivationSchema)))
+
+class FixedPointSchema(StrictSchema):
+    """A fixed point q* of the variance map."""
+
+    q = num()
+    chi_q = ext()
+    stable = _r(StrictBoolean())
+
+class VarianceFixedPointsSchema(StrictSchema):
+    """All fixed points of V(q) = q and the one the network flows to."""
+
+    points = _r(fields.List(fields.Nested(FixedPointSchema)))
+    q_start = num()
+    reached = _r(fields.Nested(FixedPointSchema, allow_none=True))
+    status = _r(Choice(VARIANCE_STATUSES))
+    growth_rate = ext(allow_none=True)
+    message = text()
+
+class PropagationSchema(StrictSchema):
+    """The mean-field report at one (activation, sigma_w2, sigma_b2)."""
+
+    activation = text()
+    sigma_w2 = num()
+    sigma_b2 = num()
+    q_input = num()
+    status = _r(Choice(VARIANCE_STATUSES))
+    q_star = num(allow_none=True)
+    chi_q = ext(allow_none=True)
+    xi_q = ext(allow_none=True)
+    chi_1 = ext()
+    c_star = num(allow_none=True)
+    chi_c = ext(allow_none=True)
+    xi_c = ext(allow_none=True)
+    phase = _r(Choice([p.value for p in (Phase.ORDERED, Phase.CHAOTIC, Phase.EDGE_OF_CHAOS,
+                                         Phase.UNBOUNDED)]))
+    trainable_depth = ext(allow_none=True)
+    trainable_depth_rule = text()
+    depth = _r(JSONInteger(allow_none=True))
+    gradient_growth = ext(allow_none=True)
+    edge_approach = text(allow_none=True)
+    variance_fixed_points = _r(fields.Nested(VarianceFixedPointsSchema))
+    notes = notes_field()
+
+class CriticalPointSchema(StrictSchema):
+    """A point on the edge-of-chaos line."""
+
+    activation = text()
+    q_star = num()
+    sigma_w2 = ext(allow_none=True)
+    sigma_b2 = num(allow_none=True)
+    chi_q = ext(allow_none=True)
+    stable = _r(StrictBoolean())
+    valid = _r(StrictBoolean())
+    message = text()
+
+class EdgeOfChaosSchema(StrictSchema):
+    """Critical points over q*, or at a fixed sigma_b2 (empty when there is none)."""
+
+    activation = text()
+    mode = _r(Choice(["q_star", "sigma_b2"]))
+    sigma_b2 = num(allow_none=True)
+    points = _r(fields.List(fields.Nested(CriticalPointSchema)))
+
+class LayerInitSchema(StrictSchema):
+    """Initialisation of one layer (shape members only when layers or widths were given)."""
+
+    index = _r(JSONInteger())
+    kind = _r(Choice(["dense", "conv"], allow_none=True))
+    fan_in = JSONInteger()
+    fan_out = JSONInteger()
+    weight_shape = fields.List(JSONInteger())
+    kernel_size = fields.List(JSONInteger())
+    sigma_w2 = num()
+    sigma_b2 = num()
+    gain = num()
+    weight_std = num(allow_none=True)
+    uniform_bound = num(allow_none=True)
+    truncated_normal_std = num(allow_none=True)
+    orthogonal_scale = num(allow_none=True)
+    bias_std = num()
+    value = num(allow_none=True, metadata=_d("the one number for the chosen distribution"))
+
+class InitPlanSchema(StrictSchema):
+    """A per-layer initialisation plan with its mean-field justification."""
+
+    activation = text()
+    target = _r(Choice(TARGETS))
+    target_description = text()
+    distribution = _r(Choice(DISTRIBUTIONS))
+    sigma_w2 = num()
+    sigma_b2 = num()
+    q_star = num(allow_none=True)
+    depth = _r(JSONInteger())
+    trainable_depth = ext(allow_none=True)
+    depth_ok = _r(StrictBoolean())
+    verdict = text()
+    layers = _r(fields.List(fields.Nested(LayerInitSchema)))
+    propagation = _r(fields.Nested(PropagationSchema))
+    notes = notes_field()
+
+class VarianceMapSchema(StrictSchema):
+    """V(q), V'(q) and chi_1(q) at the requested q."""
+
+    activation = text()
+    sigma_w2 = num()
+    sigma_b2 = num()
+    q = _r(fields.List(FiniteNumber()))
+    variance = _r(fields.List(ExtNumber(), metadata=_d("V(q)")))
+    slope = _r(fields.List(ExtNumber(), metadata=_d("V'(q)")))
+    chi_1 = _r(fields.List(ExtNumber(), metadata=_d("sigma_w2 E[phi'(sqrt(q) z)^2]")))
+
+class CorrelationMapSchema(StrictSchema):
+    """C(c) (and C'(c) when asked) at the requested c, for inputs of variance q."""
+
+    activation = text()
+    sigma_w2 = num()
+    sigma_b2 = num()
+    q = num()
+    q_source = _r(Choice(["given", "fixed_point"]))
+    c = _r(fields.List(FiniteNumber()))
+    correlation = _r(fields.List(ExtNumber(), metadata=_d("C(c)")))
+    slope = _r(fields.List(ExtNumber(), allow_none=True, metadata=_d("C'(c), or null")))
+
+def pair_meta(text: str = "") -> dict[str, Any]:
+    """Metadata of a list of exactly two items."""
+    return {**({"description": text} if text else {}), "minItems": 2, "maxItems": 2}
+
+def pair_field(text: str = "") -> fields.List:
+    return _r(fields.List(ExtNumber(), metadata=pair_meta(text)))
+
+class DropoutPropagationSchema(StrictSchema):
+    """The mean-field report of a deep network with dropout at keep rate rho."""
+
+    activation = text()
+    keep_rate = num()
+    sigma_w2 = num()
+    sigma_b2 = num()
+    q_input = num()
+    status = _r(Choice(VARIANCE_STATUSES))
+    q_star = num(allow_none=True, metadata=_d("fixed point of (sigma_w2 / rho) E[phi^2] + "
+                                              "sigma_b2"))
+    chi_q = ext(allow_none=True)
+    chi_1 = ext(allow_none=True, metadata=_d("(sigma_w2 / rho) E[phi'(sqrt(q*) z)^2]"))
+    c_star = num(allow_none=True, metadata=_d("correlation fixed point (< 1 for rho < 1)"))
+    chi_c = ext(allow_none=True)
+    xi_c = ext(allow_none=True)
+    trainable_depth = ext(allow_none=True)
+    trainable_depth_rule = text()
+    depth = _r(JSONInteger(allow_none=True))
+    gradient_growth = ext(allow_none=True)
+    depth_ok = _r(StrictBoolean(allow_none=True))
+    verdict = text()
+    notes = notes_field()
+
+class DropoutSweepSchema(StrictSchema):
+    """Dropout reports over several keep rates, in the order given."""
+
+    activation = text()
+    scale_with_keep_rate = _r(StrictBoolean())
+    reports = _r(fields.List(fields.Nested(DropoutPropagationSchema)))
+
+class MaxMomentsSchema(StrictSchema):
+    """Moments of the largest of k iid standard normals."""
+
+    k = _r(JSONInteger())
+    mean = num(metadata=_d("E[X_k]"))
+    second_moment = num(metadata=_d("E[X_k^2]"))
+    recommended_sigma_w2 = num(metadata=_d("c_k = 1 / E[X_k^2] (Tseran & Montufar 2023)"))
+
+class MaxoutLayerSchema(StrictSchema):
+    """Initialisation and size of one dense maxout layer."""
+
+    k = _r(JSONInteger())
+    fan_in = _r(JSONInteger())
+    fan_out = _r(JSONInteger())
+    sigma_w2 = num()
+    weight_std = num(metadata=_d("sqrt(sigma_w2 / fan_in)"))
+    n_parameters = _r(JSONInteger(metadata=_d("k (fan_in fan_out + fan_out)")))
+    plain_parameters = _r(JSONInteger(metadata=_d("a plain dense layer of the same shape")))
+    weight_shape = _r(fields.List(JSONInteger(), metadata=_d("(k, fan_out, fan_in)",
+                                                             minItems=3, maxItems=3)))
+
+class MaxoutSchema(StrictSchema):
+    """The mean-field report of a deep maxout network (and one layer when sizes are given)."""
+
+    k = _r(JSONInteger())
+    sigma_w2 = num()
+    sigma_b2 = num()
+    q_input = num()
+    moments = _r(fields.Nested(MaxMomentsSchema))
+    status = _r(Choice(VARIANCE_STATUSES))
+    q_star = num(allow_none=True)
+    chi_q = ext(metadata=_d("sigma_w2 E[X_k^2]: the variance map is linear"))
+    growth_rate = ext(allow_none=True)
+    chi_1 = ext(metadata=_d("sigma_w2"))
+    c_star = num(allow_none=True)
+    chi_c = ext(allow_none=True)
+    xi_c = ext(allow_none=True)
+    phase = _r(Choice([p.value for p in (Phase.ORDERED, Phase.EDGE_OF_CHAOS, Phase.UNBOUNDED)]))
+    trainable_depth = ext(allow_none=True)
+    trainable_depth_rule = text()
+    depth = _r(JSONInteger(allow_none=True))
+    gradient_growth = ext(allow_none=True)
+    depth_ok = _r(StrictBoolean(allow_none=True))
+    verdict = text()
+    parameter_factor = _r(JSONInteger(metadata=_d("k: a maxout layer has k times the "
+                                                  "parameters of a plain layer")))
+    notes = notes_field()
+    layer = _r(fields.Nested(MaxoutLayerSchema, allow_none=True,
+                             metadata=_d("null unless fan_in and fan_out are given")))
+
+class MeanVarianceFixedPointSchema(StrictSchema):
+    """A fixed point (mu*, nu*) of the mean-variance map with its Jacobian."""
+
+    mu = num()
+    nu = num()
+    jacobian = _r(fields.List(fields.List(ExtNumber(), metadata=pair_meta()),
+                              metadata=pair_meta("rows (mu~, nu~), columns (mu, nu)")))
+    eigenvalues_real = pair_field()
+    eigenvalues_imag = pair_field()
+    spectral_radius = ext()
+    spectral_norm = ext()
+    attracting = _r(StrictBoolean())
+
+class SelfNormalizationSchema(StrictSchema):
+    """Fixed points of the mean-variance map and whether the network self-normalises."""
+
+    activation = text()
+    omega = num()
+    tau = num()
+    fixed_points = _r(fields.List(fields.Nested(MeanVarianceFixedPointSchema)))
+    nearest = _r(fields.Nested(MeanVarianceFixedPointSchema, allow_none=True))
+    self_normalizing = _r(StrictBoolean())
+    neutral = _r(StrictBoolean())
+    zero_rate = ext(allow_none=True)
+    method = text()
+    message = text()
+
+class AlphaDropoutSchema(StrictSchema):
+    """Alpha dropout: y = a (x d + alpha' (1 - d)) + b keeps the mean and the variance."""
+
+    keep_rate = num()
+    alpha_prime = num()
+    a = num()
+    b = num()
+    mean = num()
+    variance = num()
+
+class JacobianSpectrumSchema(StrictSchema):
+    """Mean and variance of the spectrum of J J^T, Gaussian and orthogonal weights."""
+
+    activation = text()
+    depth = _r(JSONInteger())
+    q_star = num()
+    sigma_w2 = num()
+    sigma_b2 = num(allow_none=True)
+    mu_1 = num(metadata=_d("E[phi'(sqrt(q*) z)^2]"))
+    mu_2 = num(metadata=_d("E[phi'(sqrt(q*) z)^4]"))
+    moment_ratio = ext(metadata=_d("mu_2 / mu_1^2"))
+    chi_1 = ext()
+    mean = ext(metadata=_d("chi_1^L"))
+    normalized_variance_gaussian = ext(metadata=_d("L mu_2 / mu_1^2"))
+    normalized_variance_orthogonal = ext(metadata=_d("L (mu_2 / mu_1^2 - 1)"))
+    variance_gaussian = ext()
+    variance_orthogonal = ext()
+    notes = notes_field()
+
+class IsometryAdviceSchema(StrictSchema):
+    """Where (if anywhere) on the edge of chaos the Jacobian is near-isometric."""
+
+    activation = text()
+    depth = _r(JSONInteger())
+    max_variance = num()
+    achievable = _r(StrictBoolean())
+    weights = _r(Choice(["gaussian", "orthogonal"]))
+    q_star = num(allow_none=True)
+    sigma_w2 = num(allow_none=True)
+    sigma_b2 = num(allow_none=True)
+    spectrum = _r(fields.Nested(JacobianSpectrumSchema, allow_none=True))
+    ratio_at_small_q = ext()
+    ratio_at_large_q = ext()
+    ratio_constant = _r(StrictBoolean())
+    message = text()
+
+class InitialLossSchema(StrictSchema):
+    """Expected initial cross-entropy against ln K."""
+
+    n_classes = _r(JSONInteger())
+    logit_variance = num()
+    expected_loss = num()
+    log_classes = num(metadata=_d("ln K, the loss of uniform predictions"))
+    excess = num()
+    small_variance_approximation = num(metadata=_d("ln K + s2 (K - 1) / (2K)"))
+    method = text()
+    target_note = text()
+
+class MaxProbabilitySchema(StrictSchema):
+    """Expected largest class probability at initialisation."""
+
+    n_classes = _r(JSONInteger())
+    logit_variance = num()
+    value = num()
+    standard_error = num()
+    method = _r(Choice(["exact (s2 = 0)", "quadrature", "monte carlo"]))
+    n_samples = _r(JSONInteger(allow_none=True))
+    seed = _r(JSONInteger(allow_none=True))
+    uniform = num(metadata=_d("1 / K"))
+
+class SoftmaxSchema(StrictSchema):
+    """The softmax output at initialisation: expected loss and largest probability."""
+
+    initial_loss = _r(fields.Nested(InitialLossSchema))
+    max_probability = _r(fields.Nested(MaxProbabilitySchema))
+
+class OutputLayerScaleSchema(StrictSchema):
+    """The largest last-layer sigma_w2 whose expected initial loss is within the margin."""
+
+    n_classes = _r(JSONInteger())
+    margin = num()
+    penultimate_second_moment = num()
+    sigma_b2 = num()
+    max_logit_variance = num()
+    sigma_w2 = num()
+    weight_std = num(allow_none=True)
+    loss_at_scale = _r(fields.Nested(InitialLossSchema))
+    max_probability_at_scale = _r(fields.Nested(MaxProbabilitySchema))
+    current = _r(fields.Nested(InitialLossSchema, allow_none=True))
+    notes = notes_field()
+
+class LayerMeasurementSchema(StrictSchema):
+    """Predicted and measured q, c and squared gradient norm at one layer."""
+
+    index = _r(JSONInteger())
+    q_predicted = ext()
+    q_mean = ext()
+    q_se = ext()
+    q_band = pair_field()
+    q_geometric = ext()
+    q_geometric_band = pair_field()
+    c_predicted = ext()
+    c_mean = ext()
+    c_se = ext()
+    c_band = pair_field()
+    gradient_predicted = ext()
+    gradient_mean = ext()
+    gradient_se = ext()
+    gradient_band = pair_field()
+    gradient_geometric = ext()
+    gradient_geometric_band = pair_field()
+    q_in_band = _r(StrictBoolean())
+    c_in_band = _r(StrictBoolean())
+    gradient_in_band = _r(StrictBoolean())
+
+class SimulationSchema(StrictSchema):
+    """Mean-field predictions against seeded finite-width networks, layer by layer."""
+
+    activation = text()
+    sigma_w2 = num()
+    sigma_b2 = num()
+    width = _r(JSONInteger())
+    depth = _r(JSONInteger())
+    repetitions = _r(JSONInteger())
+    n_pairs = _r(JSONInteger())
+    seed = _r(JSONInteger())
+    q0 = num()
+    c0 = num()
+    tolerance = num()
+    layers = _r(fields.List(fields.Nested(LayerMeasurementSchema),
+                            metadata=_d("layers 0 ... depth")))
+    max_deviation_q = ext()
+    max_deviation_c = ext()
+    max_deviation_gradient = ext()
+    fraction_in_band = num()
+    deviation_visible = _r(StrictBoolean())
+    first_visible_layer = _r(JSONInteger(allow_none=True))
+    message = text()
+
+class ProblemEntrySchema(StrictSchema):
+    """One bad field: where it is and what is wrong with it."""
+
+    pointer = StrictString(metadata=_d("JSON pointer into the request body"))
+    parameter = StrictString(metadata=_d("query parameter name"))
+    detail = text()
+
+class LimitRefSchema(StrictSchema):
+    """The limit a request ran into."""
+
+    name = text()
+    value = num()
+
+class ProblemSchema(StrictSchema):
+    """RFC 9457 problem details."""
+
+    type = text(metadata=_d("problem type URI; about:blank for plain HTTP errors"))
+    title = text()
+    status = _r(JSONInteger())
+    detail = text()
+    instance = text(metadata=_d("the request path"))
+    errors = fields.List(fields.Nested(ProblemEntrySchema))
+    limit = fields.Nested(LimitRefSchema)
+    estimated_cost = FiniteNumber(metadata=_d("estimated work units of the request"))
+    incident = StrictString(metadata=_d("identifier of a logged internal error"))
+
+class HealthSchema(StrictSchema):
+    """Liveness."""
+
+    status = _r(Choice(["ok"]))
+    service = text()
+    version = text()
+
+class RangesSchema(StrictSchema):
+    """Fixed parameter ranges."""
+
+    variance_max = num()
+    sigma_w2_min = num()
+    bias_min_positive = num()
+    map_q_max = num()
+    q_star_min = num()
+    q_star_max = num()
+    plan_q_input_min = num()
+    param_abs_max = num()
+    keep_rate_min = num()
+    maxout_max_rank = _r(JSONInteger())
+    omega_abs_max = num()
+    mean_abs_max = num()
+    small_variance_min = num()
+    alpha_prime_abs_max = num()
+    spectral_variance_max = num()
+    max_classes = _r(JSONInteger())
+    logit_variance_max = num()
+    margin_min = num()
+    margin_max = num()
+    max_samples = _r(JSONInteger())
+    mc_max_elements = _r(JSONInteger())
+    seed_max = _r(JSONInteger())
+    simulation_max_width = _r(JSONInteger())
+    simulation_max_repetitions = _r(JSONInteger())
+    simulation_max_pairs = _r(JSONInteger())
+    tolerance_min = num()
+    plot_dpi_min = _r(JSONInteger())
+    plot_dpi_max = _r(JSONInteger())
+
+class LimitsInfoSchema(StrictSchema):
+    """The limits this service enforces."""
+
+    max_body_bytes = _r(JSONInteger())
+    max_array_length = _r(JSONInteger())
+    max_grid_points = _r(JSONInteger())
+    max_layers = _r(JSONInteger())
+    max_depth = _r(JSONInteger())
+    max_simulation_size = _r(JSONInteger())
+    max_formula_length = _r(JSONInteger())
+    max_formula_params = _r(JSONInteger())
+    work_budget = num()
+    wall_clock_limit = num()
+    cpu_time_limit = num()
+    expensive_units = num(allow_none=True)
+    ranges = _r(fields.Nested(RangesSchema))
+
+
+#: every response schema by its name in :class:`~propcalc_api._schemas.Schemas`
+RESPONSE_SCHEMAS: dict[str, type[StrictSchema]] = {
+    name[: -len("Schema")]: value for name, value in dict(globals()).items()
+    if name.endswith("Schema") and isinstance(value, type) and issubclass(value, StrictSchema)
+    and value is not StrictSchema}
