@@ -30,7 +30,6 @@ from propcalc import (
     InvalidParameterError,
     Layer,
     LayerInit,
-    PropcalcError,
     activation,
     builtin_names,
     gains,
@@ -601,13 +600,12 @@ def test_numpy_integers_are_accepted():
     assert recommend(T, widths=np.array([4, 8, 2])).depth == 2
 
 
-def test_float_kernel_size_gets_a_clear_answer():
-    try:
-        layer = Layer.conv(3, 4, 3.0)
-    except InvalidParameterError as exc:
-        assert "kernel_size" in str(exc)
-    else:
-        assert layer.fan_in == 9
+def test_an_integral_float_kernel_size_is_read_as_the_integer():
+    # decided: 3.0 is the integer 3 (as numpy integers are); 3.5 is refused naming kernel_size
+    layer = Layer.conv(3, 4, 3.0)
+    assert (layer.fan_in, layer.fan_out, layer.kernel_size) == (9, 12, (3,))
+    with pytest.raises(InvalidParameterError, match="kernel_size"):
+        Layer.conv(3, 4, 3.5)
 
 
 def test_widths_as_a_string_names_the_list():
@@ -615,15 +613,12 @@ def test_widths_as_a_string_names_the_list():
         recommend(T, widths="10,20")
 
 
-@pytest.mark.parametrize("call", [lambda: recommend("tanh", depth=3), lambda: gains("tanh"),
-                                  lambda: propagation("tanh", 1.0, 0.0)],
+@pytest.mark.parametrize("call", [lambda a: recommend(a, depth=3), lambda a: gains(a),
+                                  lambda a: propagation(a, 1.0, 0.0)],
                          ids=["recommend", "gains", "propagation"])
 def test_a_name_instead_of_an_activation(call):
-    # either accepted (resolved through activation()) or refused with a PropcalcError
-    try:
-        call()
-    except PropcalcError:
-        pass
+    # decided: a name is resolved once at the boundary, the same answer as the Activation's
+    assert call("tanh").to_dict() == call(activation("tanh")).to_dict()
 
 
 def test_hard_tanh_without_bias_has_no_positive_fixed_point():
