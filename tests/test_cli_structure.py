@@ -130,7 +130,7 @@ def test_help_lists_the_built_ins_in_order():
     assert cli.main(["--help"], out=out, err=io.StringIO()) == 0
     sub = next(a for a in cli.build_parser()._actions if a.dest == "command")
     names = list(sub.choices)
-    assert names[:14] == ["activations", "show", "report", "edge", "phase", "depth-scales",
-                          "plan", "dropout", "maxout", "selfnorm", "isometry", "softmax",
-                          "simulate", "demo"]
+    assert names[:16] == ["activations", "show", "report", "edge", "phase", "depth-scales",
+                          "plan", "network", "shape", "dropout", "maxout", "selfnorm",
+                          "isometry", "softmax", "simulate", "demo"]
     assert isinstance(sub, argparse._SubParsersAction)

@@ -25,7 +25,8 @@ __all__ = ["BUILTIN_COMMANDS", "ENTRY_POINT_GROUP", "build_parser", "main"]
 
 #: the built-in subcommand modules of :mod:`propcalc.cli.commands`, in the order of the help;
 #: a new family of subcommands is one module there with ``register(subparsers)`` plus one name here
-BUILTIN_COMMANDS = ("activations", "propagation", "plan", "variants", "simulate", "demo")
+BUILTIN_COMMANDS = ("activations", "propagation", "plan", "network", "shape", "variants", "simulate",
+                    "demo")
 #: the entry-point group through which other packages add subcommands
 ENTRY_POINT_GROUP = "propcalc.commands"
 

@@ -1,0 +1,279 @@
+"""``propcalc network FILE``: a described network, position by position, its summary and its plan.
+
+The file (or ``-`` for stdin) holds a network description in propcalc's blocks format
+(docs/networks.md). The command prints the per-position table of
+:func:`propcalc.network_propagation` (q, c and the gradient), the findings of its summary and
+the initialisation plan of :func:`propcalc.network_plan`; ``--json`` writes both results'
+dict forms; ``--plot`` draws q, c and the gradient against depth
+(:func:`propcalc.output.network_plot.plot_network`).
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import json
+import sys
+from typing import Any, TextIO
+
+from ... import (
+    NetworkDescriptionError,
+    PropcalcError,
+    network,
+    network_plan,
+    network_propagation,
+)
+from ..options import EXIT_OK, UsageError, finite_float, with_json, with_plot
+from ..output import emit_json, format_number, format_pairs, format_table, plus_minus
+from ..pictures import start_plot, write_plot
+
+__all__ = ["MAX_FILE_BYTES", "DEFAULT_ROWS", "read_description", "register"]
+
+#: The largest description file read (a description at the engine's limit of 10,000 block
+#: objects is about 2 MB of JSON).
+MAX_FILE_BYTES = 16 * 1024 * 1024
+#: Rows of the per-position table unless ``--rows`` says otherwise.
+DEFAULT_ROWS = 60
+
+
+def _no_constants(token: str) -> Any:
+    raise ValueError(f"{token} is not a JSON number (write a finite number)")
+
+
+def read_description(path: str) -> Any:
+    """The parsed JSON of ``path`` (``-``: standard input), or a one-line UsageError.
+
+    The file is read up to :data:`MAX_FILE_BYTES`; NaN and infinities are refused (strict
+    JSON); a file nested too deeply for the parser is refused.
+    """
+    name = "standard input" if path == "-" else path
+    try:
+        if path == "-":
+            stream = getattr(sys.stdin, "buffer", sys.stdin)  # bytes when there is a buffer
+            raw = stream.read(MAX_FILE_BYTES + 1)
+        else:
+            with open(path, "rb") as fh:
+                raw = fh.read(MAX_FILE_BYTES + 1)
+    except FileNotFoundError:
+        raise UsageError(f"{name}: no such file") from None
+    except IsADirectoryError:
+        raise UsageError(f"{name}: is a directory, not a description file") from None
+    except OSError as exc:
+        raise UsageError(f"{name}: cannot read it: {exc.strerror or exc}") from None
+    if len(raw) > MAX_FILE_BYTES:
+        raise UsageError(f"{name}: larger than {MAX_FILE_BYTES // (1024 * 1024)} MB; a network "
+                         "description is far smaller (use repeat blocks)")
+    if isinstance(raw, bytes):
+        try:
+            raw = raw.decode("utf-8-sig")
+        except UnicodeDecodeError as exc:
+            raise UsageError(f"{name}: not UTF-8 text (byte {exc.start})") from None
+    if not raw.strip():
+        raise UsageError(f"{name}: empty; expected a JSON description like "
+                         '{"blocks": [{"dense": {"sigma_w2": 2, "sigma_b2": 0}}, '
+                         '{"activation": "relu"}]}')
+    try:
+        return json.loads(raw, parse_constant=_no_constants)
+    except json.JSONDecodeError as exc:
+        raise UsageError(f"{name}: not valid JSON: {exc.msg} at line {exc.lineno} column "
+                         f"{exc.colno}") from None
+    except ValueError as exc:
+        raise UsageError(f"{name}: not valid JSON: {exc}") from None
+    except RecursionError:
+        raise UsageError(f"{name}: nested too deeply to read (the description allows 16 "
+                         "levels of residual/repeat nesting)") from None
+
+
+def _flags(result: Any) -> dict[int, list[str]]:
+    """Short words for the table's last column, at the positions the summary names."""
+    s = result.summary
+    out: dict[int, list[str]] = {}
+
+    def add(i: int | None, word: str) -> None:
+        if i is not None:
+            out.setdefault(i, []).append(word)
+
+    add(s.indistinguishable_at, "inputs merge")
+    add(s.decorrelated_at, "inputs uncorrelated")
+    if s.gradient_input is not None:
+        add(s.gradient_beyond_at, f"gradient beyond {s.gradient_factor:g}x below")
+    for f in s.findings:
+        if f.topic == "attention":
+            add(f.position, "tokens collapse")
+    n = len(result.q) - 1
+    if result.gaussian_positions < n:
+        add(result.gaussian_positions + 1, "not Gaussian from here")
+    return out
+
+
+def _positions(n: int, rows: int | None, keep: set[int]) -> list[int]:
+    """Positions 0..n, thinned to about ``rows`` evenly spaced ones plus ``keep``."""
+    if rows is None or n + 1 <= rows:
+        return list(range(n + 1))
+    step = max(1, -(-n // max(rows - 1, 1)))
+    chosen = set(range(0, n + 1, step)) | {0, n} | {i for i in keep if 0 <= i <= n}
+    return sorted(chosen)
+
+
+def _cell(result: Any, i: int, name: str) -> Any:
+    value = getattr(result, name)[i]
+    sim = result.simulation
+    if value is None or sim is None or i <= result.gaussian_positions:
+        return value
+    p = sim.positions[i]
+    return plus_minus(value, getattr(p, f"{name}_se"))
+
+
+def _table(result: Any, rows: int | None) -> tuple[str, str]:
+    flags = _flags(result)
+    n = len(result.q) - 1
+    shown = _positions(n, rows, set(flags))
+    lines = []
+    for i in shown:
+        if i == 0:
+            kind, where, source = "input", "-", "-"
+        else:
+            rec = result.blocks[i - 1]
+            copy = f" #{'.'.join(str(x) for x in rec.copy)}" if rec.copy else ""
+            kind, where, source = rec.kind, f"{rec.path}{copy}", rec.source
+        lines.append([i, kind, where, _cell(result, i, "q"), _cell(result, i, "c"),
+                      _cell(result, i, "gradient"), source, "; ".join(flags.get(i, []))])
+    text = format_table(lines, ["position", "block", "path (#copy)", "q", "c", "gradient",
+                                "from", "summary"])
+    note = ""
+    if len(shown) < n + 1:
+        note = (f"({len(shown)} of {n + 1} positions shown: evenly spaced, the first, the last "
+                "and those the summary names; --rows all prints every one)\n")
+    return text, note
+
+
+def _summary_lines(summary: Any) -> list[str]:
+    out = []
+    for f in summary.findings:
+        out.append(f"- {f.message}")
+        if f.advice:
+            out.append(f"  change: {f.advice}")
+    if not summary.findings:
+        out.append(f"- nothing to flag: the two inputs neither merge (1 - c <= "
+                   f"{summary.distance:g}) nor decorrelate, gradients stay within "
+                   f"{summary.gradient_factor:g}x and the signal within "
+                   f"{summary.signal_factor:g}x")
+    return out
+
+
+def _plan_text(plan: Any, out: TextIO) -> None:
+    rows = [[b.path, b.copies, b.kind, b.sigma_w2, b.sigma_b2, b.weights, b.weight_std, b.rule]
+            for b in plan.blocks]
+    if rows:
+        out.write(format_table(rows, ["block", "copies", "kind", "sigma_w2", "sigma_b2",
+                                      "weights", "weight std", "rule"]) + "\n")
+    else:
+        out.write("no dense or convolution blocks to plan\n")
+    if plan.branch_weight is not None and plan.branch_weight.weight is not None:
+        out.write(f"residual branch weight  {format_number(plan.branch_weight.weight)}\n")
+    out.write(format_pairs([("planned: output c", plan.output_c),
+                            ("planned: input gradient / output", plan.input_gradient)]) + "\n")
+    for line in _summary_lines(plan.summary):
+        out.write(f"  {line}\n")
+    for note in plan.notes:
+        out.write(f"note: {note}\n")
+
+
+def _rows(text: str) -> int | None:
+    if text == "all":
+        return None
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 2:
+        raise argparse.ArgumentTypeError(f"must be 'all' or an integer >= 2, got {text!r}")
+    return value
+
+
+def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
+    target = start_plot(args)
+    drawer = None
+    if target is not None:
+        drawer = importlib.import_module("propcalc.output.network_plot")
+    raw = read_description(args.file)
+    name = "standard input" if args.file == "-" else args.file
+    try:
+        net = network(raw)
+    except NetworkDescriptionError as exc:
+        raise UsageError(f"{name}: {exc}") from None
+    result = network_propagation(net, args.q0, args.c0, c0_within=args.c0_within,
+                                 c0_between=args.c0_between, seed=args.seed)
+    plan, plan_error = None, None
+    if not args.no_plan:
+        try:
+            plan = network_plan(net, q0=args.q0, c0=args.c0, target=args.target,
+                                max_gradient=args.max_gradient, distribution=args.distribution,
+                                convolution=args.convolution)
+        except PropcalcError as exc:  # the propagation stands without it
+            plan_error = str(exc)
+    if args.json:
+        emit_json({"propagation": result.to_dict(),
+                   "plan": None if plan is None else plan.to_dict(),
+                   "plan_error": plan_error}, out)
+    else:
+        n = len(result.q) - 1
+        out.write(format_pairs([
+            ("network", f"{name}: {n} positions"),
+            ("inputs", f"q0 = {format_number(result.q0)}, c0 = {format_number(result.c0)}"),
+            ("output q", result.q[-1]), ("output c", result.c[-1]),
+            ("input gradient / output", result.gradient[0]),
+        ]) + "\n\n")
+        table, shown = _table(result, args.rows)
+        out.write(table + "\n" + shown + "\n")
+        out.write("summary (infinite-width predictions at initialisation):\n")
+        out.write("\n".join(_summary_lines(result.summary)) + "\n")
+        if not args.no_plan:
+            out.write("\nplan:\n")
+            if plan is not None:
+                _plan_text(plan, out)
+            else:
+                out.write(f"not available: {plan_error}\n")
+    if target is not None and drawer is not None:
+        fig = drawer.plot_network(result)
+        write_plot(fig, target, f"q, c and the gradient against depth for {name}", args, out)
+    return EXIT_OK
+
+
+def register(sub: Any) -> None:
+    """Add the ``network`` subcommand to ``sub`` (an argparse subparsers object)."""
+    p = sub.add_parser(
+        "network", help="a described network: q, c, gradient per block, summary, plan",
+        description="Read a network description (JSON, propcalc's blocks format: "
+                    "docs/networks.md) and print q, c and the gradient at every stream "
+                    "position, what they mean, and an initialisation plan.")
+    p.add_argument("file", metavar="FILE", help="the description (JSON); - reads stdin")
+    p.add_argument("--q0", type=finite_float, default=1.0,
+                   help="second moment per unit of the input (default 1)")
+    p.add_argument("--c0", type=finite_float, default=0.0,
+                   help="correlation of the two inputs (default 0)")
+    p.add_argument("--c0-within", type=finite_float, default=0.0,
+                   help="with pooling or attention: correlation of two positions of one input")
+    p.add_argument("--c0-between", type=finite_float, default=0.0,
+                   help="with pooling or attention: correlation of two positions of the two "
+                        "inputs")
+    p.add_argument("--seed", type=int, default=0,
+                   help="seed of the simulation that fills positions where the Gaussian "
+                        "recursion does not hold (default 0)")
+    p.add_argument("--rows", type=_rows, default=DEFAULT_ROWS, metavar="N|all",
+                   help=f"rows of the per-position table (default {DEFAULT_ROWS})")
+    p.add_argument("--target", type=finite_float,
+                   help="plan: the output correlation not to exceed for inputs at c0; sets "
+                        "the residual branch weight")
+    p.add_argument("--max-gradient", type=finite_float, default=10.0,
+                   help="plan with --target: keep the input's gradient within this factor of "
+                        "the output's (default 10)")
+    p.add_argument("--distribution", default="gaussian", choices=["gaussian", "orthogonal"],
+                   help="plan: dense weights (default gaussian)")
+    p.add_argument("--convolution", default="gaussian",
+                   choices=["gaussian", "delta_orthogonal"],
+                   help="plan: convolution kernels (default gaussian)")
+    p.add_argument("--no-plan", action="store_true", help="skip the initialisation plan")
+    with_json(p)
+    with_plot(p, "q, c and the gradient against depth")
+    p.set_defaults(func=_cmd_network)

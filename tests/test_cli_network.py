@@ -1,0 +1,233 @@
+"""``propcalc network FILE``: the per-position table, the summary, the plan, --json, --plot.
+
+The command is driven in-process (tests/cli_helpers.py). References: the Python API
+(network_propagation, network_plan: the CLI must print the same numbers), and closed forms
+for a plain ReLU stack at sigma_w2 = 2, sigma_b2 = 0: q is kept (He et al. 2015) and the
+correlation follows the arc-cosine kernel of degree 1 (Cho & Saul 2009), normalised:
+C(c) = (sqrt(1 - c^2) + (pi - arccos c) c) / pi. Errors are one line on stderr with exit
+status 2 and no traceback.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import math
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import propcalc
+from propcalc.cli.commands import network as network_command
+from cli_helpers import run, strict_json
+
+ROOT = Path(__file__).resolve().parents[1]
+DEMO = ROOT / "demo" / "networks" / "otter-residual-mlp.json"
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # ISO/IEC 15948:2004, section 5.2
+
+
+def relu_stack(times: int) -> dict:
+    return {"blocks": [{"repeat": {"times": times, "blocks": [
+        {"dense": {"sigma_w2": 2.0, "sigma_b2": 0.0}}, {"activation": "relu"}]}}]}
+
+
+def arccos_map(c: float) -> float:
+    """Normalised degree-1 arc-cosine kernel (Cho & Saul 2009): ReLU at sigma_w2 = 2."""
+    return (math.sqrt(1.0 - c * c) + (math.pi - math.acos(c)) * c) / math.pi
+
+
+def write(tmp_path: Path, obj, name: str = "net.json") -> str:
+    path = tmp_path / name
+    path.write_text(obj if isinstance(obj, str) else json.dumps(obj))
+    return str(path)
+
+
+def table_rows(text: str) -> dict[int, list[str]]:
+    """Rows of the per-position table, by position (cells split on two or more spaces)."""
+    import re
+
+    lines = text.splitlines()
+    start = next(i for i, ln in enumerate(lines) if ln.startswith("position  block"))
+    rows = {}
+    for ln in lines[start + 2:]:
+        if not ln.strip() or not ln[0].isdigit():
+            break
+        cells = re.split(r"\s{2,}", ln.strip())
+        rows[int(cells[0])] = cells
+    return rows
+
+
+def test_demo_table_agrees_with_the_api():
+    code, out, err = run("network", str(DEMO), "--no-plan")
+    assert code == 0, err
+    r = propcalc.network_propagation(json.loads(DEMO.read_text()))
+    rows = table_rows(out)
+    assert sorted(rows) == list(range(len(r.q)))
+    for i, cells in rows.items():
+        q, c, g = (float(x) for x in cells[3:6])
+        np.testing.assert_allclose([q, c, g], [r.q[i], r.c[i], r.gradient[i]], rtol=1e-5)
+    for f in r.summary.findings:
+        assert f.message in out
+    assert "plan:" not in out
+
+
+def test_plain_relu_against_the_arccos_kernel(tmp_path):
+    code, out, err = run("network", write(tmp_path, relu_stack(10)), "--json", "--c0", "0.3")
+    assert code == 0, err
+    doc = strict_json(out)
+    prop = doc["propagation"]
+    c = 0.3
+    expected = [c]
+    for _ in range(10):
+        expected += [c, arccos_map(c)]  # the dense block keeps c; relu applies the kernel
+        c = expected[-1]
+    np.testing.assert_allclose(prop["c"], expected, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(prop["q"][::2], [1.0] * 11, rtol=1e-12)  # He et al. 2015
+
+
+def test_json_is_the_results_dict_forms(tmp_path):
+    desc = json.loads(DEMO.read_text())
+    code, out, err = run("network", str(DEMO), "--json", "--q0", "2", "--c0", "0.1",
+                         "--target", "0.9")
+    assert code == 0, err
+    doc = strict_json(out)
+    r = propcalc.network_propagation(desc, 2.0, 0.1)
+    plan = propcalc.network_plan(desc, q0=2.0, c0=0.1, target=0.9)
+    assert doc["propagation"] == json.loads(json.dumps(propcalc.jsonable(r.to_dict())))
+    assert doc["plan"] == json.loads(json.dumps(propcalc.jsonable(plan.to_dict())))
+    assert doc["plan_error"] is None
+    assert doc["plan"]["branch_weight"]["weight"] == pytest.approx(plan.branch_weight.weight,
+                                                                    rel=1e-12)
+
+
+def test_plan_text_agrees_with_network_plan():
+    code, out, err = run("network", str(DEMO), "--target", "0.9")
+    assert code == 0, err
+    plan = propcalc.network_plan(json.loads(DEMO.read_text()), target=0.9)
+    section = out.split("\nplan:\n", 1)[1]
+    for b in plan.blocks:
+        assert b.path in section
+    line = next(ln for ln in section.splitlines() if ln.startswith("residual branch weight"))
+    assert float(line.split()[-1]) == pytest.approx(plan.branch_weight.weight, rel=1e-5)
+    assert plan.branch_weight.message in section
+
+
+def test_reads_stdin(monkeypatch):
+    monkeypatch.setattr(sys, "stdin", io.StringIO(json.dumps(relu_stack(3))))
+    code, out, err = run("network", "-", "--json", "--no-plan")
+    assert code == 0, err
+    assert strict_json(out)["propagation"]["q"][-1] == pytest.approx(1.0, rel=1e-12)
+
+
+def test_simulated_positions_show_their_band(tmp_path):
+    post = {"blocks": [{"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0}},
+                       {"repeat": {"times": 3, "blocks": [
+                           {"residual": {"branch": [{"dense": {"sigma_w2": 2.0,
+                                                                "sigma_b2": 0.0}}]}},
+                           {"activation": "relu"}]}}]}
+    code, out, err = run("network", write(tmp_path, post), "--no-plan")
+    assert code == 0, err
+    r = propcalc.network_propagation(post)
+    first = r.gaussian_positions + 1
+    rows = table_rows(out)
+    assert rows[first][6] == "simulation" and "+-" in rows[first][3]
+    assert "not Gaussian from here" in rows[first][-1]
+    assert r.notes[0] in out
+
+
+def test_long_tables_are_thinned_but_keep_flagged_positions(tmp_path):
+    desc = {"blocks": [{"repeat": {"times": 100, "blocks": [
+        {"dense": {"sigma_w2": 1.5, "sigma_b2": 0.05}}, {"activation": "tanh"}]}}]}
+    path = write(tmp_path, desc)
+    code, out, err = run("network", path, "--c0", "0.5", "--no-plan", "--rows", "20")
+    assert code == 0, err
+    r = propcalc.network_propagation(desc, c0=0.5)
+    rows = table_rows(out)
+    assert 20 <= len(rows) <= 25 and 0 in rows and 200 in rows
+    assert r.summary.indistinguishable_at in rows
+    assert "inputs merge" in rows[r.summary.indistinguishable_at][-1]
+    assert "--rows all" in out
+    code, out, err = run("network", path, "--c0", "0.5", "--no-plan", "--rows", "all")
+    assert len(table_rows(out)) == 201
+
+
+def test_plot_png_deterministic(tmp_path):
+    pytest.importorskip("matplotlib")
+    a, b = tmp_path / "a.png", tmp_path / "b.png"
+    for target in (a, b):
+        code, out, err = run("network", str(DEMO), "--no-plan", "--plot", str(target))
+        assert code == 0, err
+        assert f"to {target}" in out
+    assert a.read_bytes().startswith(PNG_SIGNATURE)
+    assert a.read_bytes() == b.read_bytes()
+
+
+def test_plot_with_json_keeps_stdout_json(tmp_path):
+    pytest.importorskip("matplotlib")
+    target = tmp_path / "n.svg"
+    code, out, err = run("network", str(DEMO), "--no-plan", "--json", "--plot", str(target))
+    assert code == 0, err
+    strict_json(out)
+    assert f"to {target}" in err and target.read_bytes().lstrip().startswith(b"<?xml")
+
+
+BAD_BLOCK = {"blocks": [{"dense": {"sigma_w2": 2.0, "sigma_b2": 0.0}},
+                        {"repeat": {"times": 3, "blocks": [
+                            {"dense": {"sigma_w2": -1.0, "sigma_b2": 0.0}}]}}]}
+
+
+@pytest.mark.parametrize("content, needle", [
+    (BAD_BLOCK, "/blocks/1/repeat/blocks/0/dense/sigma_w2 must be > 0, got -1"),
+    ({"blocks": [{"dense": {"sigma_w2": 2.0, "sigma_b2": 0.0}}, {"convolve": {}}]}, "/blocks/1"),
+    ({"layers": []}, "/layers"),
+    ([1, 2], "blocks"),
+    ('{"blocks": [', "not valid JSON: Expecting value at line 1 column 13"),
+    ('{"blocks": [{"dense": {"sigma_w2": NaN, "sigma_b2": 0}}]}', "NaN is not a JSON number"),
+    ("", "empty"),
+    ("[" * 200_000, "nested too deeply"),
+])
+def test_bad_files_are_one_line_errors(tmp_path, content, needle):
+    path = write(tmp_path, content)
+    code, out, err = run("network", path)
+    assert code == 2
+    assert out == ""
+    assert err.startswith("propcalc: error: ") and err.count("\n") == 1, err
+    assert needle in err and path in err
+    assert "Traceback" not in err
+
+
+def test_missing_file_directory_and_binary(tmp_path):
+    code, _, err = run("network", str(tmp_path / "absent.json"))
+    assert code == 2 and "absent.json: no such file" in err
+    code, _, err = run("network", str(tmp_path))
+    assert code == 2 and "is a directory" in err
+    path = tmp_path / "bin.json"
+    path.write_bytes(b"\xff\xfe\x00{")
+    code, _, err = run("network", str(path))
+    assert code == 2 and "not UTF-8" in err
+
+
+def test_oversized_file_is_refused_before_parsing(tmp_path, monkeypatch):
+    monkeypatch.setattr(network_command, "MAX_FILE_BYTES", 64)
+    path = write(tmp_path, relu_stack(30))
+    code, _, err = run("network", path)
+    assert code == 2 and "larger than" in err
+
+
+@pytest.mark.parametrize("argv, needle", [
+    (["--c0", "2"], "c0 must be in [-1, 1], got 2"),
+    (["--q0", "-1"], "q0 must be > 0"),
+    (["--rows", "1"], "--rows: must be 'all' or an integer >= 2"),
+    (["--q0", "nan"], "must be finite"),
+    (["--plot", "out.gif"], "--plot FILE must end in .png or .svg"),
+])
+def test_bad_options(tmp_path, argv, needle):
+    code, out, err = run("network", write(tmp_path, relu_stack(2)), *argv)
+    assert code == 2 and needle in err and "Traceback" not in err
+
+
+def test_help_lists_the_command():
+    code, out, _ = run("--help")
+    assert code == 0 and "network" in out and "shape" in out
