@@ -72,9 +72,9 @@ def test_marks_the_summary_positions():
 
 
 def test_merging_inputs_shown_as_one_minus_c_on_log_scale():
-    # tanh in the ordered phase (sigma_w2 = 1.5, sigma_b2 = 0.05): c -> 1 exponentially
+    # tanh in the ordered phase (sigma_w2 = 1, sigma_b2 = 0.3): c -> 1 exponentially
     # (Schoenholz et al. 2017), so 1 - c spans decades
-    r = propcalc.network_propagation(plain(100, "tanh", 1.5, 0.05), c0=0.5)
+    r = propcalc.network_propagation(plain(50, "tanh", 1.0, 0.3), c0=0.5)
     assert r.summary.indistinguishable_at is not None
     fig = network_plot.plot_network(r)
     ax_c = fig.axes[1]
@@ -120,9 +120,18 @@ def test_same_bytes_for_the_same_call(fmt):
         assert a.startswith(PNG_SIGNATURE)
 
 
-def test_long_network_draws_without_warnings():
+def test_long_network_one_line_per_block_kind():
+    # ReLU at sigma_w2 = 2: q = 2 after every dense block, 1 after every activation (He et al.
+    # 2015); past SPLIT_POSITIONS the two kinds are separate lines instead of a zigzag
     r = propcalc.network_propagation(plain(1500), c0=0.0)
-    data = save_figure(network_plot.plot_network(r), None, "png")
+    assert len(r.q) - 1 > network_plot.SPLIT_POSITIONS
+    fig = network_plot.plot_network(r)
+    (dense,) = lines_with(fig.axes[0], "q after dense blocks")
+    (act,) = lines_with(fig.axes[0], "q after activation blocks")
+    np.testing.assert_array_equal(dense.get_xdata(), np.arange(1, 3001, 2))
+    np.testing.assert_allclose(dense.get_ydata(), 2.0, rtol=1e-12)
+    np.testing.assert_allclose(act.get_ydata(), 1.0, rtol=1e-12)
+    data = save_figure(fig, None, "png")
     assert data.startswith(PNG_SIGNATURE)
 
 

@@ -19,7 +19,9 @@ collapse) are marked by vertical lines named in the legend.
 
 matplotlib is imported inside the function; the figure is built without pyplot's global
 state and its layout frozen, so :func:`propcalc.output.plots.save_figure` gives the same
-bytes for the same call.
+bytes for the same call. Past :data:`SPLIT_POSITIONS` positions the mean-field values are
+drawn as one line per block kind (after every dense block, after every activation...), since
+alternating kinds would fill a single line's panel with a zigzag.
 """
 
 from __future__ import annotations
@@ -32,14 +34,17 @@ import numpy as np
 from ..errors import InvalidParameterError
 from ..networks.propagate import NetworkPropagation
 
-__all__ = ["LOG_RATIO", "NEAR_ONE", "plot_network"]
+__all__ = ["LOG_RATIO", "NEAR_ONE", "SPLIT_POSITIONS", "plot_network"]
 
 #: A panel goes to a log scale when its positive values span more than this factor.
 LOG_RATIO = 20.0
+#: Past this many positions with several block kinds, one line per kind (see _groups).
+SPLIT_POSITIONS = 100
 #: The correlation panel shows ``1 - c`` on a log scale when some 1 - c falls below this.
 NEAR_ONE = 1e-2
 
-_MEAN_FIELD = "#1f5fa8"
+#: colours of the mean-field lines (one per block kind on long networks)
+_GROUPS = ("#1f5fa8", "#8c564b", "#17becf", "#bcbd22", "#e377c2", "#7f7f7f", "#111111")
 _SIMULATED = "#c23b22"
 _WITHIN = "#2e8b57"
 _SHADE = "#ececec"
@@ -92,13 +97,39 @@ def _marks(result: NetworkPropagation) -> list[tuple[str, int]]:
     return out
 
 
+def _groups(result: NetworkPropagation, simulated: np.ndarray) -> list[tuple[str, np.ndarray]]:
+    """Mean-field positions to draw as one line each: all of them, or, past SPLIT_POSITIONS
+    positions with several block kinds, one line per kind (alternating kinds such as dense
+    then activation would otherwise fill the panel with a zigzag)."""
+    kinds = np.array(["input"] + [b.kind for b in result.blocks])
+    mean_field = ~simulated
+    order = list(dict.fromkeys(kinds[1:][mean_field[1:]]))
+    if kinds.size - 1 <= SPLIT_POSITIONS or len(order) < 2:
+        return [("", mean_field)]
+    groups = []
+    for kind in order:
+        mask = (kinds == kind) & mean_field
+        groups.append((f"after {kind}", mask))
+    groups.append(("input", (kinds == "input") & mean_field))
+    return groups
+
+
 def _series(ax: Any, x: np.ndarray, y: np.ndarray, simulated: np.ndarray, band: Any,
-            label: str, log: bool) -> None:
-    """The mean-field line and the simulated points with their band."""
-    mf = np.where(simulated, np.nan, y)
-    marker = "o" if x.size <= 60 else None
-    ax.plot(x, mf, color=_MEAN_FIELD, linewidth=1.8, marker=marker, markersize=3,
-            label=f"{label}, mean field")
+            label: str, log: bool, groups: list[tuple[str, np.ndarray]]) -> None:
+    """The mean-field line(s) and the simulated points with their band."""
+    for k, (name, mask) in enumerate(groups):
+        colour = _GROUPS[k % len(_GROUPS)]
+        if not name:
+            marker = "o" if x.size <= 60 else None
+            ax.plot(x, np.where(mask, y, np.nan), color=colour, linewidth=1.8, marker=marker,
+                    markersize=3, label=f"{label}, mean field")
+        elif np.count_nonzero(mask) > 1:
+            ax.plot(x[mask], y[mask], color=colour, linewidth=1.4,
+                    label=f"{label} {name} blocks, mean field")
+        else:
+            ax.plot(x[mask], y[mask], color=colour, linestyle="none", marker="o",
+                    markersize=4, label=f"{label} {name}" + ("" if name == "input" else
+                                                            " block"))
     pos, lo, hi = band
     if pos.size:
         if log:
@@ -144,12 +175,14 @@ def plot_network(result: NetworkPropagation, *, title: str | None = None) -> Any
     x = np.arange(n + 1)
     simulated = np.array([False] + [b.source == "simulation" for b in result.blocks])
     s = result.summary
+    groups = _groups(result, simulated)
 
     fig = Figure(figsize=(8.0, 8.4), dpi=100, layout="constrained")
     ax_q, ax_c, ax_g = fig.subplots(3, 1, sharex=True)
 
     qband = _band(result, "q")
-    _series(ax_q, x, q, simulated, qband, "q", _log_helps(q, qband[1], qband[2]))
+    _series(ax_q, x, q, simulated, qband, "q", _log_helps(q, qband[1], qband[2]),
+            groups)
     ax_q.set_ylabel("q  (second moment per unit)")
 
     cband = _band(result, "c")
@@ -158,12 +191,12 @@ def plot_network(result: NetworkPropagation, *, title: str | None = None) -> Any
         np.all(gap[np.isfinite(gap)] > 0.0))
     if near:
         _series(ax_c, x, gap, simulated, (cband[0], 1.0 - cband[2], 1.0 - cband[1]), "1 - c",
-                True)
+                True, groups)
         ax_c.axhline(s.distance, color=_MARKS["merge"][0], linestyle=":", linewidth=1.0,
                      label=f"1 - c = {s.distance:g}")
         ax_c.set_ylabel("1 - c  (distance of two inputs)")
     else:
-        _series(ax_c, x, c, simulated, cband, "c", False)
+        _series(ax_c, x, c, simulated, cband, "c", False, groups)
         ax_c.set_ylabel("c  (correlation of two inputs)")
         finite = c[np.isfinite(c)]
         low = min(0.0, float(finite.min())) if finite.size else 0.0
@@ -175,7 +208,7 @@ def plot_network(result: NetworkPropagation, *, title: str | None = None) -> Any
 
     gband = _band(result, "gradient")
     glog = _log_helps(g, gband[1], gband[2])
-    _series(ax_g, x, g, simulated, gband, "gradient", glog)
+    _series(ax_g, x, g, simulated, gband, "gradient", glog, groups)
     if glog:
         for level in (s.gradient_factor, 1.0 / s.gradient_factor):
             ax_g.axhline(level, color="0.6", linestyle=":", linewidth=1.0)
@@ -201,7 +234,7 @@ def plot_network(result: NetworkPropagation, *, title: str | None = None) -> Any
         handles.append(Patch(color=_SHADE, label=f"not Gaussian from position {first}: "
                                                   "simulated"))
     for ax in (ax_q, ax_c, ax_g):
-        ax.set_xlim(-0.5, n + 0.5) if n <= 200 else ax.set_xlim(0, n)
+        ax.set_xlim(-0.5, n + 0.5) if n <= 200 else ax.set_xlim(-0.01 * n, 1.01 * n)
         ax.grid(True, color="0.9", linewidth=0.6)
         # "best" searches the data for a free corner: slow (and warned about) on long series
         ax.legend(loc="best" if n <= 2000 else "upper right", fontsize=7)
