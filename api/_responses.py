@@ -156,24 +156,6 @@ class LayerInitSchema(StrictSchema):
     bias_std = num()
     value = num(allow_none=True, metadata=_d("the one number for the chosen distribution"))
 
-class InitPlanSchema(StrictSchema):
-    """A per-layer initialisation plan with its mean-field justification."""
-
-    activation = text()
-    target = _r(Choice(TARGETS))
-    target_description = text()
-    distribution = _r(Choice(DISTRIBUTIONS))
-    sigma_w2 = num()
-    sigma_b2 = num()
-    q_star = num(allow_none=True)
-    depth = _r(JSONInteger())
-    trainable_depth = ext(allow_none=True)
-    depth_ok = _r(StrictBoolean())
-    verdict = text()
-    layers = _r(fields.List(fields.Nested(LayerInitSchema)))
-    propagation = _r(fields.Nested(PropagationSchema))
-    notes = notes_field()
-
 class VarianceMapSchema(StrictSchema):
     """V(q), V'(q) and chi_1(q) at the requested q."""
 
@@ -402,6 +384,53 @@ class OutputLayerScaleSchema(StrictSchema):
     max_probability_at_scale = _r(fields.Nested(MaxProbabilitySchema))
     current = _r(fields.Nested(InitialLossSchema, allow_none=True))
     notes = notes_field()
+
+class LearningRateCeilingSchema(StrictSchema):
+    """The top curvature of the loss at initialisation and the learning rates it allows."""
+
+    loss = _r(Choice(["mse", "cross_entropy"]))
+    n_classes = _r(JSONInteger())
+    batch_size = _r(JSONInteger())
+    momentum = num()
+    inputs = _r(Choice(["correlation", "correlations", "batch"]))
+    kernel_diagonal = num()
+    kernel_off_diagonal = num()
+    kernel_top_eigenvalue = num()
+    output_hessian = num()
+    lambda_max = num()
+    learning_rate_ceiling = num()
+    learning_rate = num()
+    learning_rate_rule = text()
+    catapult_limit = num()
+    optimiser = text()
+    notes = notes_field()
+
+class InitPlanSchema(StrictSchema):
+    """A per-layer initialisation plan with its mean-field justification."""
+
+    activation = text()
+    target = _r(Choice(TARGETS))
+    target_description = text()
+    distribution = _r(Choice(DISTRIBUTIONS))
+    sigma_w2 = num()
+    sigma_b2 = num()
+    q_star = num(allow_none=True)
+    depth = _r(JSONInteger())
+    trainable_depth = ext(allow_none=True)
+    depth_ok = _r(StrictBoolean())
+    verdict = text()
+    layers = _r(fields.List(fields.Nested(LayerInitSchema)))
+    propagation = _r(fields.Nested(PropagationSchema))
+    notes = notes_field()
+    loss = _r(Choice(["mse", "cross_entropy"], allow_none=True))
+    n_classes = _r(JSONInteger(allow_none=True))
+    batch_size = _r(JSONInteger(allow_none=True))
+    learning_rate_ceiling = num(allow_none=True, metadata=_d(
+        "2 (1 + momentum) / lambda_max; null without a loss"))
+    learning_rate = num(allow_none=True, metadata=_d("recommended; null without a loss"))
+    learning_rate_details = _r(fields.Nested(LearningRateCeilingSchema, allow_none=True))
+    output_layer = text(allow_none=True)
+    output_layer_scale = _r(fields.Nested(OutputLayerScaleSchema, allow_none=True))
 
 class LayerMeasurementSchema(StrictSchema):
     """Predicted and measured q, c and squared gradient norm at one layer."""

@@ -525,7 +525,9 @@ def test_plan_to_dict_fields():
     d = plan.to_dict()
     assert set(d) == {"activation", "target", "target_description", "distribution", "sigma_w2",
                       "sigma_b2", "q_star", "depth", "trainable_depth", "depth_ok", "verdict",
-                      "layers", "propagation", "notes"}
+                      "layers", "propagation", "notes", "loss", "n_classes", "batch_size",
+                      "learning_rate_ceiling", "learning_rate", "learning_rate_details",
+                      "output_layer", "output_layer_scale"}
     assert len(d["layers"]) == 2 and d["layers"][0]["fan_in"] == 4
     assert d["propagation"] == plan.propagation.to_dict()
 

@@ -12,6 +12,8 @@ from dataclasses import dataclass, field
 
 from ..meanfield.report import Propagation
 from ..results import Result
+from ..training.learning_rate import LearningRateCeiling
+from ..variants.output_layer import OutputLayerScale
 from ..vocabulary import TARGETS
 from .draw import PlanArrays, SeedLike, draw_plan
 from .layers import Layer, LayerInit
@@ -45,6 +47,21 @@ class InitPlan(Result):
         The requested depth against the predicted depth limit, in words.
     depth_ok : bool
     notes : tuple of str
+    loss : str or None
+        "cross_entropy" or "mse" when the plan was made for a loss, else None.
+    n_classes, batch_size : int or None
+        The outputs K and the batch size B the learning rate is planned for.
+    learning_rate_ceiling : float or None
+        ``2 (1 + momentum) / lambda_max``, lambda_max the top curvature of the loss at
+        initialisation (:func:`propcalc.training.learning_rate_ceiling`); None without a loss.
+    learning_rate : float or None
+        The recommended learning rate (its rule in ``learning_rate_details``); None without a loss.
+    learning_rate_details : LearningRateCeiling or None
+        The curvature, the kernel's numbers, the optimiser the bound is for, and the notes.
+    output_layer : str or None
+        How the last layer is scaled (for the loss, or as the hidden layers); None without a loss.
+    output_layer_scale : OutputLayerScale or None
+        The cross-entropy readout analysis when the last layer was scaled for it.
     """
 
     activation: str
@@ -61,6 +78,14 @@ class InitPlan(Result):
     verdict: str
     depth_ok: bool
     notes: tuple[str, ...] = ()
+    loss: str | None = None
+    n_classes: int | None = None
+    batch_size: int | None = None
+    learning_rate_ceiling: float | None = None
+    learning_rate: float | None = None
+    learning_rate_details: LearningRateCeiling | None = field(default=None, repr=False)
+    output_layer: str | None = None
+    output_layer_scale: OutputLayerScale | None = field(default=None, repr=False)
 
     def draw(self, seed: SeedLike = None, *, bias_distribution: str = "normal",
              layers: Sequence[Layer] | None = None) -> PlanArrays:

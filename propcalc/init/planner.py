@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from typing import Any
 
 import numpy as np
 
@@ -36,6 +37,7 @@ from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..vocabulary import NEUTRAL_TOLERANCE
 from .layers import DISTRIBUTIONS, Layer, layer_init
 from .plan import MAX_DEPTH, TARGETS, InitPlan
+from .training_plan import plan_for_loss
 
 __all__ = ["ATTRACTION_MARGIN", "recommend"]
 
@@ -115,7 +117,10 @@ def _verdict(p: Propagation, depth: int) -> tuple[str, bool]:
 def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int] | None = None,
               layers: Sequence[Layer] | None = None, distribution: str = "normal",
               target: str = "auto", sigma_b2: float | None = None, q_star: float | None = None,
-              q_input: float = 1.0, rule: QuadratureRule = DEFAULT_RULE) -> InitPlan:
+              q_input: float = 1.0, loss: str | None = None, n_classes: int | None = None,
+              batch_size: int | None = None, momentum: float = 0.0,
+              input_correlation: float | Sequence[float] | None = None, inputs: Any = None,
+              scale_output: bool = True, rule: QuadratureRule = DEFAULT_RULE) -> InitPlan:
     """Recommend weight and bias scales for every layer of a deep network.
 
     Parameters
@@ -141,6 +146,25 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
     q_input : float
         Mean squared input coordinate; the first layer's sigma_w2 is chosen
         so that its pre-activations already have variance q*.
+    loss : str, optional
+        "cross_entropy" (softmax, torch's CrossEntropyLoss) or "mse" (torch's MSELoss): the plan
+        then scales the last layer for the loss (unless ``scale_output`` is False) and carries
+        ``learning_rate_ceiling`` and ``learning_rate`` for gradient descent / SGD
+        (:mod:`propcalc.init.training_plan`). Needs the widths (``widths`` or dense ``layers``).
+    n_classes : int, optional
+        K, the number of outputs (required for cross-entropy); must equal the last width.
+    batch_size : int, optional
+        B, the inputs per step (required with a loss).
+    momentum : float
+        Heavy-ball momentum of the optimiser, in [0, 1) (the ceiling is 2 (1 + momentum) /
+        lambda_max).
+    input_correlation : float or sequence of float, optional
+        The inputs' pairwise correlation (default 0), or samples of its distribution.
+    inputs : array of shape (N, widths[0]), optional
+        A batch of real inputs (N >= batch_size): the curvature then uses their exact kernel matrix
+        (and their mean square coordinate instead of ``q_input``).
+    scale_output : bool
+        With a loss, scale the last layer for it (default True); False keeps the hidden scale.
 
     Returns
     -------
@@ -187,6 +211,13 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
     if q_star is not None:
         q_star = check_positive("q_star", q_star)
     qi = check_positive("q_input", q_input)
+    if inputs is not None and loss is not None:
+        # the batch's own mean square coordinate replaces q_input (the first layer uses it)
+        x = np.asarray(inputs, dtype=float)
+        if x.ndim != 2 or x.size == 0 or not np.all(np.isfinite(x)):
+            raise InvalidParameterError("inputs", "a finite 2-D array, one input per row",
+                                        f"an array of shape {x.shape}")
+        qi = check_positive("inputs (their mean square coordinate)", float(np.mean(x * x)))
 
     notes: list[str] = []
     chosen = "bias" if (target == "auto" and sigma_b2 is not None) else target
@@ -247,5 +278,24 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
         first_sw = sw
     inits = tuple(layer_init(i + 1, layer, first_sw if i == 0 else sw, sb, distribution)
                   for i, layer in enumerate(plan_layers))
+    if loss is None:
+        for name, value in (("n_classes", n_classes), ("batch_size", batch_size),
+                            ("inputs", inputs), ("input_correlation", input_correlation)):
+            if value is not None:
+                raise InvalidParameterError(name, "absent when no loss is given (give loss=)",
+                                            value if name != "inputs" else "an array")
+        return InitPlan(act.label, chosen, description, distribution, sw, sb, p.q_star, n,
+                        inits, p, p.trainable_depth, verdict, ok, tuple(notes + list(p.notes)))
+    lp = plan_for_loss(act, plan_layers, ws if widths is not None else None,
+                       [i.sigma_w2 for i in inits], [i.sigma_b2 for i in inits], qi, loss=loss,
+                       n_classes=n_classes, batch_size=batch_size, momentum=momentum,
+                       input_correlation=input_correlation, inputs=inputs,
+                       scale_output=scale_output, rule=rule)
+    inits = inits[:-1] + (layer_init(n, plan_layers[-1], lp.last_sigma_w2, lp.last_sigma_b2,
+                                     distribution),)
     return InitPlan(act.label, chosen, description, distribution, sw, sb, p.q_star, n, inits, p,
-                    p.trainable_depth, verdict, ok, tuple(notes + list(p.notes)))
+                    p.trainable_depth, verdict, ok,
+                    tuple(notes + list(p.notes) + list(lp.notes)), loss,
+                    lp.ceiling.n_classes, lp.ceiling.batch_size,
+                    lp.ceiling.learning_rate_ceiling, lp.ceiling.learning_rate, lp.ceiling,
+                    lp.output_layer, lp.output_scale)

@@ -1,9 +1,15 @@
-"""Training at initialisation: finite-width corrections and the trainability verdict.
+"""Training at initialisation: finite-width corrections, the tangent kernel, the learning rate.
 
-:mod:`~propcalc.training.finite_width` (spread and drift at finite widths, first order in 1/n).
+:mod:`~propcalc.training.finite_width` (spread and drift at finite widths, first order in 1/n);
+:mod:`~propcalc.training.ntk` (the tangent kernel of a plain stack, standard parametrisation) ->
+:mod:`~propcalc.training.learning_rate` (the top curvature of the loss and 2 / lambda_max).
 Above :mod:`propcalc.meanfield` and :mod:`propcalc.variants`, below :mod:`propcalc.init`.
 """
 
 from .finite_width import FiniteWidth, LayerFluctuations, finite_width, layer_fluctuations
+from .learning_rate import LOSSES, LearningRateCeiling, learning_rate_ceiling, output_hessian
+from .ntk import TangentKernel, UnsupportedKernelError, tangent_kernel
 
-__all__ = ["FiniteWidth", "LayerFluctuations", "finite_width", "layer_fluctuations"]
+__all__ = ["FiniteWidth", "LOSSES", "LayerFluctuations", "LearningRateCeiling", "TangentKernel",
+           "UnsupportedKernelError", "finite_width", "layer_fluctuations",
+           "learning_rate_ceiling", "output_hessian", "tangent_kernel"]

@@ -23,6 +23,7 @@ from propcalc.meanfield.simulate import LayerMeasurement, Simulation
 from propcalc.results import Result
 from propcalc.variants.dropout import DropoutPropagation, DropoutSweep
 from propcalc.variants.maxout import MaxMoments, MaxoutLayer, MaxoutPropagation
+from propcalc.training.learning_rate import LearningRateCeiling
 from propcalc.variants.output_layer import InitialLoss, MaxProbability, OutputLayerScale
 from propcalc.variants.selfnorm import AlphaDropout, MeanVarianceFixedPoint, SelfNormalization
 from propcalc.variants.spectrum import IsometryAdvice, JacobianSpectrum
@@ -52,6 +53,7 @@ BACKED: dict[str, type[Result]] = {
     "InitialLoss": InitialLoss,
     "MaxProbability": MaxProbability,
     "OutputLayerScale": OutputLayerScale,
+    "LearningRateCeiling": LearningRateCeiling,
     "LayerMeasurement": LayerMeasurement,
     "Simulation": Simulation,
 }
