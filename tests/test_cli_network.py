@@ -220,6 +220,7 @@ def test_oversized_file_is_refused_before_parsing(tmp_path, monkeypatch):
     (["--c0", "2"], "c0 must be in [-1, 1], got 2"),
     (["--q0", "-1"], "q0 must be > 0"),
     (["--rows", "1"], "--rows: must be 'all' or an integer >= 2"),
+    (["--seed", "-1"], "--seed: must be an integer >= 0, got '-1'"),
     (["--q0", "nan"], "must be finite"),
     (["--plot", "out.gif"], "--plot FILE must end in .png or .svg"),
 ])

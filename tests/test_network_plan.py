@@ -126,3 +126,17 @@ def test_plan_sets_the_branch_weight_after_the_layers():
     assert plan.output_c <= 0.9 + 1e-12
     weight = plan.description["blocks"][1]["repeat"]["blocks"][0]["residual"]["weight"]
     assert weight == pytest.approx(plan.branch_weight.weight)
+
+
+def test_a_block_after_an_unknown_stream_is_kept_not_nan():
+    # max pooling leaves the Gaussian recursion (the maximum of correlated units is not
+    # Gaussian), so the second moment entering the next convolution is unknown: the plan
+    # keeps that block as described and says why, instead of sigma_w2 = NaN
+    conv = {"convolution": {"sigma_w2": 2.0, "sigma_b2": 0.0, "kernel": [3, 3]}}
+    net = {"blocks": [conv, act("relu"), {"pooling": {"kind": "max", "window": 2}},
+                      {"convolution": {"sigma_w2": 1.7, "sigma_b2": 0.0, "kernel": [3, 3]}},
+                      act("relu")]}
+    plan = propcalc.network_plan(net)
+    after = next(b for b in plan.blocks if b.path == "/blocks/3")
+    assert after.sigma_w2 == 1.7 and "not known" in after.rule
+    assert all(math.isfinite(b.sigma_w2) and math.isfinite(b.sigma_b2) for b in plan.blocks)

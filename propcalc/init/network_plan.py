@@ -24,6 +24,7 @@ written out before the repeat.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, replace
 from typing import Any
 
@@ -168,6 +169,9 @@ class _Planner:
             return b.sigma_w2, b.sigma_b2, "kept (no activation follows it directly)"
         p = self.plan(nxt)
         q_in = stream.q
+        if not math.isfinite(q_in):  # an unknown stream (after max pooling...): q is NaN
+            return (b.sigma_w2, b.sigma_b2, "kept (the second moment of the stream entering it "
+                    "is not known: the Gaussian recursion does not hold there)")
         if p.q_star is None or q_in <= 0.0 or p.q_star <= p.sigma_b2:
             return b.sigma_w2, b.sigma_b2, "kept (no variance fixed point to aim at)"
         return ((p.q_star - p.sigma_b2) / q_in, p.sigma_b2,

@@ -191,6 +191,16 @@ def _rows(text: str) -> int | None:
     return value
 
 
+def _seed(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        value = -1
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"must be an integer >= 0, got {text!r}")
+    return value
+
+
 def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
     target = start_plot(args)
     drawer = None
@@ -257,7 +267,7 @@ def register(sub: Any) -> None:
     p.add_argument("--c0-between", type=finite_float, default=0.0,
                    help="with pooling or attention: correlation of two positions of the two "
                         "inputs")
-    p.add_argument("--seed", type=int, default=0,
+    p.add_argument("--seed", type=_seed, default=0,
                    help="seed of the simulation that fills positions where the Gaussian "
                         "recursion does not hold (default 0)")
     p.add_argument("--rows", type=_rows, default=DEFAULT_ROWS, metavar="N|all",
