@@ -430,3 +430,57 @@ def test_node_shortcuts_match_the_general_builder():
                              extra_edges=np.vstack([extra, extra]))
     for f in funcs:
         assert_allclose(np.sum(w1 * f(x1), -1), np.sum(w2 * f(x2), -1)[:1], rtol=1e-14)
+
+
+# ------------------------------------------------------------------------------------------
+# the tail check compares against the function's own scale (issue 12, section 1)
+# ------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("b", [0.3, 2.0, 40.0])
+@pytest.mark.parametrize("q", [1e-4, 9e-4, 0.0016, 0.01, 1.0, 16.5, 100.0])
+def test_step_away_from_zero_is_not_growth(b, q):
+    # E[1{x > b}] = Phi(-b / sqrt(q)) (closed form, mpmath.ncdf at 30 digits). A bounded
+    # step whose jump sits near the cut |z| = 10 has a tiny expectation; the neglected tail
+    # is below 1e-22 of the function's scale, so it is integrated, not refused as "growing".
+    got = float(gaussian_expectation(lambda x: np.where(x > b, 1.0, 0.0), q, (b,)))
+    with mpmath.workdps(30):
+        ref = float(mpmath.ncdf(-b / mpmath.sqrt(q)))
+    assert abs(got - ref) <= 1e-14 * ref + 1e-22
+
+
+@pytest.mark.parametrize("formula,b", [("where(x > 0.3, 1, 0)", 0.3), ("where(x > 2, 1, 0)", 2.0),
+                                       ("where(x > 0.3, x, 0)", 0.3),
+                                       ("where(x > 40, 1, 0)", 40.0)])
+def test_jump_formulas_of_issue_12_propagate(formula, b):
+    # issue 12: these raised "grows too fast" at every sigma_w2. Now the report runs, and q*
+    # satisfies V(q*) = q* with V from the closed forms E[1{x > b}^2] = Phi(-b / sqrt q) and
+    # E[x^2 1{x > b}] = q Phi(-t) + b sqrt(q) varphi(t), t = b / sqrt(q) (truncated normal
+    # moments, Johnson, Kotz & Balakrishnan 1994, section 10.1), by mpmath at 30 digits.
+    points = ((1.5, 1000.0), (3.0, 2000.0)) if b > 10 else ((1.5, 0.1), (0.5, 1.0), (1.9, 0.5))
+    for sw, sb in points:
+        p = propcalc.propagation(formula, sw, sb)
+        assert p.phase == "chaotic"  # phi jumps: chi_1 is infinite
+        with mpmath.workdps(30):
+            q = mpmath.mpf(p.q_star)
+            t = b / mpmath.sqrt(q)
+            if "x, 0" in formula:
+                m2 = q * mpmath.ncdf(-t) + b * mpmath.sqrt(q) * mpmath.npdf(t)
+            else:
+                m2 = mpmath.ncdf(-t)
+            v = sw * m2 + sb
+        assert abs(float(v) - p.q_star) <= 1e-12 * p.q_star
+
+
+def test_jump_out_of_reach_gets_a_clear_error():
+    # at q* = 0.1 the jump at x = 40 is 126 standard deviations out: 1 - C(c) underflows to 0
+    # for every c, so c* cannot be resolved; the error says so (it was "grows too fast")
+    with pytest.raises(ComputationError, match="equals 1 to double precision"):
+        propcalc.propagation("where(x > 40, 1, 0)", 1.5, 0.1)
+
+
+def test_exponential_growth_is_still_refused_and_slow_growth_accepted():
+    # exp(6 z) (x = 6 z, q = 36): E = e^18, the cut at z = 10 loses e^10 phi(10) / 4 ~ 3e-5 of
+    # it (log-normal mean, closed form): refused
+    with pytest.raises(ComputationError, match="grows too fast"):
+        gaussian_expectation(np.exp, 36.0)
+    # exp(2 z): the cut loses e^20 phi(10) ~ 4e-13 of e^2; accepted, to 1e-13 (closed form)
+    assert float(gaussian_expectation(np.exp, 4.0)) == pytest.approx(math.exp(2.0), rel=1e-13)

@@ -317,8 +317,17 @@ def _exact_stage(act: Activation, sw: Array, sb: Array, q: Array, v: Array, den:
     e_star, s_star, ok, err = _iterate(evaluate, st, cubic=True, snap=act.smoothing is None)
     if not np.all(ok):
         i = int(np.flatnonzero(~ok)[0])
-        raise ComputationError(f"the correlation fixed point of {act.label} did not converge at "
-                               f"sigma_w2 = {sw[i]:.17g}, sigma_b2 = {sb[i]:.17g}")
+        where = f"at sigma_w2 = {sw[i]:.17g}, sigma_b2 = {sb[i]:.17g}"
+        tiny = float(evaluate(np.array([1e-300]), np.array([i]))[0][0]) + 1e-300
+        if den is None and tiny <= 0.0:
+            # 1 - C(1 - e) rounds to 0 for every representable gap: C = 1 to double precision
+            raise ComputationError(
+                f"the correlation map of {act.label} equals 1 to double precision {where} "
+                f"(q* = {q[i]:.6g}): its chaotic fixed point c* lies closer to 1 than a double "
+                "can resolve, so c*, chi_c and xi_c cannot be given; the activation barely "
+                "varies over the pre-activations' range there (raise sigma_b2 or sigma_w2)")
+        raise ComputationError(f"the correlation fixed point of {act.label} did not converge "
+                               f"{where}")
     return e_star, s_star, err
 
 

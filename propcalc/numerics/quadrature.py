@@ -375,6 +375,62 @@ def _check_finite(values: Array, x: Array, what: str) -> None:
             f"{what} is not finite at x = {where:.6g}, a point the Gaussian integral reaches")
 
 
+#: The tail check looks this far beyond the truncation (in z) to tell growth from a jump.
+TAIL_PROBE = 2.0
+#: A function at least this many times larger TAIL_PROBE beyond the cut than at the cut (and
+#: than anywhere on the nodes) grows too fast for the truncation: exponentially in z at a
+#: rate above ln(100) / 2 = 2.3, or polynomially of degree above 20 (1.2^20 = 38 ... 1.2^26 = 114).
+TAIL_GROWTH = 100.0
+
+
+def _tail_rows(fn: Callable[..., Array], mean: Array, q: Array, top: Array, total: Array,
+               rule: QuadratureRule, with_z: bool) -> tuple[Array, Array]:
+    """Rows whose truncated tails are not negligible, and the x where each is worst.
+
+    The neglected mass beyond ``|z| = L`` is estimated as ``|f(x_L)| varphi(L)`` times a
+    generous width 10. It matters when it exceeds 1e-10 of ``E|f|`` AND f grows beyond
+    the cut: ``|f|`` at ``L + TAIL_PROBE`` is more than TAIL_GROWTH times its value at the
+    cut and its largest value on the nodes (``top``). A function that does not grow there
+    (bounded, a jump, slow polynomial growth) leaves at most about ``|f(x_L)| varphi(L) / L``,
+    below 1e-22 of its own scale ``max |f|``, whatever E|f| is: a step at x = 0.3 at a small
+    variance integrates to ~1e-22 and that is still the right number at the function's scale.
+    """
+    L = rule.z_max
+    mean, q = np.broadcast_arrays(np.asarray(mean, float), np.asarray(q, float))
+    sq = np.sqrt(q)
+    zs = np.array([-L, L, -L - TAIL_PROBE, L + TAIL_PROBE])
+    pts = mean[..., None] + sq[..., None] * zs
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        fe = np.abs(np.asarray(fn(pts, zs) if with_z else fn(pts), dtype=float))
+    at_cut, beyond = fe[..., :2], fe[..., 2:]
+    tail = at_cut.max(axis=-1) * (_INV_SQRT_2PI * math.exp(-0.5 * L * L)) * 10.0
+    with np.errstate(invalid="ignore"):
+        growing = np.any(~np.isfinite(beyond)
+                         | (beyond > TAIL_GROWTH * np.maximum(at_cut, np.asarray(top)[..., None])),
+                         axis=-1)
+        significant = ~np.isfinite(tail) | (tail > 1e-10 * np.asarray(total) + 1e-300)
+    bad = significant & growing
+    worst = np.take_along_axis(pts[..., :2], np.argmax(at_cut, axis=-1)[..., None], -1)[..., 0]
+    return np.asarray(bad), np.asarray(worst)
+
+
+def _check_tails(fn: Callable[..., Array], mean: Array, q: Array, top: Array, total: Array,
+                 rule: QuadratureRule, what: str, with_z: bool) -> None:
+    """Raise ComputationError where :func:`_tail_rows` finds a tail that cannot be neglected."""
+    L = rule.z_max
+    ends = np.stack([mean - np.sqrt(q) * L, mean + np.sqrt(q) * L], axis=-1)
+    with np.errstate(over="ignore", invalid="ignore"):
+        fe = np.asarray(fn(ends, np.array([-L, L])) if with_z else fn(ends), dtype=float)
+    _check_finite(np.abs(fe), ends, what)
+    bad, worst = _tail_rows(fn, mean, q, top, total, rule, with_z)
+    if np.any(bad):
+        xe = float(np.ravel(worst)[int(np.flatnonzero(np.ravel(bad))[0])])
+        raise ComputationError(
+            f"{what} grows too fast: it is still significant at x = {xe:.6g} "
+            f"({L:g} standard deviations out) and grows beyond, so the Gaussian expectation "
+            "cannot be trusted")
+
+
 def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequence[float] = (),
                          *, mean: Any = 0.0, rule: QuadratureRule = DEFAULT_RULE,
                          check_tails: bool = True, what: str = "the integrand",
@@ -444,24 +500,8 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
     _check_finite(f, x, what)
     out = np.sum(w * f, axis=-1)
     if check_tails:
-        mean_b, q_b = np.broadcast_arrays(np.asarray(mean, float), np.asarray(q, float))
-        L = rule.z_max
-        ends = np.stack([mean_b - np.sqrt(q_b) * L, mean_b + np.sqrt(q_b) * L], axis=-1)
-        with np.errstate(over="ignore", invalid="ignore"):
-            fe = np.abs(np.asarray(fn(ends, np.array([-L, L])) if with_z else fn(ends),
-                                   dtype=float))
-        _check_finite(fe, ends, what)
-        # density at the cut times a generous panel width versus the total
-        tail = fe.max(axis=-1) * (_INV_SQRT_2PI * math.exp(-0.5 * L * L)) * 10.0
-        scale = np.sum(np.abs(w * f), axis=-1)
-        # polynomial growth leaves ~1e-20 here; only exponential growth reaches 1e-10
-        if np.any(tail > 1e-10 * scale + 1e-300):
-            i = int(np.argmax(tail - 1e-10 * scale))
-            xe = float(np.ravel(ends.reshape(-1, 2)[i])[int(np.argmax(fe.reshape(-1, 2)[i]))])
-            raise ComputationError(
-                f"{what} grows too fast: it is still significant at x = {xe:.6g} "
-                f"({L:g} standard deviations out), so the Gaussian expectation "
-                "cannot be trusted")
+        _check_tails(fn, mean_b, q_b, np.max(np.abs(f), axis=-1), np.sum(np.abs(w * f), axis=-1),
+                     rule, what, with_z)
     return out
 
 
@@ -482,12 +522,9 @@ def _scalar_expectation(fn: Callable[[Array], Array], q: float, mean: float,
     if not math.isfinite(total):
         return None  # possibly inf * 0 at a weight-0 node, or a true failure: the full path
     if check_tails:
-        L = rule.z_max
-        sq = math.sqrt(q)
-        with np.errstate(over="ignore", invalid="ignore"):
-            fe = np.abs(np.asarray(fn(np.array([mean - sq * L, mean + sq * L])), dtype=float))
-        tail = float(fe.max()) * (_INV_SQRT_2PI * math.exp(-0.5 * L * L)) * 10.0
-        if not (math.isfinite(tail) and tail <= 1e-10 * float(np.dot(w, np.abs(f))) + 1e-300):
+        absf = np.abs(f)
+        if _tail_rows(fn, np.float64(mean), np.float64(q), np.float64(absf.max(initial=0.0)),
+                      np.float64(np.dot(w, absf)), rule, False)[0].any():
             return None
     return np.float64(total)
 
