@@ -659,3 +659,28 @@ def test_one_step_polish_reaches_the_cold_start_root(name, sw, sb):
                                                curvature=(float(curv[0]), float(bound[0])))
     assert warm[0] == pytest.approx(cold[0], abs=4e-15 / (1 - cold[1]))
     assert warm[1] == pytest.approx(cold[1], rel=1e-12)
+
+
+# ------------------------------------------------------------------------------------------
+# values that mean 0, and the bias the user asked for (issue 12, section 2)
+# ------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("q_star", [0.01, 1.0, 37.0])
+def test_relu_edge_bias_is_exactly_zero(q_star):
+    # He et al. 2015, eq. (10): relu is critical at sigma_w2 = 2 with sigma_b2 = 0 exactly, for
+    # every q*; the line's difference q* - 2 E[relu^2] rounded to 2.2e-16 before
+    cp = propcalc.edge_of_chaos("relu", q_star)
+    assert cp.sigma_w2 == pytest.approx(2.0, rel=1e-15)
+    assert cp.sigma_b2 == 0.0
+    assert "sigma_b2 = 0;" in cp.message
+
+
+@pytest.mark.parametrize("name,sigma_b2", [("tanh", 0.05), ("tanh", 0.1), ("gelu", 0.3),
+                                           ("erf", 0.02)])
+def test_edge_at_bias_returns_the_bias_asked_for(name, sigma_b2):
+    # the bias is the input: returned exactly (0.04999999999999993 before); the point is on the
+    # line to rounding: sigma_b2(q*) from edge_of_chaos at the returned q* (Poole et al. 2016)
+    for cp in propcalc.edge_of_chaos_at_bias(name, sigma_b2):
+        assert cp.sigma_b2 == sigma_b2
+        again = propcalc.edge_of_chaos(name, cp.q_star)
+        assert again.sigma_b2 == pytest.approx(sigma_b2, rel=1e-12)
+        assert again.sigma_w2 == cp.sigma_w2

@@ -26,7 +26,12 @@ from .fixed_points import collapse_rate
 from .maps import derivative_second_moment, second_moment, variance_map_slope
 
 __all__ = ["CriticalPoint", "edge_of_chaos", "edge_of_chaos_at_bias", "edge_of_chaos_line",
-           "edge_of_chaos_line_arrays", "edge_line"]
+           "edge_of_chaos_line_arrays", "edge_line", "ZERO_SNAP"]
+
+#: sigma_b2 = q* - sigma_w2 E[phi^2] within this many q* of 0 is a zero: the difference of two
+#: numbers near q* rounds to a few units of 2.2e-16 q* (64 of them, with the 1-D integral's
+#: own error of ~1e-15 relative); relu's line at q* = 1 gives 2.2e-16, which means 0.
+ZERO_SNAP = 64 * 2.220446049250313e-16
 
 
 @dataclass(frozen=True)
@@ -74,6 +79,8 @@ def edge_line(act: Activation, q: np.ndarray,
         sw = np.where(usable, 1.0 / np.where(usable, d2, 1.0), np.inf)
     # where sigma_w2 is inf, sigma_b2 has no meaning (not inf * 0 = NaN): marked -inf
     sb = np.where(usable, q - np.where(usable, sw, 0.0) * second_moment(act, q, rule), -np.inf)
+    # a difference within a few roundings of q is a known zero (relu: 1 - 2 * 0.5 = 2.2e-16)
+    sb = np.where(np.abs(sb) <= ZERO_SNAP * q, 0.0, sb)
     return sw, sb
 
 
@@ -113,6 +120,13 @@ def edge_of_chaos(act: Activation | str, q_star: float = 1.0,
     """
     act = resolve(act)
     q = checked("q_star", q_star)
+    return _critical(act, q, rule)
+
+
+def _critical(act: Activation, q: float, rule: QuadratureRule,
+              bias: float | None = None) -> CriticalPoint:
+    """The critical point at q* = q; ``bias`` is the sigma_b2 the caller solved for (it is
+    reported exactly as given, not as the line's value at the root, which differs by rounding)."""
     if act.has_jumps:
         return CriticalPoint(act.label, q, None, None, None, False, False,
                              f"{act.label} jumps, so chi_1 is infinite: there is no edge of chaos")
@@ -124,7 +138,7 @@ def edge_of_chaos(act: Activation | str, q_star: float = 1.0,
         return CriticalPoint(act.label, q, sw, None, None, False, False,
                              f"q* = {q:.6g} needs sigma_b2 = {sb:.6g} < 0 at sigma_w2 = {sw:.6g}: "
                              "not reachable")
-    sb = max(sb, 0.0)
+    sb = max(sb, 0.0) if bias is None else bias
     chi_q = float(variance_map_slope(act, q, sw, rule))
     stable = abs(chi_q) < 1.0 - NEUTRAL_TOLERANCE
     if stable:
@@ -197,7 +211,7 @@ def edge_of_chaos_at_bias(act: Activation | str, sigma_b2: float,
     # values within rounding of zero (tanh's line touches sigma_b2 = 0 like q^3) give no sign
     resolved = ok & (np.abs(gap) > 1e-13 * (grid + sb))
     for root in roots.roots_on_grid(gfun, grid, gap, resolved):
-        cp = edge_of_chaos(act, root, rule)
+        cp = _critical(act, root, rule, bias=sb)
         if cp.valid:
             out.append(cp)
     return tuple(out)
