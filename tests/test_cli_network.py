@@ -137,6 +137,19 @@ def test_simulated_positions_show_their_band(tmp_path):
     assert r.notes[0] in out
 
 
+def test_positions_without_numbers_say_so(tmp_path):
+    # max pooling: the maximum of correlated units is not Gaussian; the simulation of a 2-D
+    # convolution needs a grid the CLI does not give, so those positions have no number
+    conv = {"convolution": {"sigma_w2": 2.0, "sigma_b2": 0.0, "kernel": [3, 3]}}
+    desc = {"blocks": [conv, {"activation": "relu"}, {"pooling": {"kind": "max", "window": 2}},
+                       conv, {"activation": "relu"}]}
+    code, out, err = run("network", write(tmp_path, desc))
+    assert code == 0, err
+    rows = table_rows(out)
+    assert rows[2][6] == "mean field" and rows[3][6] == "no number" and rows[3][3] == "-"
+    assert "nan" not in out
+
+
 def test_long_tables_are_thinned_but_keep_flagged_positions(tmp_path):
     desc = {"blocks": [{"repeat": {"times": 100, "blocks": [
         {"dense": {"sigma_w2": 1.5, "sigma_b2": 0.05}}, {"activation": "tanh"}]}}]}

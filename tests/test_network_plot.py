@@ -138,3 +138,12 @@ def test_long_network_one_line_per_block_kind():
 def test_refuses_other_objects():
     with pytest.raises(propcalc.PropcalcError, match="result must be a NetworkPropagation"):
         network_plot.plot_network({"q": [1.0]})
+
+
+def test_unknown_positions_without_simulation_are_named():
+    r = propcalc.network_propagation(POST, simulate=False)
+    first = r.gaussian_positions + 1
+    assert r.q[first] is None
+    fig = network_plot.plot_network(r)
+    texts = [t.get_text() for leg in fig.legends for t in leg.get_texts()]
+    assert f"not Gaussian from position {first}: no numbers (not simulated: see the notes)" in texts

@@ -227,12 +227,16 @@ def plot_network(result: NetworkPropagation, *, title: str | None = None) -> Any
             seen.add(kind)
             handles.append(Line2D([], [], color=colour, linestyle="--", linewidth=1.2,
                                   label=f"{text.format(**texts)}: position {pos}"))
-    if simulated.any():
-        first = int(np.argmax(simulated))
+    if result.gaussian_positions < n:
+        first = result.gaussian_positions + 1
+        measured = bool(simulated.any())
         for ax in (ax_q, ax_c, ax_g):
-            ax.axvspan(first - 0.5, n + 0.5, color=_SHADE, zorder=0, linewidth=0)
-        handles.append(Patch(color=_SHADE, label=f"not Gaussian from position {first}: "
-                                                  "simulated"))
+            ax.axvspan(first - 0.5, n + 0.5, facecolor=_SHADE, zorder=0, linewidth=0,
+                       hatch=None if measured else "//", edgecolor="0.8")
+        handles.append(Patch(facecolor=_SHADE, edgecolor="0.8", hatch=None if measured else "//",
+                             label=f"not Gaussian from position {first}: " + (
+                                 "simulated" if measured else
+                                 "no numbers (not simulated: see the notes)")))
     for ax in (ax_q, ax_c, ax_g):
         ax.set_xlim(-0.5, n + 0.5) if n <= 200 else ax.set_xlim(-0.01 * n, 1.01 * n)
         ax.grid(True, color="0.9", linewidth=0.6)

@@ -136,6 +136,8 @@ def _table(result: Any, rows: int | None) -> tuple[str, str]:
             rec = result.blocks[i - 1]
             copy = f" #{'.'.join(str(x) for x in rec.copy)}" if rec.copy else ""
             kind, where, source = rec.kind, f"{rec.path}{copy}", rec.source
+            if result.q[i] is None and result.c[i] is None:
+                source = "no number"
         lines.append([i, kind, where, _cell(result, i, "q"), _cell(result, i, "c"),
                       _cell(result, i, "gradient"), source, "; ".join(flags.get(i, []))])
     text = format_table(lines, ["position", "block", "path (#copy)", "q", "c", "gradient",
