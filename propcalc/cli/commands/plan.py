@@ -1,4 +1,4 @@
-"""``propcalc plan``: the per-layer initialisation plan."""
+"""``propcalc plan``: the per-layer initialisation plan (and, for a loss, the learning rate)."""
 
 from __future__ import annotations
 
@@ -6,8 +6,17 @@ import argparse
 from typing import Any, TextIO
 
 from ... import recommend
-from ..options import EXIT_OK, activation_of, conv_layer, finite_float, int_list, with_act, with_json
-from ..output import compress_rows, emit_json, format_pairs, format_table
+from ..options import (
+    EXIT_OK,
+    UsageError,
+    activation_of,
+    conv_layer,
+    finite_float,
+    int_list,
+    with_act,
+    with_json,
+)
+from ..output import compress_rows, emit_json, format_number, format_pairs, format_table
 
 __all__ = ["register"]
 
@@ -15,9 +24,25 @@ __all__ = ["register"]
 def _cmd_plan(args: argparse.Namespace, out: TextIO) -> int:
     act = activation_of(args)
     layers = [conv_layer(spec) for spec in args.conv] if args.conv else None
+    training = {}
+    if args.loss is not None:
+        training = dict(loss=args.loss, n_classes=args.n_classes, batch_size=args.batch_size,
+                        momentum=args.momentum, scale_output=not args.no_scale_output)
+        if args.input_correlation is not None:
+            training["input_correlation"] = args.input_correlation
+    else:
+        given = [o for o, v in (("--n-classes", args.n_classes), ("--batch-size", args.batch_size),
+                                ("--input-correlation", args.input_correlation),
+                                ("--momentum", args.momentum or None),
+                                ("--no-scale-output", args.no_scale_output or None))
+                 if v is not None]
+        if given:
+            raise UsageError(f"{', '.join(given)} only matter with a loss: give "
+                             "--loss cross_entropy|mse too")
     plan = recommend(act, args.depth, widths=args.widths, layers=layers,
                      distribution=args.distribution, target=args.target,
-                     sigma_b2=args.sigma_b2, q_star=args.q_star, q_input=args.q_input)
+                     sigma_b2=args.sigma_b2, q_star=args.q_star, q_input=args.q_input,
+                     **training)
     if args.json:
         emit_json(plan.to_dict(), out)
         return EXIT_OK
@@ -39,10 +64,32 @@ def _cmd_plan(args: argparse.Namespace, out: TextIO) -> int:
              "truncated_normal": "std before trunc.", "orthogonal": "orthogonal scale"}
     out.write(format_table(compress_rows(rows), ["layer", "kind", "fan_in", "fan_out", "sigma_w2",
                                                  "gain", label[plan.distribution], "bias std"]) + "\n\n")
+    if plan.loss is not None:
+        _training_text(plan, out)
     out.write(f"verdict: {plan.verdict}\n")
     for note in plan.notes:
         out.write(f"note: {note}\n")
     return EXIT_OK
+
+
+def _training_text(plan: Any, out: TextIO) -> None:
+    """The loss, the output layer and the learning rates of a plan made for a loss."""
+    d = plan.learning_rate_details
+    pairs = [("loss", plan.loss), ("classes (outputs)", plan.n_classes),
+             ("batch size", plan.batch_size), ("output layer", plan.output_layer)]
+    if d is not None:
+        pairs += [("optimiser", f"{d.optimiser} (momentum {format_number(d.momentum)})"),
+                  ("top curvature lambda_max", d.lambda_max),
+                  ("learning-rate ceiling", f"{format_number(plan.learning_rate_ceiling)}  "
+                                            "(2 (1 + momentum) / lambda_max)"),
+                  ("learning rate", f"{format_number(plan.learning_rate)}  "
+                                    f"({d.learning_rate_rule})"),
+                  ("catapult limit", f"{format_number(d.catapult_limit)}  (about 4 / "
+                                     "lambda_max, Lewkowycz et al. 2020)")]
+    out.write(format_pairs(pairs) + "\n")
+    for note in (d.notes if d is not None else ()):
+        out.write(f"note: {note}\n")
+    out.write("\n")
 
 
 def register(sub: Any) -> None:
@@ -59,5 +106,16 @@ def register(sub: Any) -> None:
     p.add_argument("--sigma-b2", type=finite_float, help="fix the bias variance (target 'bias')")
     p.add_argument("--q-star", type=finite_float, help="preferred variance fixed point on the edge")
     p.add_argument("--q-input", type=finite_float, default=1.0, help="mean square of the inputs (default 1)")
+    p.add_argument("--loss", choices=["cross_entropy", "mse"],
+                   help="plan the learning rate for this loss (needs --widths, --batch-size; "
+                        "--n-classes for cross_entropy) and scale the last layer for it")
+    p.add_argument("--n-classes", type=int, help="outputs K (the last width)")
+    p.add_argument("--batch-size", type=int, help="inputs per step B")
+    p.add_argument("--momentum", type=finite_float, default=0.0,
+                   help="heavy-ball momentum in [0, 1) (default 0)")
+    p.add_argument("--input-correlation", type=finite_float,
+                   help="the inputs' mean pairwise correlation (default 0)")
+    p.add_argument("--no-scale-output", action="store_true",
+                   help="with --loss: keep the hidden layers' scale for the last layer")
     with_json(p)
     p.set_defaults(func=_cmd_plan)
