@@ -145,3 +145,20 @@ def test_negative_slope_on_request():
     s = propcalc.shape_activation("relu", 3, target=0.7, allow_negative_slope=True)
     assert doc["params"]["slope"] == pytest.approx(s.params["slope"], rel=1e-12)
     assert doc["params"]["slope"] < 0
+
+
+def test_the_shaped_network_description_through_propcalc_network(monkeypatch):
+    # the shaped plain network, described in blocks, analysed by the network command: its
+    # output correlation for inputs at c0 = 0 is the target C_L(0) (Zhang et al. 2022)
+    import io
+    import sys
+
+    code, out, err = run("shape", "relu", "--depth", "20", "--target", "0.8", "--json")
+    assert code == 0, err
+    desc = strict_json(out)["network_description"]
+    monkeypatch.setattr(sys, "stdin", io.StringIO(json.dumps(desc)))
+    code, out, err = run("network", "-", "--json", "--no-plan")
+    assert code == 0, err
+    prop = strict_json(out)["propagation"]
+    assert prop["c"][-1] == pytest.approx(0.8, abs=1e-10)
+    assert prop["q"][-1] == pytest.approx(1.0, rel=1e-10)
