@@ -46,6 +46,7 @@ import numpy as np
 
 from .. import domains
 from ..activations.base import Activation
+from ..activations.resolver import resolve
 from ..errors import InvalidParameterError, check_nonnegative, check_positive
 from ..numerics.hermite import SERIES_PASSES, coefficients_at, series_sum
 from ..numerics.quadrature import (DEFAULT_RULE, QuadratureRule, bivariate_expectation,
@@ -119,13 +120,14 @@ def derivative_second_moment(act: Activation, q: Any, rule: QuadratureRule = DEF
     return out
 
 
-def variance_map(act: Activation, q: Any, sigma_w2: float, sigma_b2: float,
+def variance_map(act: Activation | str, q: Any, sigma_w2: float, sigma_b2: float,
                  rule: QuadratureRule = DEFAULT_RULE) -> Array:
     """Length map V(q) = sigma_w2 E[phi(sqrt(q) z)^2] + sigma_b2 (Poole et al. 2016, eq. 3).
 
     Parameters
     ----------
-    act : Activation
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
     q : array_like
         Pre-activation variances, >= 0.
     sigma_w2 : float
@@ -138,19 +140,21 @@ def variance_map(act: Activation, q: Any, sigma_w2: float, sigma_b2: float,
     ndarray
         V(q), the shape of q.
     """
+    act = resolve(act)
     rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
     return sw * second_moment(act, q, rule) + sb
 
 
-def variance_map_slope(act: Activation, q: Any, sigma_w2: float,
+def variance_map_slope(act: Activation | str, q: Any, sigma_w2: float,
                        rule: QuadratureRule = DEFAULT_RULE) -> Array:
     """V'(q) = sigma_w2 E[(z^2 - 1) phi(sqrt(q) z)^2] / (2 q) (Stein's identity).
 
     At q = 0 the limit ``sigma_w2 (phi'(0-)^2 + phi'(0+)^2) / 2`` is returned
     when phi(0) = 0 (the rate of collapse towards zero variance).
     """
+    act = resolve(act)
     rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     qa = _q_array(q)
@@ -189,12 +193,14 @@ def variance_growth_rate(act: Activation, sigma_w2: float, q_large: float = 1e12
     return float(sw * second_moment(act, q_large, rule) / q_large)
 
 
-def chi_1(act: Activation, q: Any, sigma_w2: float, rule: QuadratureRule = DEFAULT_RULE) -> Array:
+def chi_1(act: Activation | str, q: Any, sigma_w2: float,
+          rule: QuadratureRule = DEFAULT_RULE) -> Array:
     """chi_1 = sigma_w2 E[phi'(sqrt(q) z)^2] (Schoenholz et al. 2017, eq. 8).
 
     The mean squared singular value of one layer's input-output Jacobian at
     variance q: gradients grow like chi_1^L. Infinite if phi jumps.
     """
+    act = resolve(act)
     rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     return sw * derivative_second_moment(act, q, rule)
@@ -419,7 +425,7 @@ def _jump_terms(act: Activation, ca: Array, qf: float, rule: QuadratureRule,
     return out
 
 
-def correlation_map(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
+def correlation_map(act: Activation | str, c: Any, sigma_w2: float, sigma_b2: float,
                     q: float, rule: QuadratureRule = DEFAULT_RULE) -> Array:
     """Correlation map C(c) (Poole et al. 2016, eq. 5).
 
@@ -428,7 +434,8 @@ def correlation_map(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
 
     Parameters
     ----------
-    act : Activation
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
     c : array_like
         Correlations in [-1, 1].
     sigma_w2, sigma_b2 : float
@@ -441,6 +448,7 @@ def correlation_map(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
     ndarray
         C(c), the shape of c.
     """
+    act = resolve(act)
     rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
@@ -552,12 +560,13 @@ def correlation_map_and_slope(act: Activation, c: Any, sigma_w2: float, sigma_b2
     return (sw * e_val + sb) / vq, sw * qf * e_der / vq
 
 
-def correlation_map_slope(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
+def correlation_map_slope(act: Activation | str, c: Any, sigma_w2: float, sigma_b2: float,
                           q: float, rule: QuadratureRule = DEFAULT_RULE) -> Array:
     """C'(c) = sigma_w2 q E[phi'(u1) phi'(u2)] / V(q) (Price's theorem).
 
     At c = 1 and q = q* this equals chi_1; infinite there for a jumping phi.
     """
+    act = resolve(act)
     rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)

@@ -47,6 +47,7 @@ from typing import Any
 import numpy as np
 
 from ..activations.base import Activation
+from ..activations.resolver import resolve
 from ..errors import (
     ComputationError,
     InvalidParameterError,
@@ -179,7 +180,7 @@ class Simulation(Result):
     message: str
 
 
-def mean_field_trajectory(act: Activation, sigma_w2: float, sigma_b2: float, depth: int,
+def mean_field_trajectory(act: Activation | str, sigma_w2: float, sigma_b2: float, depth: int,
                           q0: float, c0: float, rule: QuadratureRule = DEFAULT_RULE
                           ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Layer-by-layer mean-field q_l, c_l (l = 0..L) and G_l = prod_{m>=l} chi_1(q_m).
@@ -190,6 +191,7 @@ def mean_field_trajectory(act: Activation, sigma_w2: float, sigma_b2: float, dep
         If the predicted variance leaves (0, 1e12] (an exploding network) or
         phi jumps (chi_1 infinite).
     """
+    act = resolve(act)
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
     n = check_int("depth", depth, 1)
@@ -243,7 +245,7 @@ def _stats(samples: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return samples.mean(axis=0), samples.std(axis=0, ddof=1) / math.sqrt(r)
 
 
-def simulate(act: Activation, sigma_w2: float, sigma_b2: float, *, width: int, depth: int,
+def simulate(act: Activation | str, sigma_w2: float, sigma_b2: float, *, width: int, depth: int,
              q0: float = 1.0, c0: float = 0.5, repetitions: int = 8, n_pairs: int = 4,
              seed: int = 0, tolerance: float = 0.05,
              rule: QuadratureRule = DEFAULT_RULE) -> Simulation:
@@ -251,7 +253,8 @@ def simulate(act: Activation, sigma_w2: float, sigma_b2: float, *, width: int, d
 
     Parameters
     ----------
-    act : Activation
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
     sigma_w2, sigma_b2 : float
         The initialisation of every layer (e.g. a plan's hidden layers).
     width : int
@@ -282,6 +285,7 @@ def simulate(act: Activation, sigma_w2: float, sigma_b2: float, *, width: int, d
     ComputationError
         If the mean-field prediction explodes or phi jumps.
     """
+    act = resolve(act)
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
     n = check_int("width", width, 2)
@@ -422,7 +426,7 @@ def _compare(act: Activation, sw: float, sb: float, n: int, n_layers: int, reps:
                       tuple(layers), mq, mc, mg, frac, first is not None, first, msg)
 
 
-def simulate_plan(plan: Any, act: Activation, *, width: int, depth: int | None = None,
+def simulate_plan(plan: Any, act: Activation | str, *, width: int, depth: int | None = None,
                   q0: float | None = None, c0: float = 0.5, repetitions: int = 8,
                   n_pairs: int = 4, seed: int = 0, tolerance: float = 0.05,
                   rule: QuadratureRule = DEFAULT_RULE) -> Simulation:
@@ -436,9 +440,11 @@ def simulate_plan(plan: Any, act: Activation, *, width: int, depth: int | None =
     ----------
     plan : InitPlan
         From :func:`propcalc.recommend`.
-    act : Activation
-        The plan's activation.
+    act : str or Activation
+        The plan's activation: a built-in name, a formula in x, or an Activation
+        (resolved once here).
     """
+    act = resolve(act)
     if not hasattr(plan, "sigma_w2") or not hasattr(plan, "sigma_b2"):
         raise InvalidParameterError("plan", "an InitPlan", plan)
     if getattr(plan, "activation", act.label) != act.label:

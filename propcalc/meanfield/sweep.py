@@ -48,9 +48,9 @@ from typing import Any
 
 import numpy as np
 
-from ..activations import Activation, builtin_activation, builtin_names
+from ..activations import Activation, builtin_activation, builtin_names, resolve
 from ..activations import activation as make_activation
-from ..errors import InvalidParameterError, check_int, check_nonnegative
+from ..errors import ActivationTypeError, InvalidParameterError, check_int, check_nonnegative
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..results import ABSENT_AS_NONE, Result
 from ..vocabulary import NEUTRAL_TOLERANCE, PHASES, VARIANCE_STATUSES
@@ -276,10 +276,15 @@ class EdgeSweepResult(Table, Result):
 # the entry points
 # -------------------------------------------------------------------------------------------
 def _activations(spec: Any) -> list[Activation]:
-    items = [spec] if isinstance(spec, (str, Activation)) else list(spec)
-    if not items:
-        raise InvalidParameterError("activations", "a name, an Activation or a non-empty list", [])
-    return [make_activation(a) for a in items]
+    if isinstance(spec, (str, Activation)):
+        return [resolve(spec, "activations")]
+    if isinstance(spec, (list, tuple)):
+        if not spec:
+            raise InvalidParameterError("activations", "a name, an Activation or a non-empty list",
+                                        [])
+        return [resolve(a, f"activations[{i}]") for i, a in enumerate(spec)]
+    raise ActivationTypeError("activations", "a name or formula string, an Activation, or a list "
+                              "of them", spec)
 
 
 def _progress_bar(total: int, progress: bool | None, desc: str) -> Any:

@@ -29,7 +29,7 @@ from typing import Any
 import numpy as np
 
 from ..activations.base import Activation
-from ..activations.resolver import activation
+from ..activations.resolver import resolve
 from ..errors import InvalidParameterError, check_finite, check_int
 from ..meanfield.report import propagation
 from ..meanfield.maps import chi_1, correlation_map, variance_map, variance_map_slope
@@ -129,7 +129,7 @@ def shape_activation(act: str | Activation, depth: int, target: float | None = N
     0.5704
     """
     method, depth, value = _check(method, depth, target, allow_negative_slope)
-    base = activation(act)
+    base = resolve(act)
     if base.has_jumps:
         raise InvalidParameterError("activation", "without jumps (its C'(1) is infinite, so no "
                                     "transform keeps it finite)", base.label)

@@ -53,6 +53,7 @@ import numpy as np
 from scipy import special
 
 from ..activations.base import Activation
+from ..activations.resolver import resolve
 from ..errors import (
     ComputationError,
     InvalidParameterError,
@@ -405,7 +406,7 @@ def output_layer_scale(n_classes: int, penultimate_second_moment: float,
     return OutputLayerScale(k, mg, m2, sb, s2_max, sw, std, loss, pmax, current, tuple(notes))
 
 
-def output_layer_for_plan(plan: Any, act: Activation, n_classes: int,
+def output_layer_for_plan(plan: Any, act: Activation | str, n_classes: int,
                           margin: float | None = None, n_samples: int = 100_000, seed: int = 0,
                           rule: QuadratureRule = DEFAULT_RULE) -> OutputLayerScale:
     """:func:`output_layer_scale` for the last layer of an :class:`propcalc.InitPlan`.
@@ -418,10 +419,12 @@ def output_layer_for_plan(plan: Any, act: Activation, n_classes: int,
     Parameters
     ----------
     plan : InitPlan
-    act : Activation
-        The plan's activation.
+    act : str or Activation
+        The plan's activation: a built-in name, a formula in x, or an Activation
+        (resolved once here).
     n_classes : int
     """
+    act = resolve(act)
     if getattr(plan, "q_star", None) is None or not getattr(plan, "layers", None):
         raise InvalidParameterError("plan", "an InitPlan with a finite q_star", plan)
     if plan.activation != act.label:

@@ -73,7 +73,7 @@ import numpy as np
 from scipy import optimize
 
 from .. import domains
-from ..activations import SELU_ALPHA, SELU_SCALE, Activation
+from ..activations import SELU_ALPHA, SELU_SCALE, Activation, resolve
 from ..errors import InvalidParameterError, check_finite, check_nonnegative, check_positive
 from ..numerics import roots
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation
@@ -145,13 +145,14 @@ def _prep(mu: Any, nu: Any, omega: Any, tau: Any, strict: bool) -> tuple[np.ndar
     return mu_a * om, nu_a * ta, om, ta
 
 
-def mean_variance_map(act: Activation, mu: Any, nu: Any, omega: float = 0.0, tau: float = 1.0,
+def mean_variance_map(act: Activation | str, mu: Any, nu: Any, omega: float = 0.0, tau: float = 1.0,
                       rule: QuadratureRule = DEFAULT_RULE) -> tuple[np.ndarray, np.ndarray]:
     """(mu, nu) -> (mu~, nu~) of Klambauer et al. 2017 (their eqs. 3-4, numbers from memory).
 
     Parameters
     ----------
-    act : Activation
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
     mu, nu : array_like
         Mean and variance (>= 0) of the previous layer's activations.
     omega : float
@@ -164,12 +165,13 @@ def mean_variance_map(act: Activation, mu: Any, nu: Any, omega: float = 0.0, tau
     mu_new, nu_new : ndarray
         ``E[phi(z)]`` and ``Var[phi(z)]`` for ``z ~ N(mu omega, nu tau)``.
     """
+    act = resolve(act)
     m, s, _, _ = _prep(mu, nu, omega, tau, strict=False)
     a, b = _moments(act, m, s, rule, derivatives=False)
     return a, np.maximum(b - a * a, 0.0)
 
 
-def mean_variance_jacobian(act: Activation, mu: Any, nu: Any, omega: float = 0.0,
+def mean_variance_jacobian(act: Activation | str, mu: Any, nu: Any, omega: float = 0.0,
                            tau: float = 1.0, rule: QuadratureRule = DEFAULT_RULE) -> np.ndarray:
     """Jacobian of (mu~, nu~) with respect to (mu, nu), by Stein's identities (no differences).
 
@@ -178,6 +180,7 @@ def mean_variance_jacobian(act: Activation, mu: Any, nu: Any, omega: float = 0.0
     ndarray of shape ``broadcast(mu, nu).shape + (2, 2)``
         ``[[d mu~/d mu, d mu~/d nu], [d nu~/d mu, d nu~/d nu]]``; needs nu > 0, tau > 0.
     """
+    act = resolve(act)
     m, s, om, ta = _prep(mu, nu, omega, tau, strict=True)
     a, _, a_m, a_s, b_m, b_s = _moments(act, m, s, rule, derivatives=True)
     jac = np.empty(m.shape + (2, 2))
@@ -321,14 +324,15 @@ def _fixed_points_newton(act: Activation, omega: float, tau: float,
     return found
 
 
-def self_normalization(act: Activation, omega: float = 0.0, tau: float = 1.0,
+def self_normalization(act: Activation | str, omega: float = 0.0, tau: float = 1.0,
                        start: tuple[float, float] = (0.0, 1.0),
                        rule: QuadratureRule = DEFAULT_RULE) -> SelfNormalization:
     """Fixed points of the mean-variance map, their Jacobians and attraction.
 
     Parameters
     ----------
-    act : Activation
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
     omega : float
         Sum of the incoming weights of a unit (0 for normalised weights).
     tau : float
@@ -348,6 +352,7 @@ def self_normalization(act: Activation, omega: float = 0.0, tau: float = 1.0,
     >>> round(r.nearest.mu, 9), round(r.nearest.nu, 9), r.self_normalizing
     (0.0, 1.0, True)
     """
+    act = resolve(act)
     om = check_finite("omega", omega)
     ta = check_positive("tau", tau)
     if not isinstance(start, (tuple, list)) or len(start) != 2:

@@ -57,6 +57,7 @@ import numpy as np
 
 from ..vocabulary import EDGE_TOLERANCE
 from ..activations.base import Activation
+from ..activations.resolver import resolve
 from ..meanfield.edge import edge_of_chaos
 from ..errors import (
     ComputationError,
@@ -171,14 +172,15 @@ def _safe_pow(base: float, n: int) -> float:
     return math.inf if log > 709.0 else math.exp(log)
 
 
-def jacobian_spectrum(act: Activation, depth: int, q_star: float = 1.0,
+def jacobian_spectrum(act: Activation | str, depth: int, q_star: float = 1.0,
                       sigma_w2: float | None = None,
                       rule: QuadratureRule = DEFAULT_RULE) -> JacobianSpectrum:
     """Mean and variance of the squared singular values of the input-output Jacobian.
 
     Parameters
     ----------
-    act : Activation
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
     depth : int
         L >= 1.
     q_star : float
@@ -197,6 +199,7 @@ def jacobian_spectrum(act: Activation, depth: int, q_star: float = 1.0,
         If phi jumps, or sigma_w2 is not given and q* is not on the edge of
         chaos with sigma_b2 >= 0.
     """
+    act = resolve(act)
     n = check_int("depth", depth, 1)
     q = check_positive("q_star", q_star)
     mu1, mu2 = derivative_moments(act, q, rule)
@@ -276,7 +279,8 @@ class IsometryAdvice(Result):
     message: str
 
 
-def dynamical_isometry(act: Activation, depth: int, max_variance: float = DEFAULT_MAX_VARIANCE,
+def dynamical_isometry(act: Activation | str, depth: int,
+                       max_variance: float = DEFAULT_MAX_VARIANCE,
                        q_range: tuple[float, float] = (1e-6, 1e2),
                        rule: QuadratureRule = DEFAULT_RULE) -> IsometryAdvice:
     """Advise weights and q* for a near-isometric Jacobian (Pennington et al. 2017).
@@ -288,7 +292,8 @@ def dynamical_isometry(act: Activation, depth: int, max_variance: float = DEFAUL
 
     Parameters
     ----------
-    act : Activation
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
     depth : int
     max_variance : float
         Target normalised variance (default 0.25; common practice, no source).
@@ -299,6 +304,7 @@ def dynamical_isometry(act: Activation, depth: int, max_variance: float = DEFAUL
     -------
     IsometryAdvice
     """
+    act = resolve(act)
     n = check_int("depth", depth, 1)
     target = check_nonnegative("max_variance", max_variance)
     lo = check_positive("q_range[0]", q_range[0])
@@ -424,7 +430,7 @@ def _haar_orthogonal(rng: np.random.Generator, n: int) -> np.ndarray:
 MAX_SAMPLE_WORK = 2e11
 
 
-def sample_jacobian_spectrum(act: Activation, depth: int, width: int = 500,
+def sample_jacobian_spectrum(act: Activation | str, depth: int, width: int = 500,
                              sigma_w2: float | None = None, sigma_b2: float | None = None,
                              q_star: float = 1.0, weights: str = "orthogonal",
                              repetitions: int = 5, seed: int = 0,
@@ -438,7 +444,8 @@ def sample_jacobian_spectrum(act: Activation, depth: int, width: int = 500,
 
     Parameters
     ----------
-    act : Activation
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
     depth, width, repetitions : int
     sigma_w2, sigma_b2 : float, optional
     q_star : float
@@ -451,6 +458,7 @@ def sample_jacobian_spectrum(act: Activation, depth: int, width: int = 500,
     -------
     SampledSpectrum
     """
+    act = resolve(act)
     n_layers = check_int("depth", depth, 1)
     n = check_int("width", width, 2)
     reps = check_int("repetitions", repetitions, 2)
