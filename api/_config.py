@@ -16,6 +16,8 @@ from collections.abc import Mapping
 from dataclasses import asdict, dataclass
 from typing import Any
 
+from propcalc.domains import DOMAINS as _D
+
 from ._guard import Guard
 from ._lane import Lane
 
@@ -28,43 +30,44 @@ __all__ = ["DEFAULTS", "Limits", "limits_from_config", "lane_from_config", "guar
            "SIMULATION_MAX_PAIRS", "TOLERANCE_MIN", "PLOT_FORMATS", "PLOT_DPI_MIN", "PLOT_DPI_MAX",
            "PLOT_DPI_DEFAULT", "PHASE_GRID_MAX", "XI_MAX_MAX"]
 
-# Fixed parameter ranges (documented; not configurable). Beyond them the mean-field numbers
+# Fixed parameter ranges (documented; not configurable). Where the engine documents the
+# domain of an input (propcalc.domains), the bound is read from there, never copied. Beyond them the mean-field numbers
 # are either meaningless for a real network or outside the engine's tested range.
 #: sigma_w2, sigma_b2 and q_input are at most this.
-VARIANCE_MAX = 1e4
+VARIANCE_MAX = _D["sigma_w2"].upper
 #: sigma_w2 is at least this (below it the fixed point falls under the engine's search grid).
-SIGMA_W2_MIN = 1e-6
+SIGMA_W2_MIN = _D["sigma_w2"].lower
 #: a positive sigma_b2 must be at least this (0 itself is fine): subnormal biases are zero
 #: for every practical purpose and only exercise floating-point underflow.
-BIAS_MIN_POSITIVE = 1e-100
+BIAS_MIN_POSITIVE = _D["sigma_b2"].lower
 #: q values of the sampled variance and correlation maps are at most this.
 MAP_Q_MAX = 1e8
 #: q* on the edge-of-chaos line is at most this ...
-Q_STAR_MAX = 1e6
+Q_STAR_MAX = _D["q_star"].upper
 #: ... and at least this (below it the critical sigma_b2 underflows to subnormal numbers).
-Q_STAR_MIN = 1e-30
+Q_STAR_MIN = _D["q_star"].lower
 #: the input mean square of a plan is at least this (the first layer's sigma_w2 is
 #: q* / q_input, which must stay finite).
 PLAN_Q_INPUT_MIN = 1e-12
 #: activation parameters (slope, alpha, beta, formula constants) are at most this in size.
-PARAM_ABS_MAX = 1e6
+PARAM_ABS_MAX = _D["activation_parameter"].upper
 #: dropout and alpha-dropout keep rates lie in [KEEP_RATE_MIN, 1] (keep rate 1: no dropout).
-KEEP_RATE_MIN = 1e-3
+KEEP_RATE_MIN = _D["keep_rate"].lower
 #: largest maxout rank (the engine's own bound, propcalc.variants.maxout.MAX_RANK).
-MAXOUT_MAX_RANK = 1024
+MAXOUT_MAX_RANK = int(_D["rank"].upper)
 #: |omega| (sum of a unit's incoming weights) of the mean-variance map is at most this ...
 OMEGA_ABS_MAX = 100.0
 #: ... and so are |mu| of its start and the mean kept by alpha dropout.
-MEAN_ABS_MAX = 100.0
+MEAN_ABS_MAX = _D["mean"].upper
 #: tau, a start variance nu and the variance kept by alpha dropout are at least this (at most
 #: VARIANCE_MAX); also the smallest penultimate second moment of the softmax layer.
-SMALL_VARIANCE_MIN = 1e-6
+SMALL_VARIANCE_MIN = _D["variance"].lower
 #: |alpha'| (the value of dropped units in alpha dropout) is at most this.
-ALPHA_PRIME_ABS_MAX = 1e3
+ALPHA_PRIME_ABS_MAX = _D["alpha_prime"].upper
 #: target normalised spectral variance of the isometry advice is at most this.
 SPECTRAL_VARIANCE_MAX = 1e6
 #: most softmax classes (the engine's own bound, propcalc.variants.output_layer.MAX_CLASSES).
-MAX_CLASSES = 10**7
+MAX_CLASSES = int(_D["n_classes"].upper)
 #: largest logit variance (the engine's own bound, propcalc.variants.output_layer.MAX_LOGIT_VARIANCE).
 LOGIT_VARIANCE_MAX = 1e4
 #: allowed excess of the initial loss over ln K, in nats: [MARGIN_MIN, MARGIN_MAX].

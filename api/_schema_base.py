@@ -11,6 +11,7 @@ from typing import Any
 from marshmallow import RAISE, Schema, ValidationError, fields
 
 from propcalc import Distribution, Target, VarianceStatus
+from propcalc.domains import DOMAINS
 
 from ._config import (
     BIAS_MIN_POSITIVE,
@@ -42,7 +43,7 @@ DEFAULT_EDGE_Q_STARS = (0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0)
 #: names of activation parameters
 PARAM_NAME_PATTERN = r"[A-Za-z_][A-Za-z0-9_]{0,31}"
 #: largest layer width / channel count
-MAX_SIZE = 10_000_000
+MAX_SIZE = int(DOMAINS["width"].upper)
 #: largest kernel size per spatial dimension, and most spatial dimensions
 MAX_KERNEL = 1024
 MAX_KERNEL_DIMS = 3

@@ -39,7 +39,7 @@ def _edge_tanh(pc):
 
 def _sweep_tanh(pc):
     import numpy as np
-    w, b = np.meshgrid(np.linspace(0.5, 4, 40), np.linspace(0, 0.5, 40))
+    w, b = np.meshgrid(np.linspace(0.5, 4, 16), np.linspace(0, 0.5, 16))
     pc.sweep("tanh", w.ravel(), b.ravel())
 
 
@@ -48,7 +48,7 @@ CASES = {
     "propagation, typed formula": lambda pc: pc.propagation("x * tanh(softplus(x))", 1.7, 0.05),
     "edge_of_chaos tanh, 9 q*": _edge_tanh,
     "recommend tanh, 20 layers": lambda pc: pc.recommend("tanh", depth=20),
-    "sweep tanh 40 x 40": _sweep_tanh,
+    "sweep tanh 16 x 16": _sweep_tanh,
     "dropout tanh rho 0.9": lambda pc: pc.dropout_propagation("tanh", 1.7, 0.05, 0.9),
 }
 
