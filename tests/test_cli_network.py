@@ -242,6 +242,37 @@ def test_bad_options(tmp_path, argv, needle):
     assert code == 2 and needle in err and "Traceback" not in err
 
 
+def test_check_against_seeded_networks():
+    desc = json.loads(DEMO.read_text())
+    code, out, err = run("network", str(DEMO), "--no-plan", "--check", "--json",
+                         "--repetitions", "6", "--seed", "5")
+    assert code == 0, err
+    doc = strict_json(out)
+    sim = propcalc.simulate(desc, c0=0.0, repetitions=6, seed=5)
+    assert doc["check"] == json.loads(json.dumps(propcalc.jsonable(sim.to_dict())))
+    # the mean-field prediction lies in the measured band (seeded numpy networks, widths 256
+    # as described; mean +- 2 SE widened by the 5% tolerance) at all but a few of the 36
+    # positions (each of q, c and the gradient has about a 5% chance to fall out at 2 SE)
+    assert len(doc["check"]["mismatches"]) <= 2
+    code, out, err = run("network", str(DEMO), "--no-plan", "--check", "--repetitions", "6",
+                         "--seed", "5")
+    assert code == 0, err
+    assert "finite-width check (6 seeded networks" in out
+    assert ("every prediction lies in its band" in out) == (not sim.mismatches)
+
+
+@pytest.mark.parametrize("argv, needle", [
+    (["--grid", "4"], "--grid only shape the finite-width check: give --check too"),
+    (["--repetitions", "3"], "--repetitions only shape the finite-width check"),
+    (["--width", "1"], "--width must be an integer >= 2, got 1"),
+    (["--check", "--width", "1000000"], "at most 2e+10 multiply-adds"),
+    (["--check", "--repetitions", "1"], "repetitions must be an integer >= 2, got 1"),
+])
+def test_check_errors(tmp_path, argv, needle):
+    code, out, err = run("network", write(tmp_path, relu_stack(2)), "--no-plan", *argv)
+    assert code == 2 and out == "" and needle in err and "Traceback" not in err
+
+
 def test_help_lists_the_command():
     code, out, _ = run("--help")
     assert code == 0 and "network" in out and "shape" in out

@@ -4,7 +4,8 @@ The file (or ``-`` for stdin) holds a network description in propcalc's blocks f
 (docs/networks.md). The command prints the per-position table of
 :func:`propcalc.network_propagation` (q, c and the gradient), the findings of its summary and
 the initialisation plan of :func:`propcalc.network_plan`; ``--json`` writes both results'
-dict forms; ``--plot`` draws q, c and the gradient against depth
+dict forms; ``--check`` adds seeded finite-width networks of the description compared with the
+prediction at every position (:func:`propcalc.simulate`); ``--plot`` draws q, c and the gradient against depth
 (:func:`propcalc.output.network_plot.plot_network`).
 """
 
@@ -22,8 +23,9 @@ from ... import (
     network,
     network_plan,
     network_propagation,
+    simulate_network,
 )
-from ..options import EXIT_OK, UsageError, finite_float, with_json, with_plot
+from ..options import EXIT_OK, UsageError, finite_float, int_list, with_json, with_plot
 from ..output import emit_json, format_number, format_pairs, format_table, plus_minus
 from ..pictures import start_plot, write_plot
 
@@ -32,6 +34,8 @@ __all__ = ["MAX_FILE_BYTES", "DEFAULT_ROWS", "read_description", "register"]
 #: The largest description file read (a description at the engine's limit of 10,000 block
 #: objects is about 2 MB of JSON).
 MAX_FILE_BYTES = 16 * 1024 * 1024
+#: Defaults of the --check options (given without --check, they are refused).
+_CHECK_DEFAULTS = {"grid": None, "repetitions": 8, "inputs": 4, "tolerance": 0.05}
 #: Rows of the per-position table unless ``--rows`` says otherwise.
 DEFAULT_ROWS = 60
 
@@ -181,6 +185,31 @@ def _plan_text(plan: Any, out: TextIO) -> None:
         out.write(f"note: {note}\n")
 
 
+def _check_text(sim: Any, rows: int | None, out: TextIO) -> None:
+    """The finite-width check: measured (mean +- 2 SE) against predicted at every position."""
+    out.write(f"\nfinite-width check ({sim.repetitions} seeded networks, width {sim.width} where "
+              f"the description gives none, {sim.inputs} inputs, positions {sim.grid}, seed "
+              f"{sim.seed}):\n")
+    n = len(sim.positions) - 1
+    table = []
+    for i in _positions(n, rows, set(sim.mismatches)):
+        p = sim.positions[i]
+        table.append([i, p.q_predicted, plus_minus(p.q, p.q_se), p.c_predicted,
+                      plus_minus(p.c, p.c_se), p.gradient_predicted,
+                      plus_minus(p.gradient, p.gradient_se), p.q_in_band, p.c_in_band,
+                      p.gradient_in_band])
+    out.write(format_table(table, ["position", "q predicted", "q measured", "c predicted",
+                                   "c measured", "gradient predicted", "gradient measured",
+                                   "q ok", "c ok", "gradient ok"]) + "\n")
+    out.write(f"measured: mean +- 2 standard errors; ok: the prediction lies in that band "
+              f"widened by the tolerance {sim.tolerance:g}; '-': no prediction there\n")
+    if sim.mismatches:
+        out.write("outside the band at positions "
+                  f"{', '.join(str(i) for i in sim.mismatches)}\n")
+    else:
+        out.write("every prediction lies in its band\n")
+
+
 def _rows(text: str) -> int | None:
     if text == "all":
         return None
@@ -204,6 +233,14 @@ def _seed(text: str) -> int:
 
 
 def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
+    if not args.check:
+        given = [o for o in ("--grid", "--repetitions", "--inputs", "--tolerance")
+                 if getattr(args, o[2:]) != _CHECK_DEFAULTS[o[2:]]]
+        if given:
+            raise UsageError(f"{', '.join(given)} only shape the finite-width check: give "
+                             "--check too")
+    if args.width is not None and args.width < 2:
+        raise UsageError(f"--width must be an integer >= 2, got {args.width}")
     target = start_plot(args)
     drawer = None
     if target is not None:
@@ -215,7 +252,14 @@ def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
     except NetworkDescriptionError as exc:
         raise UsageError(f"{name}: {exc}") from None
     result = network_propagation(net, args.q0, args.c0, c0_within=args.c0_within,
-                                 c0_between=args.c0_between, seed=args.seed)
+                                 c0_between=args.c0_between, seed=args.seed,
+                                 simulation_width=args.width)
+    check = None
+    if args.check:
+        check = simulate_network(net, q0=args.q0, c0=args.c0, c0_within=args.c0_within,
+                                 c0_between=args.c0_between, width=args.width, grid=args.grid,
+                                 inputs=args.inputs, repetitions=args.repetitions,
+                                 seed=args.seed, tolerance=args.tolerance)
     plan, plan_error = None, None
     if not args.no_plan:
         try:
@@ -227,7 +271,8 @@ def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
     if args.json:
         emit_json({"propagation": result.to_dict(),
                    "plan": None if plan is None else plan.to_dict(),
-                   "plan_error": plan_error}, out)
+                   "plan_error": plan_error,
+                   "check": None if check is None else check.to_dict()}, out)
     else:
         n = len(result.q) - 1
         out.write(format_pairs([
@@ -246,6 +291,8 @@ def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
                 _plan_text(plan, out)
             else:
                 out.write(f"not available: {plan_error}\n")
+        if check is not None:
+            _check_text(check, args.rows, out)
     if target is not None and drawer is not None:
         fig = drawer.plot_network(result)
         write_plot(fig, target, f"q, c and the gradient against depth for {name}", args, out)
@@ -286,6 +333,21 @@ def register(sub: Any) -> None:
                    choices=["gaussian", "delta_orthogonal"],
                    help="plan: convolution kernels (default gaussian)")
     p.add_argument("--no-plan", action="store_true", help="skip the initialisation plan")
+    p.add_argument("--check", action="store_true",
+                   help="also measure seeded finite-width networks of the description and "
+                        "compare every position with the prediction (propcalc.simulate)")
+    p.add_argument("--width", type=int, default=None,
+                   help="units per position where the description gives none, in the "
+                        "simulations (default 256)")
+    p.add_argument("--grid", type=int_list, metavar="N[,M...]",
+                   help="--check: the input's positions (a spatial grid for convolutions and "
+                        "pooling, the tokens for attention; default: the first attention "
+                        "block's tokens, else 1)")
+    p.add_argument("--repetitions", type=int, default=8,
+                   help="--check: independent networks (default 8)")
+    p.add_argument("--inputs", type=int, default=4, help="--check: inputs per batch (default 4)")
+    p.add_argument("--tolerance", type=finite_float, default=0.05,
+                   help="--check: practical size of a visible deviation (default 0.05)")
     with_json(p)
     with_plot(p, "q, c and the gradient against depth")
     p.set_defaults(func=_cmd_network)
