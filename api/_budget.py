@@ -55,6 +55,20 @@ correlation-map image       the image + 200 + k(q*) per sample (as above)
 depth-scales image          the image + 150 (the critical sigma_w2) + the
                             per-point cost of the phase diagram for
                             n_points + 28 samples + 200 with a point
+network propagation        200 + 1.5 per unit of the engine's Network.cost (one
+                            per activation block met, three where positions mix,
+                            0.02 per other block: an upper bound), twice per unit
+                            with typed formulas; plus 50 per distinct formula
+                            (read first); plus, where the Gaussian recursion
+                            stops holding and the simulation is asked for,
+                            0.6 per position and repetition + 5e-7 per
+                            multiply-add of the simulated networks
+network plan                300 + 2.5 per unit; 40 per unit with a target
+                            (the branch-weight search)
+network image               the image + the propagation
+shaping                     400 + 1.5 per layer (twice for a formula; elu by
+                            deep kernel shaping: 2.1 ms per layer)
+shaping image               the image + the shaping
 ==========================  =====================================================
 
 The per-point cost of a phase diagram is its typical cost over the default
@@ -150,6 +164,15 @@ COSTS = {
     "sweep_point": 1.0,
     "sweep_point_jumps": 5.0,
     "depth_scales_extra_points": 28.0,
+    "network": 200.0,
+    "network_unit": 1.5,
+    "network_plan": 300.0,
+    "network_plan_unit": 2.5,
+    "network_plan_target_unit": 40.0,
+    "network_simulation_position": 0.6,
+    "network_simulation_element": 5e-7,
+    "shape": 400.0,
+    "shape_layer": 1.5,
 }
 
 

@@ -20,6 +20,7 @@ import propcalc
 from ._config import Limits
 from ._fields import openapi_attribute_function
 from ._json import canonical_dumps
+from ._network_schemas import network_components
 from ._problems import TYPE_COMPUTATION, TYPE_INVALID_FIELDS, TYPE_WORK_BUDGET
 from ._routes import BLUEPRINT, ENDPOINTS
 from ._schemas import Schemas
@@ -33,10 +34,12 @@ phase), the edge-of-chaos line, per-layer initialisation plans, sampled
 variance/correlation maps, dropout, maxout networks, mean-variance fixed
 points (self-normalisation) and alpha dropout, Jacobian spectra and dynamical
 isometry, the softmax output layer at initialisation, finite-width checks
-on seeded random networks (POST /v1/simulate), and images (PNG or SVG) of
-the phase diagram, the variance and correlation maps and the depth scales
-(/v1/plots/...). Infinite-width predictions at initialisation: check them on
-your own model.
+on seeded random networks (POST /v1/simulate), networks described block by
+block (POST /v1/network: q, c and the gradient at every position, a summary,
+a plan), activations shaped for a target depth (POST /v1/shape), and images
+(PNG or SVG) of the phase diagram, the variance and correlation maps, the
+depth scales, a network's q, c and gradient and a shaping (/v1/plots/...).
+Infinite-width predictions at initialisation: check them on your own model.
 
 **Conventions.** Fan-in scaling W_ij ~ N(0, sigma_w2 / fan_in), b_i ~ N(0,
 sigma_b2). JSON has no infinity: an infinite number (a depth scale exactly at
@@ -148,6 +151,8 @@ def build_openapi(app: Flask, schemas: Schemas, limits: Limits) -> bytes:
     plugin.converter.add_attribute_function(openapi_attribute_function)
 
     spec.components.schema("Problem", schema=schemas.Problem)
+    for name, component in network_components().items():  # the description format
+        spec.components.schema(name, component)
     for status, text in _PROBLEM_TEXT.items():
         if status == 304:
             spec.components.response("NotModified", {"description": text})

@@ -24,7 +24,8 @@ about:blank                            415     Content-Type is not application/j
                                                request exceeds the limits, or a simulation
                                                exceeds MAX_SIMULATION_SIZE (``limit`` names it)
 ...:computation-failed                 422     the engine could not produce a trustworthy number
-                                               for these inputs (ComputationError)
+                                               for these inputs (ComputationError), or a
+                                               shaping target cannot be met (ShapingError)
 about:blank                            500     a bug: logged with a traceback under ``incident``
 about:blank                            501     an image endpoint without matplotlib installed
 =====================================  ======  =================================================
@@ -46,7 +47,15 @@ from flask import Response, current_app, g, request
 from marshmallow import ValidationError
 from werkzeug.exceptions import HTTPException
 
-from propcalc import ComputationError, FormulaError, InvalidParameterError, UnknownActivationError
+from propcalc import (
+    ComputationError,
+    FormulaError,
+    InvalidParameterError,
+    NetworkDescriptionError,
+    PropcalcError,
+    ShapingError,
+    UnknownActivationError,
+)
 
 from ._json import JSONBodyError, canonical_dumps
 
@@ -284,6 +293,11 @@ def _engine_pointer(field: str, ctx: ErrorContext) -> str:
 
 def _engine_problem(exc: Exception, ctx: ErrorContext | None) -> Problem:
     ctx = ctx or ErrorContext(set(), None)
+    if isinstance(exc, NetworkDescriptionError) and "network" in ctx.fields:
+        # the engine names the JSON pointer within the description: prefix the member
+        text = str(exc)
+        detail = text[len(exc.field) + 1:] if text.startswith(exc.field + " ") else text
+        return _invalid([ctx.entry("/network" + exc.path, detail)])
     if isinstance(exc, InvalidParameterError):
         pointer = _engine_pointer(exc.field, ctx)
         if pointer == "" and exc.field not in ("", None):
@@ -324,6 +338,11 @@ def _as_problem(exc: BaseException) -> Problem:
     if isinstance(exc, (InvalidParameterError, FormulaError, UnknownActivationError,
                         ComputationError)):
         return _engine_problem(exc, ctx)
+    if isinstance(exc, ShapingError):
+        return Problem(422, str(exc), type=TYPE_COMPUTATION, title="The target cannot be met")
+    if isinstance(exc, PropcalcError):  # any other refusal of the engine: never a 500
+        return Problem(422, str(exc), type=TYPE_COMPUTATION,
+                       title="The computation could not produce a trustworthy result")
     if isinstance(exc, JSONBodyError):
         return Problem(400, str(exc))
     if isinstance(exc, HTTPException) and exc.code is not None:

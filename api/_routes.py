@@ -216,6 +216,24 @@ ENDPOINTS: tuple[Endpoint, ...] = (
              "squared gradient norms, layer by layer, with +-2 standard-error bands. "
              "width^2 * depth * repetitions is at most MAX_SIMULATION_SIZE.",
              "SimulationRequest", None, "Simulation", "simulation", _POST_ERRORS, "simulation"),
+    Endpoint("network", "/v1/network", "POST", "Signal propagation through a described network",
+             "A network as blocks (dense, activation, residual, norm, dropout, repeat, "
+             "convolution, pooling, attention; the NetworkDescription schema) and two inputs "
+             "(q0, c0): q, c and the gradient at every stream position (0 is the input), a "
+             "record per block, the summary (where inputs merge or decorrelate, gradient "
+             "growth, depth laws, what to change) and the initialisation plan "
+             "(propcalc.network_plan; \"plan\": null skips it). Where the Gaussian recursion "
+             "does not hold the positions come from a seeded finite-width simulation with "
+             "bands. Errors in the description point into it (/network/blocks/3/dense/"
+             "sigma_w2). Infinite-width predictions at initialisation.",
+             "NetworkRequest", None, "NetworkAnalysis", "network", _POST_ERRORS, "networks"),
+    Endpoint("shape", "/v1/shape", "POST", "Shape an activation for a target depth",
+             "The transformed activation of the tailored activation transformation (method "
+             "tat, Zhang et al. 2022; the leaky-ReLU slope form for relu and leaky_relu) or "
+             "of deep kernel shaping (method dks, Martens et al. 2021): its parameters, the "
+             "achieved C_L(0) and C_L'(1), the conditions, every root found and the one "
+             "chosen, the depth verdict; used with sigma_w2 = 1, sigma_b2 = 0.",
+             "ShapeRequest", None, "ShapedActivation", "shape", _POST_ERRORS, "shaping"),
     *_image_endpoints(
         "phase_diagram", "phase-diagram", "Phase diagram image",
         "Ordered (chi_1 < 1) and chaotic (chi_1 > 1) regions over a sigma_w2 x sigma_b2 grid, "

@@ -65,6 +65,7 @@ from ._fields import (
     StrictString,
     format_number,
 )
+from ._network_schemas import build_network_schemas
 from ._schema_base import (
     DEFAULT_EDGE_Q_STARS, DISTRIBUTIONS, DROPOUT_MAX_RATES, ISOMETRY_DEFAULTS, MAX_KERNEL,
     MAX_KERNEL_DIMS, MAX_SIZE, PARAM_NAME_PATTERN, PLOT_MAX_ITERATIONS, TARGETS,
@@ -114,6 +115,10 @@ class Schemas:
     CorrelationMapPlotQuery: type[Schema]
     DepthScalesPlotRequest: type[Schema]
     DepthScalesPlotQuery: type[Schema]
+    NetworkRequest: type[Schema]
+    NetworkPlotRequest: type[Schema]
+    ShapeRequest: type[Schema]
+    ShapePlotRequest: type[Schema]
     # responses
     Activation: type[Schema]
     ActivationList: type[Schema]
@@ -133,6 +138,8 @@ class Schemas:
     Softmax: type[Schema]
     OutputLayerScale: type[Schema]
     Simulation: type[Schema]
+    NetworkAnalysis: type[Schema]
+    ShapedActivation: type[Schema]
     Problem: type[Schema]
     Health: type[Schema]
     LimitsInfo: type[Schema]
@@ -693,4 +700,6 @@ def build_schemas(limits: Limits) -> Schemas:
 
     local = dict(locals())
     local.update({f"{name}Schema": schema for name, schema in RESPONSE_SCHEMAS.items()})
+    # networks and shaping (issues 14 and 16): their own module
+    local.update(build_network_schemas(limits, StrictSchema, activation_field, ImageOptionsSchema))
     return Schemas(**{name: local[f"{name}Schema"] for name in Schemas.__dataclass_fields__})

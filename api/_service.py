@@ -61,6 +61,7 @@ from ._cache import LRUCache
 from ._config import LOGIT_VARIANCE_MAX, MC_MAX_ELEMENTS, Limits
 from ._fields import format_number
 from ._json import canonical_dumps
+from ._networks import NetworkComputations
 from ._problems import TYPE_INVALID_FIELDS, Problem, WorkBudgetExceeded
 from ._schemas import DEFAULT_EDGE_Q_STARS
 
@@ -89,7 +90,7 @@ def _is_formula(spec: dict[str, Any]) -> bool:
     return "formula" in spec
 
 
-class Computations:
+class Computations(NetworkComputations):
     """The service's view of the engine, with an LRU of parsed activations.
 
     Parameters

@@ -30,7 +30,14 @@ from .blocks import (
     Residual,
 )
 from .description import NetworkDescriptionError, network
-from .fields import description_fields, description_schema
+from .fields import (
+    MAX_DESCRIBED_BLOCKS,
+    MAX_EXPANDED_BLOCKS,
+    MAX_NESTING,
+    MAX_POSITIONS,
+    description_fields,
+    description_schema,
+)
 from .propagate import BlockRecord, NetworkPropagation, network_propagation
 from .check import simulate, simulate_network
 from .simulate import NetworkSimulation, SimulatedPosition
@@ -39,6 +46,10 @@ from .summary import DepthLaw, Finding, NetworkSummary
 from .targets import BranchWeight, branch_weight
 
 __all__ = [
+    "MAX_DESCRIBED_BLOCKS",
+    "MAX_EXPANDED_BLOCKS",
+    "MAX_NESTING",
+    "MAX_POSITIONS",
     "BranchWeight",
     "branch_weight",
     "BlockRecord",

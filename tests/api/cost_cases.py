@@ -19,6 +19,18 @@ _LONG_FORMULA = {"formula": "a*tanh(b*x) + c*x*sigmoid(d*x) + f*softplus(g*x) + 
                             "+ 0.1*abs(x) + where(x > 1, 0.5*x, x)",
                  "params": {k: 0.5 + i / 10 for i, k in enumerate("abcdfghk")}}
 
+
+def _stack(act, times: int, sw: float, sb: float) -> dict[str, Any]:
+    return {"blocks": [{"repeat": {"times": times, "blocks": [
+        {"dense": {"sigma_w2": sw, "sigma_b2": sb}}, {"activation": act}]}}]}
+
+
+def _residual(act, times: int) -> dict[str, Any]:
+    return {"blocks": [{"repeat": {"times": times, "blocks": [{"residual": {"branch": [
+        {"dense": {"sigma_w2": 1.5, "sigma_b2": 0.1}}, {"activation": act},
+        {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0}}]}}]}}]}
+
+
 #: the reference request of the test: 40 propagation reports of tanh at new points
 REFERENCE = ("/v1/propagation", {"activation": "tanh", "sigma_w2": 1.3, "sigma_b2": 0.05})
 
@@ -79,6 +91,24 @@ CASES: list[tuple[str, str, dict[str, Any]]] = [
     ("simulation, depth 1000", "/v1/simulate",
      {"activation": "tanh", "sigma_w2": 1.5, "width": 20, "depth": 1000, "repetitions": 8,
       "n_pairs": 64}),
+    ("network, 1800 tanh layers, no plan", "/v1/network",
+     {"network": _stack("tanh", 1800, 1.5, 0.05), "plan": None}),
+    ("network, residual tanh with its plan", "/v1/network",
+     {"network": _residual("tanh", 550), "q0": 1.0}),
+    ("network, hard_tanh at sigma 1e4 with its plan", "/v1/network",
+     {"network": _stack("hard_tanh", 330, 1e4, 1e4)}),
+    ("network, residual formula", "/v1/network",
+     {"network": _residual(_FORMULA["formula"], 400), "plan": None, "simulate": False}),
+    ("network plan with a target", "/v1/network",
+     {"network": _residual("tanh", 50), "plan": {"target": 0.9}}),
+    ("network, simulated positions", "/v1/network",
+     {"network": {"blocks": [{"repeat": {"times": 50, "blocks": [
+         {"residual": {"branch": [{"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0}}]}},
+         {"activation": "relu"}]}}]}, "plan": None}),
+    ("shaping elu (dks), depth 1700", "/v1/shape",
+     {"activation": "elu", "depth": 1700, "method": "dks"}),
+    ("shaping gelu (tat), depth 1700", "/v1/shape", {"activation": "gelu", "depth": 1700}),
+    ("shaping a formula (tat), depth 700", "/v1/shape", {"activation": _FORMULA, "depth": 700}),
     ("phase diagram, default window", "/v1/plots/phase-diagram",
      {"activation": "hard_tanh", "n_sigma_w2": 50, "n_sigma_b2": 48, "format": "svg"}),
     ("phase diagram, wide window", "/v1/plots/phase-diagram",

@@ -1,0 +1,192 @@
+"""The computations of /v1/network and /v1/shape (issues 14 and 16), and their cost estimates.
+
+No Flask here; a mixin of :class:`propcalc_api._service.Computations`, which
+gives it the activation cache, the limits and the budget check. Every number
+comes from propcalc: :func:`propcalc.network_propagation`,
+:func:`propcalc.network_plan` and :func:`propcalc.shape_activation`, their
+``to_dict()`` passed through :func:`propcalc.jsonable`.
+
+Cost (work units, see :mod:`propcalc_api._budget`): a description is first
+counted (its distinct formula activations are compiled when it is read:
+one activation each), then validated by the engine, then estimated from
+``Network.cost`` (the engine's count of correlation-map evaluations, an upper
+bound), before any propagation runs. When the Gaussian recursion stops
+holding somewhere and the request asks for the simulation, the simulation is
+estimated from the engine's count of its multiply-adds and checked before it
+runs.
+"""
+
+from __future__ import annotations
+
+import inspect
+from collections.abc import Iterator
+from typing import Any
+
+from propcalc import (
+    Network,
+    builtin_names,
+    jsonable,
+    network,
+    network_plan,
+    network_propagation,
+    shape_activation,
+)
+from propcalc.networks import Attention, Repeat, Residual
+from propcalc.networks.propagate import SIMULATION_REPETITIONS, SIMULATION_WIDTH
+from propcalc.networks.simulate import measure_network, simulation_work
+
+from ._budget import COSTS, FORMULA_FACTOR, check_budget
+from ._fields import format_number
+
+__all__ = ["NetworkComputations", "network_estimate", "simulation_estimate", "shape_estimate",
+           "formula_activations"]
+
+#: inputs of the simulation that fills non-Gaussian positions (measure_network's default)
+SIMULATED_INPUTS = int(inspect.signature(measure_network).parameters["inputs"].default)
+
+
+def _activation_specs(blocks: Any) -> Iterator[Any]:
+    """Every activation value of a raw description (before validation; anything else skipped)."""
+    stack = [blocks]
+    while stack:
+        item = stack.pop()
+        if isinstance(item, list):
+            stack.extend(item)
+        elif isinstance(item, dict) and len(item) == 1:
+            ((kind, body),) = item.items()
+            if kind == "activation":
+                yield body
+            elif isinstance(body, dict):
+                stack.extend(body.get(k) for k in ("blocks", "branch") if k in body)
+
+
+def formula_activations(description: dict[str, Any]) -> int:
+    """Distinct typed formulas (and parametrised activations) in a raw description."""
+    names = set(builtin_names())
+    seen = set()
+    for spec in _activation_specs(description.get("blocks")):
+        if isinstance(spec, str) and spec.strip().lower().replace("-", "_") in names:
+            continue
+        seen.add(repr(spec))
+    return len(seen)
+
+
+def network_estimate(net: Network, plan: dict[str, Any] | None, formulas: bool
+                     ) -> tuple[float, float]:
+    """Estimated units of the propagation and of the plan (0 without one).
+
+    ``formulas``: the description has typed formulas (their maps cost more).
+    """
+    factor = FORMULA_FACTOR if formulas else 1.0
+    units = net.cost * factor
+    prop = COSTS["network"] + COSTS["network_unit"] * units
+    if plan is None:
+        return prop, 0.0
+    per = COSTS["network_plan_target_unit"] if plan.get("target") is not None else (
+        COSTS["network_plan_unit"])
+    return prop, COSTS["network_plan"] + per * units
+
+
+def _tokens(blocks: tuple[Any, ...]) -> int:
+    """The most tokens of any attention block (the simulation's grid is at most this)."""
+    most = 1
+    for b in blocks:
+        if isinstance(b, Attention):
+            most = max(most, b.tokens)
+        elif isinstance(b, Repeat):
+            most = max(most, _tokens(b.blocks))
+        elif isinstance(b, Residual):
+            most = max(most, _tokens(b.branch))
+    return most
+
+
+def simulation_estimate(net: Network) -> float:
+    """Estimated units of the simulation that fills the non-Gaussian positions."""
+    work = simulation_work(net, SIMULATION_WIDTH, SIMULATED_INPUTS, _tokens(net.blocks))
+    return (COSTS["network_simulation_position"] * net.n_positions * SIMULATION_REPETITIONS
+            + COSTS["network_simulation_element"] * work * SIMULATION_REPETITIONS)
+
+
+def shape_estimate(depth: int, formula: bool) -> float:
+    """Estimated units of one shaping solve at this depth."""
+    return (COSTS["shape"] + COSTS["shape_layer"] * depth) * (FORMULA_FACTOR if formula else 1.0)
+
+
+class NetworkComputations:
+    """Networks of blocks and shaped activations (mixed into Computations)."""
+
+    limits: Any
+    activation: Any
+
+    # -- networks ----------------------------------------------------------------------------
+    def _network(self, req: dict[str, Any], plan: dict[str, Any] | None) -> tuple[Network, float]:
+        """The validated network and the estimate of the work admitted so far."""
+        budget = self.limits.work_budget
+        description = req["network"]
+        formulas = formula_activations(description)
+        if formulas:
+            check_budget(COSTS["activation"] * formulas, budget,
+                         f"reading a description with {formulas} distinct activation formulas",
+                         "/network", "use fewer distinct formulas")
+        net = network(description)
+        prop, planned = network_estimate(net, plan, formulas > 0)
+        what = (f"a network of {net.n_positions} positions ({format_number(round(net.cost))} "
+                "correlation-map evaluations)")
+        if plan is not None and prop <= budget < prop + planned:
+            check_budget(prop + planned, budget, what + " with its plan", "/plan",
+                         f'send "plan": null to skip the plan (the propagation alone needs about '
+                         f"{format_number(round(prop))} units)")
+        check_budget(prop + planned, budget, what + (" with its plan" if plan else ""),
+                     "/network", "describe fewer positions")
+        return net, prop + planned
+
+    def _propagate(self, net: Network, req: dict[str, Any], admitted: float) -> Any:
+        """network_propagation, with the simulation when it is asked for and fits the budget."""
+        args = dict(q0=req["q0"], c0=req["c0"], c0_within=req["c0_within"],
+                    c0_between=req["c0_between"], seed=req["seed"])
+        result = network_propagation(net, simulate=False, **args)
+        if not req["simulate"] or result.gaussian_positions == net.n_positions:
+            return result
+        sim = simulation_estimate(net)
+        check_budget(admitted + sim, self.limits.work_budget,
+                     f"a network whose positions from {result.gaussian_positions + 1} on need a "
+                     f"finite-width simulation (width {SIMULATION_WIDTH} where none is given, "
+                     f"{SIMULATION_REPETITIONS} networks)", "/simulate",
+                     'send "simulate": false (no number where the Gaussian recursion does not '
+                     "hold), or give smaller widths")
+        return network_propagation(net, simulate=True, **args)
+
+    def network(self, req: dict[str, Any]) -> dict[str, Any]:
+        """Propagation through a network, its summary and its plan."""
+        plan = req.get("plan")
+        net, admitted = self._network(req, plan)
+        result = self._propagate(net, req, admitted)
+        planned = None
+        if plan is not None:
+            planned = network_plan(net, q0=req["q0"], c0=req["c0"], target=plan["target"],
+                                   max_gradient=plan["max_gradient"],
+                                   distribution=plan["distribution"],
+                                   convolution=plan["convolution"], q_star=plan["q_star"])
+        return jsonable({"propagation": result.to_dict(),
+                         "plan": None if planned is None else planned.to_dict()})
+
+    def network_result(self, req: dict[str, Any]) -> Any:
+        """The NetworkPropagation of a request (for the image)."""
+        net, admitted = self._network(req, None)
+        return self._propagate(net, req, admitted)
+
+    # -- shaping -----------------------------------------------------------------------------
+    def shaped(self, req: dict[str, Any], extra: float = 0.0) -> Any:
+        """The ShapedActivation of a request (``extra``: units of what follows, e.g. an image)."""
+        spec = req["activation"]
+        formula = "formula" in spec
+        check_budget(shape_estimate(req["depth"], formula) + extra, self.limits.work_budget,
+                     f"shaping an activation for depth {req['depth']}", "/depth",
+                     "ask for a smaller depth")
+        return shape_activation(self.activation(spec), req["depth"], target=req.get("target"),
+                                method=req["method"],
+                                allow_negative_slope=req["allow_negative_slope"])
+
+    def shape(self, req: dict[str, Any]) -> dict[str, Any]:
+        """An activation shaped for a target depth."""
+        return jsonable(self.shaped(req).to_dict())
