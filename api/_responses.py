@@ -156,6 +156,30 @@ class LayerInitSchema(StrictSchema):
     bias_std = num()
     value = num(allow_none=True, metadata=_d("the one number for the chosen distribution"))
 
+class ReasonSchema(StrictSchema):
+    """One reason that decides trainability: its number, pass or fail, and the fix."""
+
+    name = text()
+    quantity = text()
+    value = ext(allow_none=True)
+    limit = ext(allow_none=True)
+    passes = _r(StrictBoolean(allow_none=True, metadata=_d("null: not computed (see detail)")))
+    depth_limit = ext(allow_none=True)
+    fix = text(allow_none=True)
+    detail = text()
+
+class VerdictSchema(StrictSchema):
+    """The trainability verdict: every reason, the depth limit they set, a summary."""
+
+    trainable = _r(StrictBoolean())
+    depth = _r(JSONInteger())
+    depth_limit = ext(allow_none=True)
+    limited_by = text(allow_none=True)
+    failing = _r(fields.List(StrictString()))
+    not_computed = _r(fields.List(StrictString()))
+    summary = text()
+    reasons = _r(fields.List(fields.Nested(ReasonSchema)))
+
 class VarianceMapSchema(StrictSchema):
     """V(q), V'(q) and chi_1(q) at the requested q."""
 
@@ -418,7 +442,7 @@ class InitPlanSchema(StrictSchema):
     depth = _r(JSONInteger())
     trainable_depth = ext(allow_none=True)
     depth_ok = _r(StrictBoolean())
-    verdict = text()
+    verdict = _r(fields.Nested(VerdictSchema))
     layers = _r(fields.List(fields.Nested(LayerInitSchema)))
     propagation = _r(fields.Nested(PropagationSchema))
     notes = notes_field()

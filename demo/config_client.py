@@ -168,7 +168,7 @@ def _summary(model: str, plan: dict[str, Any]) -> str:
     text = (f"{model}: {plan['depth']} layers, sigma_w2 = {_number(plan['sigma_w2'])}, "
             f"sigma_b2 = {_number(plan['sigma_b2'])}, q* = {q}, chi_1 = {_number(p['chi_1'])}, "
             f"{p['phase']}")
-    return text + ("; OK" if plan["depth_ok"] else f"; CHECK: {plan['verdict']}")
+    return text + ("; OK" if plan["depth_ok"] else f"; CHECK: {plan['verdict']['summary']}")
 
 
 def _problem_text(status: int, body: Any) -> str:

@@ -218,7 +218,7 @@ def test_plan_human_dense():
     kv = pairs(out)
     assert kv["sigma_w2"] == fmt(plan.sigma_w2) and kv["sigma_b2"] == fmt(plan.sigma_b2)
     assert kv["phase"] == "edge of chaos"
-    assert "verdict: " + plan.verdict in out
+    assert "verdict: " + plan.verdict.summary in out
     table = out[out.index("layer  "):].splitlines()
     assert "weight std" in table[0] and "bias std" in table[0]
     # layers 2 and 3 are identical (64 -> 64) and share one row "2-3"

@@ -484,7 +484,7 @@ def test_verdict_beyond_six_xi_c_chaotic():
     assert p.xi_c == pytest.approx(xi_c, rel=1e-9)
     assert plan.trainable_depth == pytest.approx(6 * xi_c, rel=1e-9)  # Schoenholz et al. 2017
     assert not plan.depth_ok
-    v = plan.verdict
+    v = plan.verdict.summary
     assert "1000 layers exceeds" in v and f"{6 * xi_c:.0f} layers" in v
     assert "6 xi_c" in v and "chaotic" in v and "explode" in v
     assert "Schoenholz et al. 2017" in v
@@ -500,13 +500,13 @@ def test_verdict_beyond_six_xi_c_ordered():
     assert plan.propagation.phase == "ordered"
     assert plan.trainable_depth == pytest.approx(6 * xi_c, rel=1e-9)
     assert not plan.depth_ok
-    assert "10 layers exceeds" in plan.verdict and "vanish" in plan.verdict
+    assert "10 layers exceeds" in plan.verdict.summary and "vanish" in str(plan.verdict)
     assert plan.propagation.gradient_growth == pytest.approx(float(chi1) ** 10, rel=1e-8)
 
 
 def test_verdict_within_the_limit():
     plan = recommend(activation("sigmoid"), depth=2, target="variance")
-    assert plan.depth_ok and "within the predicted trainable depth" in plan.verdict
+    assert plan.depth_ok and "within the predicted trainable depth" in plan.verdict.summary
 
 
 def test_verdict_for_an_exploding_variance():
@@ -517,7 +517,7 @@ def test_verdict_for_an_exploding_variance():
     assert plan.sigma_w2 == pytest.approx(4.0, rel=1e-9)
     assert plan.propagation.phase == "unbounded variance"
     assert plan.propagation.variance_fixed_points.growth_rate == pytest.approx(2.0, rel=1e-6)
-    assert not plan.depth_ok and "explodes" in plan.verdict
+    assert not plan.depth_ok and "explodes" in plan.verdict.summary
 
 
 def test_plan_to_dict_fields():

@@ -14,6 +14,7 @@ from ..meanfield.report import Propagation
 from ..results import Result
 from ..training.learning_rate import LearningRateCeiling
 from ..variants.output_layer import OutputLayerScale
+from ..training.verdict import Verdict
 from ..vocabulary import TARGETS
 from .draw import PlanArrays, SeedLike, draw_plan
 from .layers import Layer, LayerInit
@@ -43,9 +44,14 @@ class InitPlan(Result):
     propagation : Propagation
         The report at the planned (sigma_w2, sigma_b2) for this depth.
     trainable_depth : float or None
-    verdict : str
-        The requested depth against the predicted depth limit, in words.
+    verdict : Verdict
+        Every reason that decides trainability (correlation depth or the power law at the edge,
+        gradient growth, the learning-rate ceiling, finite-width spread and drift, the output
+        layer), each with its number, pass or fail and the fix; ``str(plan.verdict)`` is its
+        summary (:mod:`propcalc.training.verdict`).
     depth_ok : bool
+        The correlation-depth reason passes (the requested depth against 6 xi_c, an attracting
+        fixed point); ``verdict.trainable`` weighs every reason.
     notes : tuple of str
     loss : str or None
         "cross_entropy" or "mse" when the plan was made for a loss, else None.
@@ -75,7 +81,7 @@ class InitPlan(Result):
     layers: tuple[LayerInit, ...]
     propagation: Propagation = field(repr=False)
     trainable_depth: float | None
-    verdict: str
+    verdict: Verdict
     depth_ok: bool
     notes: tuple[str, ...] = ()
     loss: str | None = None

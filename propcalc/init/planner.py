@@ -10,6 +10,7 @@ a gain g means ``std = g / sqrt(fan_in)``, i.e. ``sigma_w2 = g^2``.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Sequence
 from typing import Any
@@ -34,6 +35,7 @@ from ..meanfield.edge import (
 from ..meanfield.report import Propagation, propagation
 from ..meanfield.maps import second_moment, variance_map_slope
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
+from ..training.verdict import trainability
 from ..vocabulary import NEUTRAL_TOLERANCE
 from .layers import DISTRIBUTIONS, Layer, layer_init
 from .plan import MAX_DEPTH, TARGETS, InitPlan
@@ -90,28 +92,26 @@ def _pick_stable_edge(act: Activation, q_star: float | None,
     return best, notes
 
 
-def _verdict(p: Propagation, depth: int) -> tuple[str, bool]:
-    if p.phase == "unbounded variance":
-        return (f"{depth} layers: the forward signal explodes (variance grows by about "
-                f"{p.variance_fixed_points.growth_rate:.4g} per layer); not trainable as planned",
-                False)
-    if p.phase == "edge of chaos":
-        extra = f"; {p.edge_approach}" if p.edge_approach else ""
-        return (f"{depth} layers: at the edge of chaos the correlation depth scale is infinite, "
-                "so this analysis sets no depth limit (gradients neither grow nor shrink "
-                f"on average, chi_1 = 1){extra}", True)
-    limit = p.trainable_depth if p.trainable_depth is not None else 0.0
-    kind = ("gradients vanish (ordered phase)" if p.phase == "ordered"
-            else "gradients explode and nearby inputs decorrelate (chaotic phase)")
-    growth = p.gradient_growth
-    if depth <= limit:
-        return (f"{depth} layers is within the predicted trainable depth of about "
-                f"{limit:.0f} layers (6 xi_c, xi_c = {p.xi_c:.4g}; empirical rule of "
-                "Schoenholz et al. 2017)", True)
-    return (f"{depth} layers exceeds the predicted trainable depth of about {limit:.0f} "
-            f"layers (6 xi_c, xi_c = {p.xi_c:.4g}; empirical rule of Schoenholz et al. 2017): "
-            f"{kind}, squared gradient norms change by chi_1^L = {growth:.3g}; move closer "
-            "to the edge of chaos", False)
+def _with_verdict(plan: InitPlan, act: Activation, plan_layers: Sequence[Layer | None],
+                  rule: QuadratureRule) -> InitPlan:
+    """The plan with its full verdict: widths, learning rate and readout when the plan has them."""
+    dense = all(layer is not None and layer.kind == "dense" for layer in plan_layers)
+    widths = [layer.fan_out for layer in plan_layers] if dense else None  # type: ignore[union-attr]
+    missing = ("no widths given (recommend(..., widths=...))" if plan_layers[0] is None
+               else "convolutional layers: units within a channel are not independent")
+    loss = getattr(plan, "loss", None)
+    logit_variance = None
+    if loss is not None and plan.q_star is not None:
+        last = plan.layers[-1]
+        penultimate = (float(second_moment(act, plan.q_star, rule)) if plan.depth > 1
+                       else plan.propagation.q_input)
+        logit_variance = last.sigma_w2 * penultimate + last.sigma_b2
+    verdict = trainability(act, plan.propagation, plan.depth, widths=widths,
+                           widths_missing=None if dense else missing,
+                           learning_rate=getattr(plan, "learning_rate_details", None),
+                           loss=loss, n_classes=getattr(plan, "n_classes", None),
+                           logit_variance=logit_variance, rule=rule)
+    return dataclasses.replace(plan, verdict=verdict)
 
 
 def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int] | None = None,
@@ -261,13 +261,8 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
     # the first layer starts the pre-activations at q* (see below), so report from there
     q_in_eff = (q_target - sb) / sw if q_target > sb else qi
     p = propagation(act, sw, sb, depth=n, q_input=q_in_eff, rule=rule)
-    verdict, ok = _verdict(p, n)
-    reached = p.variance_fixed_points.reached
-    if (p.status == "fixed_point" and reached is not None and not reached.stable
-            and abs(reached.chi_q - 1.0) > NEUTRAL_TOLERANCE):
-        verdict += (f"; but q* = {reached.q:.4g} does not attract (chi_q = {reached.chi_q:.4g}), "
-                    "so a finite network drifts away from the planned point")
-        ok = False
+    verdict = trainability(act, p, n, rule=rule)  # completed by _with_verdict below
+    ok = bool(verdict.reasons[0].passes)
     # first layer: its inputs are data, not activations; pick sigma_w2 so that q_1 = q*
     first_sw = (q_target - sb) / qi if q_target > sb else sw
     if q_target > sb and abs(first_sw - sw) > 1e-12 * sw:
@@ -284,8 +279,9 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
             if value is not None:
                 raise InvalidParameterError(name, "absent when no loss is given (give loss=)",
                                             value if name != "inputs" else "an array")
-        return InitPlan(act.label, chosen, description, distribution, sw, sb, p.q_star, n,
-                        inits, p, p.trainable_depth, verdict, ok, tuple(notes + list(p.notes)))
+        return _with_verdict(InitPlan(act.label, chosen, description, distribution, sw, sb,
+                                      p.q_star, n, inits, p, p.trainable_depth, verdict, ok,
+                                      tuple(notes + list(p.notes))), act, plan_layers, rule)
     lp = plan_for_loss(act, plan_layers, ws if widths is not None else None,
                        [i.sigma_w2 for i in inits], [i.sigma_b2 for i in inits], qi, loss=loss,
                        n_classes=n_classes, batch_size=batch_size, momentum=momentum,
@@ -293,9 +289,10 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
                        scale_output=scale_output, rule=rule)
     inits = inits[:-1] + (layer_init(n, plan_layers[-1], lp.last_sigma_w2, lp.last_sigma_b2,
                                      distribution),)
-    return InitPlan(act.label, chosen, description, distribution, sw, sb, p.q_star, n, inits, p,
-                    p.trainable_depth, verdict, ok,
-                    tuple(notes + list(p.notes) + list(lp.notes)), loss,
-                    lp.ceiling.n_classes, lp.ceiling.batch_size,
-                    lp.ceiling.learning_rate_ceiling, lp.ceiling.learning_rate, lp.ceiling,
-                    lp.output_layer, lp.output_scale)
+    return _with_verdict(InitPlan(act.label, chosen, description, distribution, sw, sb, p.q_star,
+                                  n, inits, p, p.trainable_depth, verdict, ok,
+                                  tuple(notes + list(p.notes) + list(lp.notes)), loss,
+                                  lp.ceiling.n_classes, lp.ceiling.batch_size,
+                                  lp.ceiling.learning_rate_ceiling, lp.ceiling.learning_rate,
+                                  lp.ceiling, lp.output_layer, lp.output_scale),
+                         act, plan_layers, rule)

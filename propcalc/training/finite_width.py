@@ -160,6 +160,10 @@ class FiniteWidth(Result):
         |top_drift| and |top_typical_drift| <= DRIFT_LIMIT.
     width_needed : int
         The smallest uniform width at which all three pass (first order in 1/n).
+    depth_limit : int or None
+        The first layer l at which the spread of ln s_l or the drift of its mean or typical
+        value passes its limit at these widths (None: not within these layers). For a stack
+        that keeps the same width, the depth finite width allows.
     within_expansion : bool
         Var(s_l) / K_l^2 and the relative drift stay below 0.25 at every layer, so the maps'
         Taylor expansion holds; otherwise the numbers give the direction and rough size only.
@@ -187,6 +191,7 @@ class FiniteWidth(Result):
     gradient_ok: bool
     drift_ok: bool
     width_needed: int
+    depth_limit: int | None
     within_expansion: bool
     message: str
 
@@ -323,7 +328,8 @@ def finite_width(act: Any, sigma_w2: float, sigma_b2: float, widths: Sequence[in
     sigma_w2, sigma_b2 : float
         Every layer's initialisation.
     widths : sequence of int
-        n_0 .. n_L, the units of layers 0..L (L >= 1 transitions); each >= 2.
+        n_0 .. n_L, the units of layers 0..L (L >= 1 transitions); each >= 2 but the top one
+        (>= 1: it enters only its own sampling).
     q0 : float
         Mean square of layer 0's pre-activations (a plan's q*).
 
@@ -350,7 +356,8 @@ def finite_width(act: Any, sigma_w2: float, sigma_b2: float, widths: Sequence[in
     qi = check_positive("q0", q0)
     if isinstance(widths, (str, bytes)) or not isinstance(widths, Sequence):
         raise InvalidParameterError("widths", "a list of integers", widths)
-    ws = [check_int(f"widths[{i}]", w, 2) for i, w in enumerate(widths)]
+    ws = [check_int(f"widths[{i}]", w, 2 if i < len(widths) - 1 else 1)
+          for i, w in enumerate(widths)]
     if len(ws) < 2:
         raise InvalidParameterError("widths", "at least 2 layers (n_0 and n_1)", list(widths))
     if len(ws) > MAX_LAYERS + 1:
@@ -391,14 +398,18 @@ def finite_width(act: Any, sigma_w2: float, sigma_b2: float, widths: Sequence[in
     drift_ok = abs(top_drift) <= DRIFT_LIMIT and abs(top_typ) <= DRIFT_LIMIT
     within = max(float(np.max(rel_p)), abs(top_drift)) <= _EXPANSION_RANGE
     beta = float(np.sum(inv_n[:-1]))
+    typ_all = d / k - 0.5 * rel_p
+    over = ((np.sqrt(rel_p) > SPREAD_LIMIT) | (np.abs(d / k) > DRIFT_LIMIT)
+            | (np.abs(np.expm1(typ_all)) > DRIFT_LIMIT))
+    depth_limit = int(np.flatnonzero(over)[0]) if np.any(over) else None
     msg = _message(n_layers, ws, k[-1], math.sqrt(top_var), top_drift, top_typ,
                    math.sqrt(g_var), spread_ok, gradient_ok, drift_ok, width_needed, within)
     tup = lambda arr: tuple(float(x) for x in arr)  # noqa: E731
     return FiniteWidth(act.label, sw, sb, qi, tuple(ws), beta, tup(k), tup(q_mean), tup(q_typ),
                        tup(np.sqrt(q_var)), tup(g_mf), tup(g_typ),
                        tup(np.sqrt(real["var_g"])), math.sqrt(top_var), top_drift, top_typ,
-                       math.sqrt(g_var), spread_ok, gradient_ok, drift_ok, width_needed, within,
-                       msg)
+                       math.sqrt(g_var), spread_ok, gradient_ok, drift_ok, width_needed, depth_limit,
+                       within, msg)
 
 
 def _message(n_layers: int, ws: list[int], k_top: float, top_sd: float, drift: float,

@@ -21,6 +21,7 @@ from propcalc.meanfield.edge import CriticalPoint
 from propcalc.meanfield.report import FixedPoint, Propagation, VarianceFixedPoints
 from propcalc.meanfield.simulate import LayerMeasurement, Simulation
 from propcalc.results import Result
+from propcalc.training.verdict import Reason, Verdict
 from propcalc.variants.dropout import DropoutPropagation, DropoutSweep
 from propcalc.variants.maxout import MaxMoments, MaxoutLayer, MaxoutPropagation
 from propcalc.training.learning_rate import LearningRateCeiling
@@ -56,6 +57,8 @@ BACKED: dict[str, type[Result]] = {
     "LearningRateCeiling": LearningRateCeiling,
     "LayerMeasurement": LayerMeasurement,
     "Simulation": Simulation,
+    "Reason": Reason,
+    "Verdict": Verdict,
 }
 
 #: members the service adds to a result's body, with the reason (checked: nothing else may differ)

@@ -66,7 +66,13 @@ def _cmd_plan(args: argparse.Namespace, out: TextIO) -> int:
                                                  "gain", label[plan.distribution], "bias std"]) + "\n\n")
     if plan.loss is not None:
         _training_text(plan, out)
-    out.write(f"verdict: {plan.verdict}\n")
+    out.write(f"verdict: {plan.verdict}\n\n")
+    out.write(format_table([[r.name, "-" if r.passes is None else ("pass" if r.passes else "FAIL"),
+                             "-" if r.value is None else r.value,
+                             "-" if r.limit is None else r.limit,
+                             r.fix or (r.detail if r.passes is None else "")]
+                            for r in plan.verdict.reasons],
+                           ["reason", "result", "value", "limit", "fix"]) + "\n\n")
     for note in plan.notes:
         out.write(f"note: {note}\n")
     return EXIT_OK

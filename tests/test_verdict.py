@@ -1,0 +1,164 @@
+"""The trainability verdict (propcalc.training.verdict) and its place in recommend's plan.
+
+Sources: the issue's measured cases (issue 15: the tanh plan at 100 layers of width 128 trained;
+the GELU plan at 64 layers of width 128, q* = 14.1, lost its second moment), re-measured here in
+seeded finite-width networks (propcalc.simulate, numpy default_rng); the 6 xi_c rule and chi_1^L
+(Schoenholz et al. 2017) by mpmath; the initial cross-entropy for K = 2 classes as the closed
+expectation E[softplus(sqrt(2 s2) z)] by scipy.integrate.quad.
+"""
+
+from __future__ import annotations
+
+import math
+
+import mpmath
+import pytest
+from scipy import integrate, special, stats
+
+import propcalc as pc
+from propcalc.init.layers import Layer
+from propcalc.meanfield.simulate import simulate
+from propcalc.training.finite_width import DRIFT_LIMIT, finite_width
+from propcalc.training.verdict import REASONS, Reason, Verdict, trainability
+
+
+def test_issue_gelu_plan_flags_drift_and_spread_with_the_width_that_fixes_it():
+    plan = pc.recommend("gelu", widths=[64] + [128] * 63 + [10])
+    v = plan.verdict
+    assert isinstance(v, Verdict) and str(v) == v.summary
+    assert plan.q_star == pytest.approx(14.1, abs=0.05)
+    assert not v.trainable
+    assert {"finite-width spread", "finite-width drift"} <= set(v.failing)
+    assert v.limited_by.startswith("finite-width") and v.depth_limit < 64
+    drift = v.reason("finite-width drift")
+    fw = finite_width("gelu", plan.sigma_w2, plan.sigma_b2, [128] * 63 + [10], plan.q_star)
+    assert f"about {fw.width_needed} units" in drift.fix
+    assert "limits the depth to about" in v.summary and "not trainable" in v.summary
+    # seeded networks at width 128: the typical network's q at layer 63 is clearly below q*
+    # (issue 15 measured about a third of q* in training), and the predicted typical value lies
+    # in the +-2 SE band of the measured geometric mean (48 networks: 8.8, band 7.3-10.6)
+    sim = simulate(pc.activation("gelu"), plan.sigma_w2, plan.sigma_b2, width=128, depth=63,
+                   q0=plan.q_star, c0=1.0, repetitions=48, n_pairs=1, seed=5)
+    lo, hi = sim.layers[-1].q_geometric_band
+    same = finite_width("gelu", plan.sigma_w2, plan.sigma_b2, [128] * 64, plan.q_star)
+    assert hi < plan.q_star
+    assert lo < same.q_typical[-1] < hi
+    assert same.q_typical[-1] < (1 - DRIFT_LIMIT) * plan.q_star
+    # at the width the verdict names, the reasons pass
+    wide = pc.recommend("gelu", widths=[64] + [fw.width_needed] * 63 + [10])
+    for name in ("finite-width spread", "finite-width drift", "finite-width gradient spread"):
+        assert wide.verdict.reason(name).passes
+
+
+def test_issue_tanh_plan_at_100_layers_passes():
+    # issue 15: the plan trained at 100 layers, width 128; no reason computed here fails
+    plan = pc.recommend("tanh", widths=[64] + [128] * 99 + [10])
+    v = plan.verdict
+    assert v.trainable and not v.failing
+    assert set(v.not_computed) == {"learning rate", "output layer"}
+    spread = v.reason("finite-width spread")
+    assert spread.passes and spread.value < 0.1
+    assert "no loss given" in v.reason("learning rate").detail
+
+
+def test_reasons_in_order_and_json():
+    plan = pc.recommend("relu", widths=[16, 32, 32, 4])
+    d = pc.jsonable(plan.to_dict())
+    names = [r["name"] for r in d["verdict"]["reasons"]]
+    assert names == list(REASONS)
+    assert d["verdict"]["reasons"][0]["value"] == "inf"  # xi_c at the edge of chaos
+    assert set(d["verdict"]) == set(Verdict.dict_keys())
+    assert set(d["verdict"]["reasons"][0]) == set(Reason.dict_keys())
+
+
+def test_without_widths_finite_width_is_not_checked():
+    v = pc.recommend("relu", depth=30).verdict
+    for name in ("finite-width spread", "finite-width gradient spread", "finite-width drift"):
+        r = v.reason(name)
+        assert r.passes is None and "no widths given" in r.detail
+    assert "finite width not checked" in v.summary
+    assert v.trainable  # nothing computed fails
+
+
+def test_relu_depth_limit_from_finite_width():
+    # ReLU at the edge: the per-layer law 5/n (Hanin & Nica 2019) accumulates without bound, so
+    # finite width sets the depth limit: sd of ln s_l = sqrt(5 l / n) reaches 0.5 at l = n / 20
+    n = 100
+    v = pc.recommend("relu", widths=[n] * 41).verdict
+    assert v.limited_by in ("finite-width spread", "finite-width drift")
+    # first layer past either limit: sqrt(5 l / n) > 0.5 at l = 6, typical drift
+    # exp(-5 l / (2 n)) - 1 < -0.25 at l = 12
+    assert v.depth_limit == 6
+    assert "sets no depth limit by itself" in v.reason("correlation depth").detail
+    assert not v.trainable
+
+
+def test_ordered_and_chaotic_plans_against_mpmath():
+    # tanh, variance target: chaotic; 6 xi_c from chi_c = C'(c*) (Schoenholz et al. 2017),
+    # gradient growth chi_1^L with chi_1 = sigma_w2 E[sech^4(z)] by mpmath
+    plan = pc.recommend("tanh", depth=1000, target="variance")
+    v = plan.verdict
+    corr = v.reason("correlation depth")
+    assert not corr.passes and corr.value == pytest.approx(plan.trainable_depth)
+    sw = plan.sigma_w2
+    mpmath.mp.dps = 30
+    chi1 = sw * mpmath.quad(lambda z: mpmath.sech(z) ** 4 * mpmath.npdf(z),
+                            [-mpmath.inf, mpmath.inf])
+    g = v.reason("gradient growth")
+    assert not g.passes
+    assert g.depth_limit == pytest.approx(math.log(100) / math.log(float(chi1)), rel=1e-8)
+    assert "gradient growth" in v.failing and not v.trainable
+    assert v.depth_limit == pytest.approx(min(g.depth_limit, corr.depth_limit))
+
+
+def test_output_layer_reason_two_classes_against_quad():
+    # K = 2: the loss is softplus(l_2 - l_1), l_2 - l_1 ~ N(0, 2 s2): E by scipy.integrate.quad
+    s2 = 3.0
+    a = math.sqrt(2 * s2)
+    ref = integrate.quad(lambda z: float(special.logsumexp([0.0, a * z])) * stats.norm.pdf(z),
+                         -12, 12, points=[0.0], limit=200)[0]
+    act = pc.activation("tanh")
+    p = pc.propagation(act, 1.5, 0.05, depth=3)
+    v = trainability(act, p, 3, loss="cross_entropy", n_classes=2, logit_variance=s2)
+    r = v.reason("output layer")
+    assert r.value == pytest.approx(ref - math.log(2), rel=1e-8)
+    assert not r.passes and "sigma_w2 <=" in r.fix
+    assert r.limit == pytest.approx(0.01 * math.log(2))  # 1% of ln K (variants/output_layer)
+    ok = trainability(act, p, 3, loss="cross_entropy", n_classes=2, logit_variance=1e-4)
+    assert ok.reason("output layer").passes
+    mse = trainability(act, p, 3, loss="mse", n_classes=1, logit_variance=4.0)
+    assert mse.reason("output layer").passes is False
+
+
+def test_learning_rate_reason_reads_a_ceiling():
+    class Ceiling:  # the attributes the verdict reads from a LearningRateCeiling
+        learning_rate_ceiling = 0.02
+        learning_rate = 0.01
+        learning_rate_rule = "half the ceiling"
+        lambda_max = 100.0
+
+    act = pc.activation("tanh")
+    p = pc.propagation(act, 1.5, 0.05, depth=3)
+    v = trainability(act, p, 3, learning_rate=Ceiling())
+    r = v.reason("learning rate")
+    assert r.passes and r.value == 0.02 and "0.01" in r.detail
+    assert "below 0.02" in v.summary
+
+
+def test_convolutions_and_exploding_plans():
+    conv = pc.recommend("relu", layers=[Layer.conv(3, 16, (3, 3)), Layer.conv(16, 16, (3, 3))])
+    assert "convolutional" in conv.verdict.reason("finite-width spread").detail
+    boom = pc.recommend("gelu", widths=[32] * 20, sigma_b2=0.0)
+    assert not boom.verdict.trainable and "explodes" in boom.verdict.summary
+    assert boom.verdict.reason("finite-width spread").passes is None
+
+
+def test_cli_shows_the_reasons():
+    import io
+
+    from propcalc.cli import main
+    out = io.StringIO()
+    code = main(["plan", "gelu", "--widths", ",".join(["64"] + ["128"] * 63 + ["10"])], out)
+    text = out.getvalue()
+    assert code == 0
+    assert "finite-width drift" in text and "FAIL" in text and "widen the hidden layers" in text
