@@ -186,7 +186,7 @@ def test_bad_input():
     with pytest.raises(InvalidParameterError, match="widths"):
         finite_width("tanh", 1.0, 0.0, [128])
     with pytest.raises(InvalidParameterError, match=r"widths\[1\]"):
-        finite_width("tanh", 1.0, 0.0, [128, 1])
+        finite_width("tanh", 1.0, 0.0, [128, 1, 8])
     with pytest.raises(InvalidParameterError, match="widths"):
         finite_width("tanh", 1.0, 0.0, "128")
     with pytest.raises(InvalidParameterError, match="sigma_w2"):

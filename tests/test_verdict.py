@@ -162,3 +162,21 @@ def test_cli_shows_the_reasons():
     text = out.getvalue()
     assert code == 0
     assert "finite-width drift" in text and "FAIL" in text and "widen the hidden layers" in text
+
+
+def test_plan_for_a_loss_reads_the_ceiling_and_the_readout():
+    # recommend(..., loss=...) (issue 15's contract): the verdict reads the plan's ceiling and
+    # its readout; opting out of the readout scale brings back the issue's GELU logit variance
+    # (q* = 14.1) and an initial loss far above ln 10, which the output reason flags
+    widths = [64] + [128] * 63 + [10]
+    plan = pc.recommend("gelu", widths=widths, loss="cross_entropy", n_classes=10,
+                        batch_size=128)
+    lr = plan.verdict.reason("learning rate")
+    assert lr.passes and lr.value == plan.learning_rate_ceiling
+    assert f"{plan.learning_rate_ceiling:.3g}" in plan.verdict.summary
+    assert plan.verdict.reason("output layer").passes
+    raw = pc.recommend("gelu", widths=widths, loss="cross_entropy", n_classes=10,
+                       batch_size=128, scale_output=False)
+    out = raw.verdict.reason("output layer")
+    assert not out.passes and out.value > 3.0 and "scale the readout" in out.fix
+    assert "14.1" in out.detail
