@@ -122,6 +122,8 @@ from .networks import (
     simulate_network,
 )
 from .shaping import ShapedActivation, ShapingError, UnreachableTargetError, shape_activation
+from .training import (FiniteWidth, Reason, Verdict, finite_width, layer_fluctuations,
+                       network_verdict, trainability)
 
 __version__ = "0.1.0"
 
@@ -249,5 +251,12 @@ __all__ = [
     "measure_module",
     "plan_module",
     "read_module",
+    "FiniteWidth",
+    "Reason",
+    "Verdict",
+    "finite_width",
+    "layer_fluctuations",
+    "network_verdict",
+    "trainability",
     "__version__",
 ]

@@ -180,3 +180,41 @@ def test_plan_for_a_loss_reads_the_ceiling_and_the_readout():
     out = raw.verdict.reason("output layer")
     assert not out.passes and out.value > 3.0 and "scale the readout" in out.fix
     assert "14.1" in out.detail
+
+
+def test_network_verdict_plain_chaotic_stack():
+    # a plain tanh stack at sigma_w2 = 3 (chaotic): the same Verdict type; with inputs of mean
+    # square q* / sigma_w2 every pre-activation sits at q*, and the input/output gradient is chi_1^L (Schoenholz et al. 2017), chi_1 = sigma_w2 E[sech^4] at q*
+    # by mpmath
+    sw, depth = 3.0, 60
+    q_star = pc.propagation("tanh", sw, 0.0).q_star
+    stack = {"blocks": [{"repeat": {"times": depth, "blocks": [
+        {"dense": {"sigma_w2": sw, "sigma_b2": 0.0}}, {"activation": "tanh"}]}}]}
+    result = pc.network_propagation(pc.network(stack), q0=q_star / sw, c0=0.5)
+    v = pc.network_verdict(result)
+    assert isinstance(v, Verdict) and [r.name for r in v.reasons] == list(REASONS)
+    mpmath.mp.dps = 30
+    chi1 = sw * mpmath.quad(lambda z: mpmath.sech(mpmath.sqrt(q_star) * z) ** 4 * mpmath.npdf(z),
+                            [-mpmath.inf, mpmath.inf])
+    g = v.reason("gradient growth")
+    assert g.value == pytest.approx(float(chi1) ** depth, rel=1e-6)
+    assert not g.passes and not v.trainable
+    corr = v.reason("correlation depth")
+    assert not corr.passes and "lose their correlation" in corr.detail
+    assert v.depth_limit == corr.depth_limit < 2 * depth
+    for name in ("learning rate", "finite-width spread", "output layer"):
+        assert v.reason(name).passes is None and "plain stacks" in v.reason(name).detail
+
+
+def test_network_verdict_residual_demo_passes():
+    # the invented residual MLP of demo/networks: layer-normalised residual branches keep two
+    # inputs apart along a power law (Yang & Schoenholz 2017), gradients within a factor 100
+    import json
+    import pathlib
+
+    path = pathlib.Path(__file__).resolve().parents[1] / "demo" / "networks" / "otter-residual-mlp.json"
+    result = pc.network_propagation(pc.network(json.loads(path.read_text())), q0=1.0, c0=0.5)
+    v = pc.network_verdict(result)
+    assert v.trainable and v.reason("correlation depth").passes
+    assert "power law" in v.reason("correlation depth").detail
+    assert pc.jsonable(v.to_dict())["reasons"][2]["passes"] is None

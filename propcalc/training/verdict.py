@@ -33,6 +33,7 @@ from ..activations.base import Activation
 from ..errors import PropcalcError
 from ..meanfield.maps import second_moment
 from ..meanfield.report import Propagation
+from ..networks.propagate import NetworkPropagation
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..results import Result
 from ..variants.output_layer import initial_loss, output_layer_scale
@@ -40,7 +41,8 @@ from ..vocabulary import NEUTRAL_TOLERANCE
 from .finite_width import (DRIFT_LIMIT, GRADIENT_SPREAD_LIMIT, SPREAD_LIMIT, FiniteWidth,
                            finite_width)
 
-__all__ = ["GROWTH_LIMIT", "MSE_OUTPUT_LIMIT", "REASONS", "Reason", "Verdict", "trainability"]
+__all__ = ["GROWTH_LIMIT", "MSE_OUTPUT_LIMIT", "REASONS", "Reason", "Verdict", "network_verdict",
+           "trainability"]
 
 #: the squared gradient norm may change by at most this factor over the depth (ours, no source)
 GROWTH_LIMIT = 100.0
@@ -366,8 +368,76 @@ def _assemble(depth: int, reasons: list[Reason]) -> Verdict:
     elif depth_limit is None and reasons[0].passes:
         fwr = next(r for r in reasons if r.name == "finite-width spread")
         if fwr.passes is None:
-            parts.append("finite width not checked (give widths=)")
+            parts.append("finite width not checked (" + fwr.detail[len("not computed: "):] + ")")
     trainable = not failing
     parts.append("trainable as planned" if trainable else "not trainable as planned")
     return Verdict(trainable, depth, depth_limit, limited_by, failing, missing, "; ".join(parts),
                    tuple(reasons))
+
+
+def network_verdict(result: NetworkPropagation) -> Verdict:
+    """The same verdict for a network of blocks, from its propagation and summary.
+
+    Reasons from :attr:`NetworkPropagation.summary <propcalc.networks.NetworkSummary>`:
+    ``correlation depth`` (two inputs that merge, 1 - c <= 1e-3, or lose their correlation, the
+    power law along repeated blocks otherwise), ``gradient growth`` (the input's gradient against
+    the output's, within GROWTH_LIMIT either way). The learning-rate ceiling, the finite-width laws
+    and the output layer are computed for plain stacks (:func:`propcalc.recommend` with
+    ``widths=`` and ``loss=``); here they are "not computed" and say so (``propcalc network
+    --check`` measures a network's finite-width deviations in seeded networks).
+
+    Parameters
+    ----------
+    result : NetworkPropagation
+        From :func:`propcalc.network_propagation`.
+
+    Returns
+    -------
+    Verdict
+    """
+    s = result.summary
+    n = len(result.q) - 1
+    corr_findings = [f for f in s.findings if f.topic == "correlation"]
+    laws = [law for law in s.depth_laws if law.quantity == "1 - c"]
+    law_text = ""
+    if laws:
+        law = laws[0]
+        law_text = (f"; along the copies of {law.path} 1 - c follows a power law "
+                    f"(exponent {law.exponent:.3g}): no finite exponential depth scale"
+                    if law.law == "power" else
+                    f"; along the copies of {law.path} 1 - c changes by a factor "
+                    f"{math.exp(law.exponent):.4g} per position")
+    if corr_findings:
+        first = min(corr_findings, key=lambda f: f.position or 0)
+        corr = Reason("correlation depth", "position where two inputs merge or decorrelate",
+                      float(first.position or 0), float(n), False, float(first.position or 0),
+                      first.advice or None, first.message + law_text)
+    else:
+        cl = result.c[n]
+        corr = Reason("correlation depth", "1 - c at the output", None if cl is None else 1 - cl,
+                      s.distance, True, None, None,
+                      f"{n} positions: two inputs neither merge (1 - c <= {s.distance:g}) nor "
+                      f"lose their correlation (|c| <= {s.decorrelated:g}){law_text}")
+    g0 = s.gradient_input
+    if g0 is None or not math.isfinite(g0):
+        grow = _not_computed("gradient growth", "input gradient / output gradient",
+                             "the gradient is not known at the input (see the notes)")
+    else:
+        ok = 1.0 / GROWTH_LIMIT <= g0 <= GROWTH_LIMIT
+        advice = next((f.advice for f in s.findings if f.topic == "gradient"), "")
+        grow = Reason("gradient growth", "input gradient / output gradient (squared norms)", g0,
+                      GROWTH_LIMIT, ok, None,
+                      None if ok else (advice or "move towards the edge of chaos"),
+                      f"squared gradient norms change by a factor {g0:.3g} from the output to "
+                      f"the input over {n} positions; the limit is a factor {GROWTH_LIMIT:g} "
+                      "either way (ours, no source)")
+    plain = "computed for plain stacks: recommend(act, widths=..., loss=...)"
+    reasons = [corr, grow, _not_computed("learning rate", "ceiling 2 / lambda_max", plain)]
+    reasons += [_not_computed(name, quantity, plain + "; propcalc network --check measures a "
+                              "network's finite-width deviations in seeded networks")
+                for name, quantity in (("finite-width spread", "sd of ln q at the top"),
+                                       ("finite-width gradient spread",
+                                        "sd of ln |gradient|^2 at the bottom"),
+                                       ("finite-width drift", "relative drift of typical q"))]
+    reasons.append(_not_computed("output layer", "expected initial loss above ln K", plain))
+    return _assemble(n, reasons)
