@@ -119,12 +119,10 @@ def plan_for_loss(act: Activation, layers: Sequence[Layer | None], widths: Seque
         notes.append(f"at the hidden layers' scale the last layer would give logit variance "
                      f"{scale.current.logit_variance:.4g} and an expected initial loss "
                      f"{scale.current.excess:+.4g} nats from ln {k}")
-    logit_variance = sw[-1] * m2 + sb[-1]
     ceiling = learning_rate_ceiling(
         act, ws, sw, sb, loss=loss, batch_size=b, n_classes=k, q0=q_input,
         input_correlation=0.0 if input_correlation is None else input_correlation,
-        inputs=inputs, momentum=momentum,
-        logit_variance=logit_variance if loss == "cross_entropy" else 0.0, rule=rule)
+        inputs=inputs, momentum=momentum, rule=rule)
     notes.append(f"learning rate: ceiling {ceiling.learning_rate_ceiling:.4g} "
                  f"(2 (1 + momentum) / lambda_max, lambda_max = {ceiling.lambda_max:.4g} for "
                  f"{loss}, batch {b}, {ceiling.optimiser}); recommended "
