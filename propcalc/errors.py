@@ -53,7 +53,10 @@ class InvalidParameterError(PropcalcError, ValueError):
         self.field = field
         self.constraint = constraint
         self.value = value
-        msg = f"{field} must be {constraint}, got {_short_repr(value)}"
+        if value is None and constraint.startswith("given"):  # absent, not a value of None
+            msg = f"{field} must be {constraint}; it is missing"
+        else:
+            msg = f"{field} must be {constraint}, got {_short_repr(value)}"
         if hint:
             msg += f"; {hint}"
         super().__init__(msg)

@@ -303,7 +303,7 @@ USAGE_ERRORS = [
     (["report", "exp(x)", "-w", "1"], "exp"),        # refused formula: not finite on the range
     (["report", "tanh(", "-w", "1"], "column"),      # refused formula: syntax
     (["show"], "the following arguments are required: activation"),
-    (["plan", "tanh"], "depth must be given when neither widths nor layers are"),
+    (["plan", "tanh"], "the network's size is missing: give --depth N"),  # issue 12 section 2
     (["plan", "tanh", "--widths", "3"], "widths must be a list of at least 2 sizes, got [3]"),
     (["plan", "tanh", "--widths", "a,b"], "argument --widths: must be comma-separated integers"),
     (["plan", "tanh", "--widths", "3,-4,5"], "widths[1] must be an integer >= 1, got -4"),

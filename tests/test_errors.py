@@ -76,6 +76,14 @@ def test_values_are_shown_with_repr():
     assert str(InvalidParameterError("x", "a number", "abc")) == "x must be a number, got 'abc'"
 
 
+def test_a_missing_value_is_said_to_be_missing():
+    # issue 12 section 2: "depth must be given when neither widths nor layers are, got None"
+    # spoke the code's language; an absent value is now called missing
+    err = InvalidParameterError("depth", "given when neither widths nor layers are", None)
+    assert str(err) == "depth must be given when neither widths nor layers are; it is missing"
+    assert (err.field, err.value) == ("depth", None)
+
+
 def test_numpy_scalars_are_shown_as_plain_numbers():
     assert str(InvalidParameterError("q", "> 0", np.float64(0.0))) == "q must be > 0, got 0.0"
 

@@ -555,7 +555,7 @@ T = activation("tanh")
     (dict(depth=0), "depth", r"depth must be an integer >= 1, got 0"),
     (dict(depth=2.5), "depth", r"depth must be an integer >= 1, got 2.5"),
     (dict(depth=True), "depth", r"depth must be an integer >= 1, got True"),
-    (dict(), "depth", r"depth must be given when neither widths nor layers are, got None"),
+    (dict(), "depth", r"depth must be given when neither widths nor layers are; it is missing"),
     (dict(widths=[2, 3], layers=[Layer.dense(2, 3)]), "widths",
      r"widths must be absent when layers are given"),
     (dict(layers=[]), "layers", r"layers must be a non-empty list, got \[\]"),

@@ -11,10 +11,11 @@ from __future__ import annotations
 
 import argparse
 import math
+import re
 from collections.abc import Sequence
 from typing import Any, NoReturn
 
-from .. import Layer, activation
+from .. import Layer, activation, nearest_name
 
 __all__ = [
     "EXIT_OK",
@@ -46,6 +47,9 @@ EXIT_OK, EXIT_COMPUTATION, EXIT_USAGE = 0, 1, 2
 GRID_BOUNDS = (3, 2000)
 
 
+_INVALID_CHOICE = re.compile(r"invalid choice: '([^']*)' \(choose from (.*)\)$")
+
+
 class UsageError(Exception):
     """Bad command-line input (exit status 2)."""
 
@@ -54,7 +58,38 @@ class Parser(argparse.ArgumentParser):
     """An ArgumentParser whose errors are one-line :class:`UsageError` s (exit status 2)."""
 
     def error(self, message: str) -> NoReturn:  # one line, exit 2
+        match = _INVALID_CHOICE.search(message)
+        if match is not None:  # "invalid choice: 'varience' (choose from ...)": suggest one
+            choices = [c.strip().strip("'") for c in match.group(2).split(",")]
+            close = nearest_name(match.group(1), choices)
+            if close is not None:
+                message = message.replace(")", f"; did you mean {close}?)", 1) if \
+                    message.endswith(")") else f"{message} (did you mean {close}?)"
         raise UsageError(message)
+
+    def parse_known_args(self, args: Sequence[str] | None = None,
+                         namespace: argparse.Namespace | None = None) -> Any:
+        """Name an unknown ``--option`` first (with the nearest option), before argparse would
+        complain about a missing required one: ``report tanh --sigma_w2 1.5`` is a typo of
+        ``--sigma-w2``, not a missing ``--sigma-w2``."""
+        if args is not None and "-" in self.prefix_chars and not self._subparsers:
+            self._check_options(list(args))
+        return super().parse_known_args(args, namespace)
+
+    def _check_options(self, args: list[str]) -> None:
+        known = [o for o in self._option_string_actions if o.startswith("--")]
+        for token in args:
+            if token == "--":
+                break
+            if not token.startswith("--") or len(token) < 3:
+                continue
+            name = token.split("=", 1)[0]
+            if name in self._option_string_actions or any(o.startswith(name) for o in known):
+                continue  # an option or an unambiguous prefix of one (argparse's abbreviations)
+            close = nearest_name(name[2:], [o[2:] for o in known])
+            hint = f" (did you mean --{close}?)" if close is not None else ""
+            raise UsageError(f"unrecognized arguments: {name}{hint}; see propcalc "
+                             f"{self.prog.split()[-1]} --help")
 
 
 def activation_params(items: Sequence[str] | None) -> dict[str, float]:
@@ -83,31 +118,50 @@ def finite_float(text: str) -> float:
     return value
 
 
+def _items(text: str, what: str) -> list[str]:
+    """The comma-separated items of ``text``, each stripped; an empty item, or one holding
+    spaces (``"48 512 6"`` is not 485126), is refused with its position. ``what`` says what
+    the list must be (``"comma-separated integers like 784,512,10"``)."""
+    items = [t.strip() for t in text.split(",")]
+    if not any(items):
+        raise argparse.ArgumentTypeError(f"must be at least one number ({what}), got {text!r}")
+    for i, item in enumerate(items, 1):
+        if not item:
+            raise argparse.ArgumentTypeError(
+                f"must be {what}: item {i} of {text!r} is empty")
+        if any(ch.isspace() for ch in item):
+            raise argparse.ArgumentTypeError(
+                f"must be {what}: item {i} of {text!r} holds a space (is a comma missing?)")
+    return items
+
+
 def int_list(text: str) -> list[int]:
-    try:
-        values = [int(t) for t in text.replace(" ", "").split(",") if t]
-    except ValueError:
-        raise argparse.ArgumentTypeError(
-            f"must be comma-separated integers like 784,512,10, got {text!r}") from None
+    """Comma-separated integers (``784,512,10``); a bad item is named by its position."""
+    what = "comma-separated integers like 784,512,10"
+    values = []
+    for i, item in enumerate(_items(text, what), 1):
+        try:
+            values.append(int(item))
+        except ValueError:
+            raise argparse.ArgumentTypeError(
+                f"must be {what}: item {i} of {text!r} is {item!r}") from None
     return values
 
 
 def finite_list(text: str) -> list[float]:
-    """Comma-separated finite numbers (at least one)."""
+    """Comma-separated finite numbers (at least one); a bad item is named by its position."""
+    what = "comma-separated numbers like 0.5,1,2"
     values = []
-    for t in text.replace(" ", "").split(","):
-        if not t:
-            continue
+    for i, item in enumerate(_items(text, what), 1):
         try:
-            v = float(t)
+            v = float(item)
         except ValueError:
             raise argparse.ArgumentTypeError(
-                f"must be comma-separated numbers like 0.5,1,2, got {text!r}") from None
+                f"must be {what}: item {i} of {text!r} is {item!r}") from None
         if not math.isfinite(v):
-            raise argparse.ArgumentTypeError(f"must be finite numbers, got {t!r}")
+            raise argparse.ArgumentTypeError(
+                f"must be finite numbers: item {i} of {text!r} is {item!r}")
         values.append(v)
-    if not values:
-        raise argparse.ArgumentTypeError(f"must be at least one number like 0.5,1,2, got {text!r}")
     return values
 
 
@@ -138,11 +192,10 @@ def window(low: str) -> Any:
 
 def grid_size(text: str) -> tuple[int, int]:
     """'N' (N x N points) or 'NW,NB', each in [3, 2000]."""
-    parts = text.replace(" ", "").split(",")
     lo, hi = GRID_BOUNDS
     try:
-        values = [int(t) for t in parts]
-    except ValueError:
+        values = int_list(text)
+    except argparse.ArgumentTypeError:
         values = []
     if len(values) not in (1, 2) or not all(lo <= v <= hi for v in values):
         raise argparse.ArgumentTypeError(

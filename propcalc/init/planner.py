@@ -221,6 +221,15 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
 
     notes: list[str] = []
     chosen = "bias" if (target == "auto" and sigma_b2 is not None) else target
+    # every option takes effect or is refused (issue 12 section 2): none is dropped silently
+    if chosen == "variance" and sigma_b2 is not None:
+        raise InvalidParameterError("sigma_b2", "absent for target 'variance' (that target plans "
+                                    "sigma_b2 = 0; use target 'bias' to fix sigma_b2)", sigma_b2)
+    if chosen in ("variance", "bias") and q_star is not None:
+        why = ("plans q* = 1" if chosen == "variance"
+               else "takes q* from the sigma_b2 given")
+        raise InvalidParameterError("q_star", f"absent for target '{chosen}' (that target {why}; "
+                                    "use target 'edge' to choose q*)", q_star)
     cp: CriticalPoint | None = None
     if chosen == "bias":
         if sigma_b2 is None:

@@ -22,6 +22,9 @@ __all__ = ["register"]
 
 
 def _cmd_plan(args: argparse.Namespace, out: TextIO) -> int:
+    if args.depth is None and args.widths is None and not args.conv:
+        raise UsageError("the network's size is missing: give --depth N, --widths d0,d1,...,dL "
+                         "or --conv IN:OUT:KERNEL (repeatable)")
     act = activation_of(args)
     layers = [conv_layer(spec) for spec in args.conv] if args.conv else None
     training = {}
@@ -107,8 +110,17 @@ def register(sub: Any) -> None:
     p.add_argument("--conv", action="append", metavar="IN:OUT:KERNEL",
                    help="a convolution layer, e.g. 64:128:3x3 (2-D) or 16:32:5 (1-D); repeatable")
     p.add_argument("--distribution", default="normal",
-                   choices=["normal", "uniform", "truncated_normal", "orthogonal"])
-    p.add_argument("--target", default="auto", choices=["auto", "edge", "variance", "bias"])
+                   choices=["normal", "uniform", "truncated_normal", "orthogonal"],
+                   help="the law the weights are drawn from; the plan gives its one scale: the "
+                        "std (normal), the bound a of U(-a, a) (uniform), the std before the cut "
+                        "at 2 std (truncated_normal) or the multiplier of an orthogonal matrix "
+                        "(default normal)")
+    p.add_argument("--target", default="auto", choices=["auto", "edge", "variance", "bias"],
+                   help="what the plan aims at: edge (edge of chaos at an attracting q*, "
+                        "--q-star picks it), variance (sigma_b2 = 0 and q* = 1 kept, the "
+                        "forward gain), bias (edge of chaos at the --sigma-b2 given); auto "
+                        "(default): bias if --sigma-b2 is given, else edge, falling back to "
+                        "variance")
     p.add_argument("--sigma-b2", type=finite_float, help="fix the bias variance (target 'bias')")
     p.add_argument("--q-star", type=finite_float, help="preferred variance fixed point on the edge")
     p.add_argument("--q-input", type=finite_float, default=1.0, help="mean square of the inputs (default 1)")

@@ -1,0 +1,109 @@
+"""Input the command line used to misread or ignore (issue 12, section 2).
+
+Each case is the issue's failing input; the expected behaviour is the issue's ("refuse both with
+the position of the bad item", "every option either takes effect or is refused", "names the
+unknown option", "help text for every option"). The wording of the messages is common practice,
+no source.
+"""
+
+from __future__ import annotations
+
+import argparse
+
+import pytest
+
+from propcalc.cli.program import build_parser
+
+from cli_helpers import run
+
+
+@pytest.mark.parametrize("text, message", [
+    # read as 485126 before
+    ("48 512 6", "--widths: must be comma-separated integers like 784,512,10: item 1 of "
+                 "'48 512 6' holds a space (is a comma missing?)"),
+    # the empty item was dropped before
+    ("48,512,,6", "item 3 of '48,512,,6' is empty"),
+    ("48,512,6,", "item 4 of '48,512,6,' is empty"),
+    ("48,x,6", "item 2 of '48,x,6' is 'x'"),
+])
+def test_widths_with_a_bad_item_are_refused_with_its_position(text: str, message: str) -> None:
+    code, out, err = run("plan", "tanh", "--widths", text)
+    assert code == 2 and out == ""
+    assert err.startswith("propcalc: error: argument --widths: ") and message in err
+
+
+def test_widths_with_spaces_around_commas_are_read() -> None:
+    code, out, _ = run("plan", "tanh", "--widths", "48, 512 ,6", "--json")
+    assert code == 0 and '"depth": 2' in out
+
+
+@pytest.mark.parametrize("argv, message", [
+    (["edge", "tanh", "--q-star", "1 2"], "--q-star: must be comma-separated numbers like 0.5,1,2: item 1 of '1 2' holds a space"),
+    (["edge", "tanh", "--q-star", "1,,2"], "item 2 of '1,,2' is empty"),
+    (["dropout", "tanh", "-w", "1.5", "--keep-rate", "0.9,nan"],
+     "--keep-rate: must be finite numbers: item 2 of '0.9,nan' is 'nan'"),
+    (["phase", "tanh", "--plot", "x.png", "--grid", "8 1"],  # read as 81 x 81 before
+     "--grid: must be N or NW,NB (points along sigma_w2 and sigma_b2), each in [3, 2000], "
+     "got '8 1'"),
+])
+def test_every_comma_list_refuses_blanks_and_empty_items(argv: list[str], message: str) -> None:
+    code, _, err = run(*argv)
+    assert code == 2 and message in err
+
+
+@pytest.mark.parametrize("argv, message", [
+    # said "-w/--sigma-w2 required" before
+    (["report", "tanh", "--sigma_w2", "1.5"],
+     "unrecognized arguments: --sigma_w2 (did you mean --sigma-w2?); see propcalc report "
+     "--help"),
+    (["report", "tanh", "-w", "1", "--qinput", "2"], "--qinput (did you mean --q-input?)"),
+    (["plan", "tanh", "--depth", "3", "--zzz"], "unrecognized arguments: --zzz; see propcalc plan --help"),
+    (["plann", "tanh"], "did you mean plan?"),
+    (["plan", "tanh", "--depth", "3", "--target", "varience"], "did you mean variance?"),
+])
+def test_unknown_options_and_choices_are_named_with_the_nearest(argv: list[str],
+                                                                  message: str) -> None:
+    code, out, err = run(*argv)
+    assert code == 2 and out == "" and message in err
+
+
+def test_option_prefixes_still_work() -> None:
+    code, out, _ = run("report", "tanh", "--sigma-w", "1.5", "--json")  # argparse abbreviation
+    assert code == 0 and '"sigma_w2": 1.5' in out
+
+
+def test_a_plan_without_a_size_says_what_to_give() -> None:
+    # "depth must be given when neither widths nor layers are, got None" before
+    code, _, err = run("plan", "tanh")
+    assert code == 2
+    assert err == ("propcalc: error: the network's size is missing: give --depth N, --widths "
+                   "d0,d1,...,dL or --conv IN:OUT:KERNEL (repeatable)\n")
+
+
+@pytest.mark.parametrize("argv, message", [
+    # printed sigma_b2 = 0 before (the bias variance given was ignored)
+    (["plan", "tanh", "--depth", "5", "--target", "variance", "--sigma-b2", "0.1"],
+     "sigma_b2 must be absent for target 'variance' (that target plans sigma_b2 = 0; use "
+     "target 'bias' to fix sigma_b2), got 0.1"),
+    (["plan", "tanh", "--depth", "5", "--target", "variance", "--q-star", "2"],
+     "q_star must be absent for target 'variance'"),
+    (["plan", "tanh", "--depth", "5", "--sigma-b2", "0.1", "--q-star", "2"],
+     "q_star must be absent for target 'bias' (that target takes q* from the sigma_b2 given"),
+])
+def test_plan_options_that_would_be_ignored_are_refused(argv: list[str], message: str) -> None:
+    code, out, err = run(*argv)
+    assert code == 2 and out == "" and message in err
+
+
+def test_every_option_of_every_command_has_help_text() -> None:
+    parser = build_parser()
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction))
+    missing = [f"{name} {a.option_strings or a.dest}"
+               for name, p in sub.choices.items() for a in p._actions
+               if a.help is None and "-" in p.prefix_chars]
+    assert missing == []
+
+
+def test_version() -> None:
+    code, out, _ = run("--version")
+    assert code == 0 and out.startswith("propcalc ")
