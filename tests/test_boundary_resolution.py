@@ -25,6 +25,7 @@ import propcalc
 from propcalc.errors import ActivationTypeError, PropcalcError
 
 _PLAN = propcalc.recommend("tanh", 5)
+_REPORT = propcalc.propagation("tanh", 1.5, 0.1)
 
 #: every public function of ``propcalc`` with an activation argument, called cheaply;
 #: the argument's name as the error must spell it
@@ -62,6 +63,9 @@ CALLS: dict[str, tuple[str, Callable[[Any], Any]]] = {
     "sample_jacobian_spectrum": ("act", lambda a: propcalc.sample_jacobian_spectrum(
         a, 3, width=20, repetitions=2)),
     "shape_activation": ("act", lambda a: propcalc.shape_activation(a, 10)),
+    "finite_width": ("act", lambda a: propcalc.finite_width(a, 1.5, 0.1, [64] * 5)),
+    "trainability": ("act", lambda a: propcalc.trainability(a, _REPORT, 5)),
+    "layer_fluctuations": ("act", lambda a: propcalc.layer_fluctuations(a, [0.5, 1.0], 1.5)),
 }
 
 #: public functions whose activation argument is named otherwise, or that take none

@@ -30,6 +30,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from ..activations.base import Activation
+from ..activations.resolver import resolve
 from ..errors import PropcalcError
 from ..meanfield.maps import second_moment
 from ..meanfield.report import Propagation
@@ -291,7 +292,7 @@ def _output(loss: str | None, n_classes: int | None, logit_variance: float | Non
                   "common practice, no source)")
 
 
-def trainability(act: Activation, propagation: Propagation, depth: int, *,
+def trainability(act: Activation | str, propagation: Propagation, depth: int, *,
                  widths: Sequence[int] | None = None, widths_missing: str | None = None,
                  learning_rate: Any = None, loss: str | None = None,
                  n_classes: int | None = None, logit_variance: float | None = None,
@@ -301,7 +302,8 @@ def trainability(act: Activation, propagation: Propagation, depth: int, *,
 
     Parameters
     ----------
-    act : Activation
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
     propagation : Propagation
         The mean-field report at the planned point, for this depth.
     depth : int
@@ -325,6 +327,7 @@ def trainability(act: Activation, propagation: Propagation, depth: int, *,
     -------
     Verdict
     """
+    act = resolve(act)
     reasons = [_correlation(propagation, depth), _growth(propagation, depth),
                _learning_rate(learning_rate)]
     fw: FiniteWidth | None = None
