@@ -162,3 +162,23 @@ def test_the_shaped_network_description_through_propcalc_network(monkeypatch):
     prop = strict_json(out)["propagation"]
     assert prop["c"][-1] == pytest.approx(0.8, abs=1e-10)
     assert prop["q"][-1] == pytest.approx(1.0, rel=1e-10)
+
+
+def test_deep_pictures_sample_c0_more_coarsely(tmp_path, monkeypatch):
+    pytest.importorskip("matplotlib")
+    from propcalc.output import shaping_plot
+
+    seen = {}
+    real = shaping_plot.plot_shaping
+
+    def spy(shaped, **kwargs):
+        seen.update(kwargs)
+        return real(shaped, **kwargs)
+
+    monkeypatch.setattr(shaping_plot, "plot_shaping", spy)
+    code, out, err = run("shape", "relu", "--depth", "2000", "--plot", str(tmp_path / "d.png"))
+    assert code == 0, err
+    assert seen == {"n_points": 50}  # 101 samples up to 1000 layers, 101000 / depth beyond
+    code, out, err = run("shape", "relu", "--depth", "40", "--plot", str(tmp_path / "s.png"))
+    assert code == 0, err
+    assert seen == {"n_points": 101}
