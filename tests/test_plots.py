@@ -8,6 +8,8 @@ figures' numbers come from the sweep and the maps, which have their own tests.
 from __future__ import annotations
 
 import io
+import re
+import struct
 import subprocess
 import sys
 import warnings
@@ -31,6 +33,9 @@ from propcalc.output.plots import (  # noqa: E402
     save_figure,
 )
 from propcalc.meanfield.sweep import sweep  # noqa: E402
+from propcalc.numerics.quadrature import DEFAULT_RULE  # noqa: E402
+from propcalc.output.phase_plot import edge_line_parts  # noqa: E402
+from propcalc.output.phase_regions import locate_regions  # noqa: E402
 
 TANH = propcalc.activation("tanh")
 SMALL = dict(n_grid=(9, 7))
@@ -175,3 +180,196 @@ def test_no_pyplot_state_is_used():
             "save_figure(plot_variance_map(propcalc.activation('tanh'), (1.5, 0.05)), None, 'png');"
             "assert 'matplotlib.pyplot' not in sys.modules")
     subprocess.run([sys.executable, "-c", code], check=True, timeout=120)
+
+
+# ---------------------------------------------------------------------------------------------
+# issue 12 section 3: pictures that mislead
+# ---------------------------------------------------------------------------------------------
+def png_size(data: bytes) -> tuple[int, int]:
+    """Width and height from the IHDR chunk (PNG specification, ISO/IEC 15948:2004, 11.2.2)."""
+    return struct.unpack(">II", data[16:24])
+
+
+def legend_texts(fig: Figure) -> list[str]:
+    """The legend's entries, each on one line (long ones are wrapped in the figure)."""
+    legends = fig.legends or [ax.get_legend() for ax in fig.axes if ax.get_legend()]
+    return [" ".join(t.get_text().split()) for lg in legends for t in lg.get_texts()]
+
+
+def renderer_of(fig: Figure):
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    return FigureCanvasAgg(fig).get_renderer()
+
+
+SHAPES = ["tanh", "relu", "gelu", "hard_tanh", "x * tanh(softplus(x))", "sin(x) + x"]
+POINTS = {"tanh": (1.5, 0.05), "relu": (2.0, 0.0), "gelu": (1.8, 0.1), "hard_tanh": (1.3, 0.02),
+          "x * tanh(softplus(x))": (1.8, 0.05), "sin(x) + x": (0.8, 0.05)}
+KINDS = {
+    "phase_diagram": (lambda a, p: plot_phase_diagram(a, p, depth=50, n_grid=(15, 11)), (720, 520)),
+    "variance_map": (lambda a, p: plot_variance_map(a, p), (640, 520)),
+    "correlation_map": (lambda a, p: plot_correlation_map(a, p, n_points=15), (640, 520)),
+    "depth_scales": (lambda a, p: plot_depth_scales(a, p, n_points=21, depth=50), (720, 520)),
+}
+
+
+@pytest.mark.parametrize("kind", list(KINDS))
+@pytest.mark.parametrize("name", SHAPES)
+def test_every_kind_for_six_activations_size_determinism_no_warnings(kind, name):
+    make, size = KINDS[kind]
+    act = propcalc.activation(name)
+    fig, out = render_twice(lambda: make(act, POINTS[name]))
+    assert png_size(out["png"]) == size  # figsize x 100 dpi
+    texts = legend_texts(fig)
+    assert not [t for t in texts if re.search(r"= -(\s|,|\)|$)", t)]  # no bare "-" for a value
+
+
+def _first_crossing(row: np.ndarray, x: np.ndarray) -> float:
+    """Where a signed field first changes sign along a row (linear interpolation, as contourf)."""
+    k = int(np.flatnonzero(np.sign(row[:-1]) != np.sign(row[1:]))[0])
+    return float(x[k] + row[k] / (row[k] - row[k + 1]) * (x[k + 1] - x[k]))
+
+
+def test_relu_boundary_at_two_from_bisection_not_the_grid():
+    # ReLU: V(q) = sigma_w2 q / 2 + sigma_b2 (Cho & Saul 2009 arc-cosine kernel of degree 1), so
+    # with sigma_b2 > 0 the variance is bounded exactly when sigma_w2 < 2 (He et al. 2015).
+    relu = propcalc.activation("relu")
+    sw, sb = np.linspace(0.1, 4.0, 81), np.linspace(0.0, 0.5, 61)  # no node at sigma_w2 = 2
+    res = sweep(relu, sw, sb, progress=False)
+    reg = locate_regions(relu, sw, sb, res.phase[0], 1.0, DEFAULT_RULE)
+    cell = sw[1] - sw[0]
+    for j in range(1, sb.size):
+        assert _first_crossing(reg.unbounded[:, j], sw) == pytest.approx(2.0, abs=cell / 100)
+    # no one-cell "ordered" strip beside it: the ordered region ends where the unbounded begins
+    for j in range(1, sb.size):
+        assert _first_crossing(-reg.ordered[:, j], sw) == pytest.approx(2.0, abs=cell / 100)
+    fig = plot_phase_diagram(relu, result=res)
+    labels = legend_texts(fig)
+    assert not any(t.startswith("chaotic") for t in labels)  # no chaotic region is drawn
+    assert "variance grows without bound" in labels
+
+
+def test_gelu_unbounded_boundary_is_the_computed_line():
+    # Below the edge line the boundary of the unbounded region is where the first layer's
+    # variance q_1 = sigma_w2 q_input + sigma_b2 meets the repelling fixed point q_r: both
+    # V(q_r) = q_r and q_1 = q_r give E[gelu(sqrt(q_r) z)^2] = q_input, so the boundary is the
+    # straight line sigma_b2 = q_r - sigma_w2 q_input (Poole et al. 2016, eq. 3). q_r from
+    # scipy.integrate.quad and brentq, independent of the package's quadrature.
+    from scipy import integrate, optimize, special
+
+    def m2(q):
+        f = lambda z: (np.sqrt(q) * z * 0.5 * (1 + special.erf(np.sqrt(q) * z / np.sqrt(2)))) ** 2 \
+            * np.exp(-z * z / 2) / np.sqrt(2 * np.pi)
+        return integrate.quad(f, -np.inf, np.inf, epsabs=1e-13, epsrel=1e-13)[0]
+
+    q_r = optimize.brentq(lambda q: m2(q) - 1.0, 1.0, 10.0, xtol=1e-14)
+    gelu = propcalc.activation("gelu")
+    sw, sb = np.linspace(1.5, 2.5, 21), np.linspace(0.0, 0.12, 13)
+    res = sweep(gelu, sw, sb, progress=False)
+    reg = locate_regions(gelu, sw, sb, res.phase[0], 1.0, DEFAULT_RULE)
+    pts = np.concatenate(reg.unbounded_boundary)
+    low = pts[pts[:, 1] < 0.1]
+    assert low.shape[0] > 10
+    np.testing.assert_allclose(low[:, 1], q_r - low[:, 0], atol=(sw[1] - sw[0]) / 200)
+
+
+def test_gelu_edge_line_is_solid_only_where_it_is_the_edge():
+    # chi_1 = 1 at the fixed point reached (Schoenholz et al. 2017, eq. 8) on the solid part;
+    # chi_q = V'(q*) > 1 (the fixed point repels) on the dotted part: checked point by point
+    # with the single-point report.
+    gelu = propcalc.activation("gelu")
+    parts = edge_line_parts(gelu, 1.0, DEFAULT_RULE)
+    x, y = parts["reached"]
+    ok = np.isfinite(x)
+    inner = ok & np.roll(ok, 1) & np.roll(ok, -1)  # piece ends are shared with the neighbours
+    inner[[0, -1]] = False
+    for k in np.flatnonzero(inner)[::80]:
+        # within the tolerance of the line's own rounding (sigma_b2 = q* - sigma_w2 E[phi^2])
+        assert propcalc.propagation(gelu, x[k], y[k]).chi_1 == pytest.approx(1.0, abs=1e-6)
+    x, y = parts["repelling"]
+    ok = np.flatnonzero(np.isfinite(x) & (y > 1e-3))
+    assert ok.size > 10
+    for k in ok[1:-1:40]:  # the ends are shared with the neighbouring pieces
+        p = propcalc.propagation(gelu, x[k], y[k])
+        assert p.phase != "edge of chaos"
+        # the variance goes elsewhere: unbounded, or to a fixed point other than the line's
+        assert p.q_star is None or abs(p.chi_1 - 1.0) > 1e-6
+    fig = plot_phase_diagram(gelu, n_grid=(15, 11))
+    labels = legend_texts(fig)
+    assert "chi_1 = 1 at a repelling q* (never reached)" in labels
+    styles = {ln.get_linestyle() for ln in fig.axes[0].get_lines() if ln.get_color() == "0.25"}
+    assert styles == {":"}
+
+
+def _overlaps(boxes) -> list[tuple[int, int]]:
+    return [(i, j) for i in range(len(boxes)) for j in range(i + 1, len(boxes))
+            if boxes[i].overlaps(boxes[j])]
+
+
+@pytest.mark.parametrize("name", ["tanh", "relu", "gelu"])
+def test_contour_labels_do_not_overlap_and_titles_fit(name):
+    act = propcalc.activation(name)
+    fig = plot_phase_diagram(act, POINTS[name], depth=50, n_grid=(41, 31))
+    renderer = renderer_of(fig)
+    ax = fig.axes[0]
+    labels = [t for t in ax.texts if t.get_text()]
+    assert labels  # some contours are labelled
+    boxes = [t.get_window_extent(renderer) for t in labels]
+    assert _overlaps(boxes) == []
+    title = ax.title.get_window_extent(renderer)
+    assert title.x0 >= 0 and title.x1 <= fig.bbox.x1 and title.y1 <= fig.bbox.y1
+
+
+def test_long_formula_titles_are_wrapped_inside_the_figure():
+    act = propcalc.activation("x * tanh(softplus(x)) + 0.001 * sin(x) * cos(x) + 0.0001 * x ** 3")
+    for fig in (plot_variance_map(act, (1.5, 0.05)),
+                plot_depth_scales(act, (1.5, 0.05), n_points=11)):
+        renderer = renderer_of(fig)
+        title = fig.axes[0].title
+        assert "\n" in title.get_text()
+        box = title.get_window_extent(renderer)
+        assert box.x0 >= 0 and box.x1 <= fig.bbox.x1 and box.y1 <= fig.bbox.y1
+
+
+def test_xi_c_is_said_in_words():
+    relu = propcalc.activation("relu")
+    fig = plot_phase_diagram(relu, (3.0, 0.1), n_grid=(7, 5))
+    assert any("no xi_c (the variance grows without bound)" in t for t in legend_texts(fig))
+    fig = plot_phase_diagram(relu, (2.0, 0.0), n_grid=(7, 5))
+    assert any("xi_c infinite" in t for t in legend_texts(fig))
+
+
+def test_depth_scales_marks_only_the_reached_critical_point():
+    # gelu at sigma_b2 = 0.1: chi_1 = 1 at sigma_w2 = 2.077 on a q* the variance from q_input = 1
+    # does not reach (it grows without bound there): no dashed edge line, a dotted grey one
+    gelu = propcalc.activation("gelu")
+    fig = plot_depth_scales(gelu, sigma_b2=0.1, n_points=21)
+    ax = fig.axes[0]
+    assert [ln for ln in ax.get_lines() if ln.get_color() == "#111111"] == []  # no edge line
+    dotted = [ln for ln in ax.get_lines() if ln.get_color() == "0.4"]
+    (cp,) = [c for c in propcalc.edge_of_chaos_at_bias(gelu, 0.1) if c.valid]
+    assert dotted and dotted[0].get_xdata()[0] == pytest.approx(cp.sigma_w2, rel=1e-12)
+    assert any("is never reached" in t for t in legend_texts(fig))
+    # the curves run up to the band where the variance grows without bound
+    xs = ax.get_lines()[0].get_xdata()
+    ys = ax.get_lines()[0].get_ydata()
+    last = float(np.max(np.asarray(xs)[np.isfinite(ys)]))
+    band = min(p.get_x() if hasattr(p, "get_x") else p.get_xy()[0][0] for p in ax.patches)
+    assert 0.0 <= band - last < 1e-3
+
+
+def test_map_on_the_identity_is_magnified():
+    relu = propcalc.activation("relu")
+    # V(q) = q + 1e-3 (ReLU at sigma_w2 = 2; Cho & Saul 2009): invisible at the scale of q
+    fig = plot_variance_map(relu, (2.0, 1e-3))
+    assert len(fig.axes) == 2
+    low = fig.axes[1]
+    np.testing.assert_allclose(low.get_lines()[1].get_ydata(), 1e-3, rtol=1e-9)
+    assert "V(q) - q magnified" in low.get_title(loc="left")
+    # V(q) = q exactly: said in words
+    fig = plot_variance_map(relu, (2.0, 0.0))
+    assert "within rounding" in fig.axes[1].get_title(loc="left")
+    # a map far from the identity keeps one panel
+    assert len(plot_variance_map(TANH, (1.5, 0.05)).axes) == 1
+    # C(c) within a hair of c: tanh just above sigma_w2 = 1 with sigma_b2 = 0 (q* small)
+    fig = plot_correlation_map(TANH, (1.0005, 0.0), n_points=15)
+    assert len(fig.axes) == 2 and "C(c) - c" in fig.axes[1].get_ylabel()
