@@ -33,6 +33,7 @@ from propcalc.shaping.solve import METHODS as SHAPING_METHODS
 
 from ._config import PLAN_Q_INPUT_MIN, Q_STAR_MAX, Q_STAR_MIN, SEED_MAX, VARIANCE_MAX, Limits
 from ._fields import Choice, FiniteNumber, Interval, JSONInteger, StrictBoolean
+from ._responses import VerdictSchema
 from ._result_schemas import result_schema
 
 __all__ = ["build_network_schemas", "network_components", "NetworkField", "DESCRIPTION_COMPONENT",
@@ -211,11 +212,13 @@ def build_network_schemas(limits: Limits, strict: type[Schema],
             f"samples of c_0 in [0, 1] (default {default})"))
 
     class NetworkAnalysisSchema(strict):
-        """The propagation through a network (per position q, c, gradient; summary) and its plan."""
+        """The propagation through a network (per position q, c, gradient; summary), its plan, verdict."""
 
         propagation = fields.Nested(result_schema(NetworkPropagation), required=True)
         plan = fields.Nested(result_schema(NetworkPlan), required=True, allow_none=True,
                              metadata=d("null when the request's plan is null"))
+        verdict = fields.Nested(VerdictSchema, required=True, metadata=d(
+            "the trainability verdict (propcalc.network_verdict): the reasons that decide it"))
 
     return {
         "NetworkRequestSchema": NetworkRequestSchema,

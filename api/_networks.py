@@ -29,6 +29,7 @@ from propcalc import (
     network,
     network_plan,
     network_propagation,
+    network_verdict,
     shape_activation,
 )
 from propcalc.networks import Attention, Repeat, Residual
@@ -168,7 +169,8 @@ class NetworkComputations:
                                    distribution=plan["distribution"],
                                    convolution=plan["convolution"], q_star=plan["q_star"])
         return jsonable({"propagation": result.to_dict(),
-                         "plan": None if planned is None else planned.to_dict()})
+                         "plan": None if planned is None else planned.to_dict(),
+                         "verdict": network_verdict(result).to_dict()})
 
     def network_result(self, req: dict[str, Any]) -> Any:
         """The NetworkPropagation of a request (for the image)."""

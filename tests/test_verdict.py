@@ -218,3 +218,39 @@ def test_network_verdict_residual_demo_passes():
     assert v.trainable and v.reason("correlation depth").passes
     assert "power law" in v.reason("correlation depth").detail
     assert pc.jsonable(v.to_dict())["reasons"][2]["passes"] is None
+
+
+def test_network_verdict_in_the_cli_and_the_service():
+    # the same structure in the CLI's JSON and text, and in POST /v1/network
+    import io
+    import json
+    import pathlib
+
+    from propcalc.cli import main
+    from propcalc_api import create_app
+
+    path = pathlib.Path(__file__).resolve().parents[1] / "demo" / "networks" / "otter-residual-mlp.json"
+    out = io.StringIO()
+    assert main(["network", str(path), "--json", "--no-plan"], out) == 0
+    doc = json.loads(out.getvalue())
+    want = pc.jsonable(pc.network_verdict(pc.network_propagation(
+        pc.network(json.loads(path.read_text())))).to_dict())
+    assert doc["verdict"] == want
+    text = io.StringIO()
+    assert main(["network", str(path), "--no-plan"], text) == 0
+    assert "verdict: " in text.getvalue() and "trainable as planned" in text.getvalue()
+    client = create_app({"TESTING": True}).test_client()
+    resp = client.post("/v1/network", json={"network": json.loads(path.read_text()),
+                                            "plan": None})
+    assert resp.status_code == 200, resp.get_json()
+    assert resp.get_json()["verdict"] == want
+    # both responses agree with the service's OpenAPI document (jsonschema, draft 2020-12)
+    import jsonschema
+
+    doc = client.get("/openapi.json").get_json()
+    plan = client.post("/v1/plan", json={"activation": "gelu",
+                                         "widths": [64] + [128] * 63 + [10]}).get_json()
+    assert plan["verdict"]["failing"]
+    for name, body in (("NetworkAnalysis", resp.get_json()), ("Verdict", plan["verdict"])):
+        jsonschema.Draft202012Validator({**doc, "$ref": f"#/components/schemas/{name}"}
+                                        ).validate(body)

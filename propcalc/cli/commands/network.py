@@ -23,6 +23,7 @@ from ... import (
     network,
     network_plan,
     network_propagation,
+    network_verdict,
     simulate_network,
 )
 from ..options import EXIT_OK, UsageError, finite_float, int_list, with_json, with_plot
@@ -272,7 +273,8 @@ def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
         emit_json({"propagation": result.to_dict(),
                    "plan": None if plan is None else plan.to_dict(),
                    "plan_error": plan_error,
-                   "check": None if check is None else check.to_dict()}, out)
+                   "check": None if check is None else check.to_dict(),
+                   "verdict": network_verdict(result).to_dict()}, out)
     else:
         n = len(result.q) - 1
         out.write(format_pairs([
@@ -285,6 +287,7 @@ def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
         out.write(table + "\n" + shown + "\n")
         out.write("summary (infinite-width predictions at initialisation):\n")
         out.write("\n".join(_summary_lines(result.summary)) + "\n")
+        out.write(f"\nverdict: {network_verdict(result)}\n")
         if not args.no_plan:
             out.write("\nplan:\n")
             if plan is not None:
