@@ -213,16 +213,86 @@ def _eval_pieces(pieces: Sequence[Piece], x: Array) -> Array:
     return out
 
 
+def _interval_mass(t: Array, h: Array) -> Array:
+    """Phi(t) - Phi(t - h), keeping its relative digits for small h.
+
+    For ``|h| (1 + |t|) < 0.1`` the midpoint series ``int_{c - h/2}^{c + h/2} varphi =
+    h sum_k varphi^(2k)(c) (h/2)^(2k) / (2k + 1)!`` with ``varphi^(2k) = He_2k varphi``
+    (He_2 = c^2 - 1, He_4 = c^4 - 6 c^2 + 3, He_6 = c^6 - 15 c^4 + 45 c^2 - 15; Abramowitz
+    & Stegun 1964, 26.2.25 and 22.3), truncated where the next term is below 1e-16;
+    otherwise the difference of the two tails on the side where they are small.
+    """
+    c = t - 0.5 * h
+    c2 = c * c
+    h2 = 0.25 * h * h
+    series = h * _INV_SQRT_2PI * np.exp(-0.5 * c2) * (
+        1.0 + h2 * ((c2 - 1.0) / 6.0 + h2 * ((c2 * c2 - 6.0 * c2 + 3.0) / 120.0
+                                             + h2 * ((c2 * (c2 * (c2 - 15.0) + 45.0) - 15.0)
+                                                     / 5040.0))))
+    with np.errstate(over="ignore", invalid="ignore"):
+        upper = special.ndtr(-(t - h)) - special.ndtr(-t)  # both tails small for t > 0
+        lower = special.ndtr(t) - special.ndtr(t - h)
+    direct = np.where(t - 0.5 * h > 0.0, upper, lower)
+    return np.where(np.abs(h) * (1.0 + np.abs(c)) < 0.1, series, direct)
+
+
+def _expm1_term(coef: float, rate: float, lo: float, hi: float, bd: _Boundaries) -> Array:
+    """``coef E[(exp(rate X) - 1) 1{lo <= X < hi}]``, X = m + s z, without cancellation.
+
+    ``E[exp(a X) 1] = e^L P_a`` (L = a m + a^2 s^2 / 2, P_a the mass of the interval
+    under the tilted mean m + a s^2), so the term is ``expm1(L) P_a + (P_a - P_0)``, and
+    ``P_a - P_0`` is the mass the interval loses or gains at each end when shifted by
+    ``a s^2``: :func:`_interval_mass` at ``t = (b - m) / s`` with ``h = a s``. Forming
+    ``e^L P_a - P_0`` directly loses all digits when s and m are tiny (elu at q = 1e-40).
+    """
+    m, s = bd.m, bd.s
+    L = rate * m + 0.5 * rate * rate * s * s
+    p_a = bd.mass(rate, lo, hi)
+    diff = np.zeros(m.shape)
+    h = rate * s
+    # P_a - P_0 = [F0(hi - d) - F0(hi)] - [F0(lo - d) - F0(lo)], d = a s^2 and F0 the cdf of X
+    if hi != math.inf:
+        diff = diff - _interval_mass((hi - m) * bd.inv_s, h)
+    if lo != -math.inf:
+        diff = diff + _interval_mass((lo - m) * bd.inv_s, h)
+    return coef * (np.expm1(L) * p_a + diff)
+
+
+def _expm1_pairs(terms: tuple[Term, ...]) -> tuple[list[tuple[float, float]], list[Term]]:
+    """Split ``C exp(a x) - C`` pairs (a != 0, power 0) from the other terms of a piece."""
+    pairs: list[tuple[float, float]] = []
+    rest = list(terms)
+    for t in terms:
+        if t.power == 0 and t.rate != 0.0 and t in rest:
+            match = Term(-t.coef)
+            if match in rest:
+                rest.remove(t)
+                rest.remove(match)
+                pairs.append((t.coef, t.rate))
+    return pairs, rest
+
+
 def _smooth_pieces(pieces: tuple[Piece, ...]) -> SmoothFn:
+    split = tuple((p, *_expm1_pairs(p.terms)) for p in pieces)
+
     def smooth(m: Array, v: Array) -> Array:
         m, v = np.broadcast_arrays(np.asarray(m, dtype=float), np.asarray(v, dtype=float))
         s = np.sqrt(v)
         pos = bool(np.all(s > 0.0))
         bd = _Boundaries(m, s if pos else np.where(s > 0.0, s, 1.0))
         total = np.zeros(m.shape)
-        for p in pieces:
-            for t in p.terms:
+        for p, pairs, rest in split:
+            for t in rest:
                 total += _piece_term(t, p.lo, p.hi, bd)
+            for coef, rate in pairs:
+                plain = (_piece_term(Term(coef, 0, rate), p.lo, p.hi, bd)
+                         + _piece_term(Term(-coef), p.lo, p.hi, bd))
+                # where exp(rate X) is near 1 on the mass, the two terms cancel: the exact form
+                small = (np.abs(rate * bd.m) + np.abs(rate) * bd.s) < 1.0
+                if np.any(small):
+                    with np.errstate(over="ignore", invalid="ignore"):
+                        plain = np.where(small, _expm1_term(coef, rate, p.lo, p.hi, bd), plain)
+                total += plain
         return total if pos else np.where(s > 0.0, total, _eval_pieces(pieces, m))
     return smooth
 
