@@ -28,6 +28,7 @@ from numpy.testing import assert_allclose
 import propcalc
 from propcalc import Activation
 from propcalc.meanfield import maps
+from propcalc.activations.builtins import SELU_ALPHA, SELU_SCALE
 from propcalc.numerics.quadrature import bivariate_expectation
 
 A = propcalc.activation
@@ -385,3 +386,85 @@ def test_maps_reject_bad_inputs(bad):
         maps.variance_map(act, 1.0, 1.0, bad)
     with pytest.raises(propcalc.InvalidParameterError, match=r"c must be in \[-1, 1\]"):
         maps.correlation_map(act, 1.0 + 1e-9 if math.isfinite(bad) else bad, 1.0, 0.0, 1.0)
+
+
+# ------------------------------------------------------------------------------------------
+# tiny variances and the slope at q = 0 (issue 11, section 2)
+# ------------------------------------------------------------------------------------------
+def _elu_pair_mpmath(alpha, lam, c, q):
+    """E[phi(u1) phi(u2)] / q for phi = lam * elu(x; alpha), by mpmath at 60 digits: the
+    1-D integral E[phi(u1) S(c u1, q (1 - c^2))] with the exact inner smoothing
+    S(m, v) = lam (m Phi(m/s) + s varphi(m/s) + alpha (e^(m + v/2) Phi(-(m + v)/s)
+    - Phi(-m/s))) (truncated normal moments, Johnson, Kotz & Balakrishnan 1994, 10.1)."""
+    with mpmath.workdps(60):
+        q, c, alpha, lam = (mpmath.mpf(x) for x in (q, c, alpha, lam))
+        v = q * (1 - c * c)
+        s = mpmath.sqrt(v)
+
+        def phi(x):
+            return lam * (x if x > 0 else alpha * mpmath.expm1(x))
+
+        def smooth(m):
+            return lam * (m * mpmath.ncdf(m / s) + s * mpmath.npdf(m / s)
+                          + alpha * (mpmath.exp(m + v / 2) * mpmath.ncdf(-(m + v) / s)
+                                     - mpmath.ncdf(-m / s)))
+
+        sq = mpmath.sqrt(q)
+        if c == 1:  # E[phi(u)^2]
+            return mpmath.quad(lambda z: phi(sq * z) ** 2 * mpmath.npdf(z), [-12, 0, 12]) / q
+        val = mpmath.quad(lambda z: phi(sq * z) * smooth(c * sq * z) * mpmath.npdf(z),
+                          [-12, -4, 0, 4, 12])
+        return val / q
+
+
+@pytest.mark.parametrize("name", ["elu", "selu"])
+@pytest.mark.parametrize("q", [1e-10, 1e-20, 1e-40, 1e-100, 1e-200])
+def test_correlation_map_at_tiny_variance(name, q):
+    # issue 11: correlation_map(elu, [0.5], 1.5, 0, q=1e-40) returned 0.25 (the limit is 0.5:
+    # elu is linear near 0); selu was off from q ~ 1e-24. Reference: mpmath at 60 digits;
+    # below q = 1e-40 the q -> 0 limit, the arc-cosine kernel of the two-slope linear function
+    # (Cho & Saul 2009, eq. 6: E[x+ y+] = q K(c), K(c) = (sqrt(1 - c^2) + (pi - acos c) c) / 2 pi),
+    # which the map reaches to O(sqrt q)
+    act = A(name)
+    alpha, lam = (1.0, 1.0) if name == "elu" else (SELU_ALPHA, SELU_SCALE)
+    c = 0.5
+    got = float(maps.correlation_map(act, [c], 1.5, 0.0, q=q)[0])
+    if q >= 1e-40:
+        num = _elu_pair_mpmath(alpha, lam, c, q)
+        den = _elu_pair_mpmath(alpha, lam, 1, q)
+        ref = float(num / den)
+    else:
+        def k(x):
+            return (math.sqrt(1 - x * x) + (math.pi - math.acos(x)) * x) / (2 * math.pi)
+        ref = ((1 + alpha**2) * k(c) - 2 * alpha * k(-c)) / ((1 + alpha**2) / 2)
+    assert abs(got - ref) <= 2e-14
+
+
+@pytest.mark.parametrize("name,phi0,d1,d2", [("sigmoid", 0.5, 0.25, 0.0),
+                                             ("softplus", math.log(2.0), 0.5, 0.25),
+                                             ("cos(x)", 1.0, 0.0, -1.0)])
+def test_variance_map_slope_at_zero_is_the_limit(name, phi0, d1, d2):
+    # issue 11: variance_map_slope(sigmoid, [0.0], 1.5) was inf. The limit of
+    # V'(q) = sigma_w2 d/dq E[phi(sqrt(q) z)^2] at q = 0 is sigma_w2 (phi'(0)^2 + phi(0) phi''(0))
+    # (second-order Taylor expansion, E[z^2] = 1); phi(0), phi'(0), phi''(0) by hand
+    # (sigmoid: 1/2, 1/4, 0; softplus: ln 2, 1/2, 1/4; cos: 1, 0, -1)
+    sw = 1.5
+    got = maps.variance_map_slope(A(name), [0.0, 1e-9], sw)
+    ref = sw * (d1 * d1 + phi0 * d2)
+    assert got[0] == pytest.approx(ref, rel=1e-11, abs=1e-13)
+    assert got[1] == pytest.approx(ref, rel=1e-7, abs=1e-8)  # continuous at 0
+
+
+@pytest.mark.parametrize("name,fn", [("sigmoid", lambda x: 1 / (1 + mpmath.exp(-x))),
+                                     ("tanh(x) + 0.3", lambda x: mpmath.tanh(x) + 0.3)])
+@pytest.mark.parametrize("q", [1e-12, 1e-9, 1e-6, 1e-3])
+def test_variance_map_slope_at_small_variance(name, fn, q):
+    # Stein's form lost ~1e-16 / q relative where phi(0) != 0 (sigmoid at q = 1e-12: 4.5e-4);
+    # reference: d/dq E[phi(sqrt(q) z)^2] by mpmath.diff of mpmath.quad at 40 digits
+    with mpmath.workdps(40):
+        def second(qq):
+            return mpmath.quad(lambda z: fn(mpmath.sqrt(qq) * z) ** 2 * mpmath.npdf(z),
+                               [-14, 0, 14])
+        ref = float(1.5 * mpmath.diff(second, mpmath.mpf(q)))
+    got = float(maps.variance_map_slope(A(name), q, 1.5))
+    assert got == pytest.approx(ref, rel=2e-11)

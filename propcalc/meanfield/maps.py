@@ -151,22 +151,64 @@ def variance_map_slope(act: Activation | str, q: Any, sigma_w2: float,
                        rule: QuadratureRule = DEFAULT_RULE) -> Array:
     """V'(q) = sigma_w2 E[(z^2 - 1) phi(sqrt(q) z)^2] / (2 q) (Stein's identity).
 
-    At q = 0 the limit ``sigma_w2 (phi'(0-)^2 + phi'(0+)^2) / 2`` is returned
-    when phi(0) = 0 (the rate of collapse towards zero variance).
+    At q = 0 the limit ``sigma_w2 (phi'(0)^2 + phi(0) phi''(0))`` is returned (with
+    phi(0) = 0 and a kink at 0, ``sigma_w2 (phi'(0-)^2 + phi'(0+)^2) / 2``, the rate of
+    collapse towards zero variance).
     """
     act = resolve(act)
     rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
     qa = _q_array(q)
+    phi0 = float(act.value(np.array([0.0]))[0])
+    square0 = phi0 * phi0 if math.isfinite(phi0) else 0.0
+    # V' is analytic in q near 0 when phi is smooth at 0; there Stein's form loses digits
+    # (phi(0)^2 (z^2 - 1) cancels to rounding, ~1e-16 / q relative): interpolate
+    small = square0 > 0.0 and 0.0 not in act.breakpoints
+    q_small = SMALL_VARIANCE * act.scale ** 2
     safe = np.where(qa > 0, qa, 1.0)
-    # E[(z^2 - 1) f(sqrt(q) z)]: the rule hands the standard-normal node z along with x
+    if small:
+        safe = np.where(qa < q_small, q_small, safe)
+    # E[(z^2 - 1) f(sqrt(q) z)]: the rule hands the standard-normal node z along with x;
+    # phi(0)^2 taken out first (E[z^2 - 1] = 0), which keeps the digits its rounding would eat
     val = gaussian_expectation(
-        lambda x, z: (z * z - 1.0) * act.value(x) ** 2,
+        lambda x, z: (z * z - 1.0) * (act.value(x) ** 2 - square0),
         safe, act.breakpoints, rule=rule, what=f"{act.label}(x)^2", with_z=True)
     out = sw * val / (2.0 * safe)
-    if np.any(qa == 0):
-        out = np.where(qa == 0, variance_collapse_rate(act, sw), out)
+    if np.any(qa == 0) or (small and np.any(qa < q_small)):
+        zero = _slope_at_zero(act, sw)
+        if small:
+            # linear between the exact limit at 0 and Stein's value at q_small: the error is
+            # the curvature term, about q_small * q * V'''(0) / 2
+            out = np.where(qa < q_small, zero + (out - zero) * (qa / q_small), out)
+        out = np.where(qa == 0, zero, out)
     return out
+
+
+#: Below this variance (times the activation's scale squared) V'(q) of a phi smooth at 0 with
+#: phi(0) != 0 is interpolated between its limit at 0 and Stein's form here.
+SMALL_VARIANCE = 1e-6
+
+
+def _slope_at_zero(act: Activation, sigma_w2: float) -> float:
+    """lim V'(q) as q -> 0: ``sigma_w2 (phi'(0)^2 + phi(0) phi''(0))``.
+
+    ``d/dq E[f(sqrt(q) z)] -> f''(0) / 2`` for a smooth f (Taylor to second order,
+    E[z^2] = 1), with ``f = phi^2``, ``f'' = 2 (phi'^2 + phi phi'')``. With a kink at 0 and
+    phi(0) = 0 it is the collapse rate ``sigma_w2 (phi'(0-)^2 + phi'(0+)^2) / 2``; a kink or
+    jump at 0 with phi(0) != 0 makes it infinite (phi^2 then has a kink of size
+    2 phi(0) [phi'] at 0, and E[|z|] sqrt(q) / q diverges). phi''(0) comes from phi' by a
+    Richardson-extrapolated central difference (error ~ 1e-12 relative).
+    """
+    phi0 = float(act.value(np.array([0.0]))[0])
+    if phi0 == 0.0 or (0.0 in act.breakpoints):
+        return variance_collapse_rate(act, sigma_w2)
+    near = [abs(b) for b in act.breakpoints if b != 0.0]
+    h = min([1e-3] + [b / 4.0 for b in near])
+    d = act.derivative(np.array([-h, h, -h / 2.0, h / 2.0, 0.0]))
+    coarse, fine = (d[1] - d[0]) / (2.0 * h), (d[3] - d[2]) / h
+    second = (4.0 * fine - coarse) / 3.0
+    out = float(sigma_w2 * (d[4] * d[4] + phi0 * second))
+    return out if math.isfinite(out) else math.inf
 
 
 def variance_collapse_rate(act: Activation, sigma_w2: float) -> float:
