@@ -18,6 +18,8 @@ from typing import Any
 
 from marshmallow import Schema, ValidationError, fields
 
+from propcalc import canonical_name, nearest_name
+
 __all__ = [
     "Interval",
     "MaxItems",
@@ -222,21 +224,33 @@ class ExtNumber(fields.Field):
 
 
 class Choice(fields.String):
-    """One of a fixed set of strings."""
+    """One of a fixed set of strings; an unknown one gets the nearest choice as a hint.
+
+    With ``spellings=True`` (the built-in activation names) case and the separators ``-``,
+    ``_`` and spaces do not matter (``"Gelu"``, ``"leaky-relu"``), as in the engine's
+    resolver; the loaded value is the choice as spelled in ``choices``.
+    """
 
     default_error_messages = {"invalid": "must be a string", "required": "is required",
                               "null": "must not be null"}
 
-    def __init__(self, choices: list[str] | tuple[str, ...], **kwargs: Any) -> None:
+    def __init__(self, choices: list[str] | tuple[str, ...], *, spellings: bool = False,
+                 **kwargs: Any) -> None:
         self.choices = list(choices)
+        self.spellings = spellings
         super().__init__(**kwargs)
 
     def _deserialize(self, value: Any, attr: str | None, data: Any, **kwargs: Any) -> str:
         if not isinstance(value, str):
             raise self.make_error("invalid")
-        if value not in self.choices:
-            raise ValidationError(f"must be one of {', '.join(self.choices)}")
-        return value
+        if value in self.choices:
+            return value
+        named = canonical_name(value, self.choices) if self.spellings else None
+        if named is not None:
+            return named
+        close = nearest_name(value, self.choices)
+        hint = f" (did you mean {close}?)" if close is not None else ""
+        raise ValidationError(f"must be one of {', '.join(self.choices)}{hint}")
 
     def openapi_property(self, converter: Any) -> dict[str, Any]:
         return _nullable({"type": "string", "enum": list(self.choices)}, self.allow_none)
@@ -339,7 +353,8 @@ class ActivationField(fields.Field):
     def openapi_property(self, converter: Any) -> dict[str, Any]:
         return {"oneOf": [
             {"type": "string", "enum": list(self.names),
-             "description": "a built-in name, short for {\"name\": ...}"},
+             "description": "a built-in name, short for {\"name\": ...} (case and the "
+                            "separators -, _ and spaces do not matter: \"Leaky-ReLU\")"},
             converter.resolve_nested_schema(self.named),
             converter.resolve_nested_schema(self.formula),
         ]}

@@ -37,6 +37,7 @@ the service builds an error response.
 from __future__ import annotations
 
 import logging
+import re
 import uuid
 from collections.abc import Iterator, Mapping
 from http import HTTPStatus
@@ -55,6 +56,7 @@ from propcalc import (
     PropcalcError,
     ShapingError,
     UnknownActivationError,
+    nearest_name,
 )
 
 from ._json import JSONBodyError, canonical_dumps
@@ -236,6 +238,9 @@ def _walk(messages: Any, parts: list[str | int]) -> Iterator[tuple[list[str | in
         yield parts, str(messages)
 
 
+#: the list of allowed members in the message for an unknown one (StrictSchema)
+_ALLOWED = re.compile(r"^is not a field here \(allowed: (.*)\)$")
+
 #: marshmallow's own messages (fields without custom ones), in the service's words
 _PLAIN = {
     "Missing data for required field.": "is required",
@@ -257,6 +262,11 @@ def validation_entries(err: ValidationError, ctx: ErrorContext) -> list[dict[str
         value = _lookup(ctx.raw, parts)
         if value is not _MISSING and not msg.startswith("is not a "):
             msg = f"{msg}, got {show_value(value)}"
+        allowed = _ALLOWED.search(msg)
+        if allowed is not None and parts and isinstance(parts[-1], str):
+            close = nearest_name(parts[-1], allowed.group(1).split(", "))
+            if close is not None:  # "sigma_w" -> did you mean sigma_w2?
+                msg = f"{msg}; did you mean {close}?"
         if (pointer, msg) in seen:
             continue
         seen.add((pointer, msg))

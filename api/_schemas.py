@@ -162,7 +162,7 @@ def build_schemas(limits: Limits) -> Schemas:
     class NamedActivationSchema(StrictSchema):
         """A built-in activation with named parameters."""
 
-        name = Choice(names, required=True, metadata=_d("a built-in activation"))
+        name = Choice(names, spellings=True, required=True, metadata=_d("a built-in activation"))
         params = params_field()
 
     class FormulaActivationSchema(StrictSchema):
@@ -197,7 +197,8 @@ def build_schemas(limits: Limits) -> Schemas:
     class PropagationQuerySchema(StrictSchema):
         """Query form of the propagation report (built-in names only)."""
 
-        activation = Choice(names, required=True, metadata=_d("a built-in activation"))
+        activation = Choice(names, spellings=True, required=True,
+                            metadata=_d("a built-in activation"))
         sigma_w2 = sigma_w2_field(required=True)
         sigma_b2 = sigma_b2_field(load_default=0.0)
         depth = JSONInteger(validate=Interval(1, limits.max_depth),
@@ -569,7 +570,7 @@ def build_schemas(limits: Limits) -> Schemas:
         return out
 
     def query_activation() -> Choice:
-        return Choice(names, required=True, metadata=_d("a built-in activation"))
+        return Choice(names, spellings=True, required=True, metadata=_d("a built-in activation"))
 
     class ImageOptionsSchema(StrictSchema):
         """How the image is written: format and resolution."""

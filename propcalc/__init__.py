@@ -22,7 +22,8 @@ your own model before relying on them.
 from __future__ import annotations
 
 from . import domains
-from .activations import Activation, ActivationProperties, builtin_names, nearest_name, resolve
+from .activations import (Activation, ActivationProperties, builtin_names, canonical_name,
+                          nearest_name, resolve)
 from .meanfield.edge import CriticalPoint, edge_of_chaos, edge_of_chaos_at_bias, edge_of_chaos_line
 from .meanfield.report import (
     FixedPoint,
@@ -219,6 +220,7 @@ __all__ = [
     "recommend",
     "resolve",
     "nearest_name",
+    "canonical_name",
     "ShapedActivation",
     "ShapingError",
     "UnreachableTargetError",
