@@ -70,6 +70,10 @@ def test_demo_table_agrees_with_the_api():
         np.testing.assert_allclose([q, c, g], [r.q[i], r.c[i], r.gradient[i]], rtol=1e-5)
     for f in r.summary.findings:
         assert f.message in out
+    verdict = propcalc.network_verdict(r)
+    assert f"verdict: {verdict.summary}" in out
+    for reason in verdict.reasons:
+        assert reason.name in out
     assert "plan:" not in out
 
 
@@ -98,6 +102,8 @@ def test_json_is_the_results_dict_forms(tmp_path):
     assert doc["propagation"] == json.loads(json.dumps(propcalc.jsonable(r.to_dict())))
     assert doc["plan"] == json.loads(json.dumps(propcalc.jsonable(plan.to_dict())))
     assert doc["plan_error"] is None
+    verdict = propcalc.network_verdict(r)
+    assert doc["verdict"] == json.loads(json.dumps(propcalc.jsonable(verdict.to_dict())))
     assert doc["plan"]["branch_weight"]["weight"] == pytest.approx(plan.branch_weight.weight,
                                                                     rel=1e-12)
 

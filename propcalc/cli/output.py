@@ -14,7 +14,7 @@ from typing import Any, TextIO
 from .. import jsonable
 
 __all__ = ["format_number", "format_table", "format_pairs", "emit_json", "compress_rows",
-           "plus_minus"]
+           "plus_minus", "verdict_table"]
 
 
 def format_number(value: Any, digits: int = 6) -> str:
@@ -67,3 +67,14 @@ def compress_rows(rows: list[list[Any]]) -> list[list[Any]]:
 def plus_minus(mean: float, se: float) -> str:
     """``mean +- 2 se`` (a measured band)."""
     return f"{format_number(mean)} +- {format_number(2 * se, 2)}"
+
+
+def verdict_table(verdict: Any) -> str:
+    """The reasons of a :class:`propcalc.Verdict`: name, pass/FAIL ('-': not computed), value,
+    limit, and the fix (or, when not computed, why)."""
+    return format_table([[r.name, "-" if r.passes is None else ("pass" if r.passes else "FAIL"),
+                          "-" if r.value is None else r.value,
+                          "-" if r.limit is None else r.limit,
+                          r.fix or (r.detail if r.passes is None else "")]
+                         for r in verdict.reasons],
+                        ["reason", "result", "value", "limit", "fix"])

@@ -2,10 +2,11 @@
 
 The file (or ``-`` for stdin) holds a network description in propcalc's blocks format
 (docs/networks.md). The command prints the per-position table of
-:func:`propcalc.network_propagation` (q, c and the gradient), the findings of its summary and
-the initialisation plan of :func:`propcalc.network_plan`; ``--json`` writes both results'
-dict forms; ``--check`` adds seeded finite-width networks of the description compared with the
-prediction at every position (:func:`propcalc.simulate`); ``--plot`` draws q, c and the gradient against depth
+:func:`propcalc.network_propagation` (q, c and the gradient), the findings of its summary, the
+verdict of :func:`propcalc.network_verdict` and the initialisation plan of
+:func:`propcalc.network_plan`; ``--json`` writes the results' dict forms; ``--check`` adds
+seeded finite-width networks of the description compared with the prediction at every position
+(:func:`propcalc.simulate`); ``--plot`` draws q, c and the gradient against depth
 (:func:`propcalc.output.network_plot.plot_network`).
 """
 
@@ -27,7 +28,14 @@ from ... import (
     simulate_network,
 )
 from ..options import EXIT_OK, UsageError, finite_float, int_list, with_json, with_plot
-from ..output import emit_json, format_number, format_pairs, format_table, plus_minus
+from ..output import (
+    emit_json,
+    format_number,
+    format_pairs,
+    format_table,
+    plus_minus,
+    verdict_table,
+)
 from ..pictures import start_plot, write_plot
 
 __all__ = ["MAX_FILE_BYTES", "DEFAULT_ROWS", "read_description", "register"]
@@ -255,6 +263,7 @@ def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
     result = network_propagation(net, args.q0, args.c0, c0_within=args.c0_within,
                                  c0_between=args.c0_between, seed=args.seed,
                                  simulation_width=args.width)
+    verdict = network_verdict(result)
     check = None
     if args.check:
         check = simulate_network(net, q0=args.q0, c0=args.c0, c0_within=args.c0_within,
@@ -270,11 +279,10 @@ def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
         except PropcalcError as exc:  # the propagation stands without it
             plan_error = str(exc)
     if args.json:
-        emit_json({"propagation": result.to_dict(),
+        emit_json({"propagation": result.to_dict(), "verdict": verdict.to_dict(),
                    "plan": None if plan is None else plan.to_dict(),
                    "plan_error": plan_error,
-                   "check": None if check is None else check.to_dict(),
-                   "verdict": network_verdict(result).to_dict()}, out)
+                   "check": None if check is None else check.to_dict()}, out)
     else:
         n = len(result.q) - 1
         out.write(format_pairs([
@@ -287,7 +295,7 @@ def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
         out.write(table + "\n" + shown + "\n")
         out.write("summary (infinite-width predictions at initialisation):\n")
         out.write("\n".join(_summary_lines(result.summary)) + "\n")
-        out.write(f"\nverdict: {network_verdict(result)}\n")
+        out.write(f"\nverdict: {verdict}\n" + verdict_table(verdict) + "\n")
         if not args.no_plan:
             out.write("\nplan:\n")
             if plan is not None:

@@ -16,7 +16,14 @@ from ..options import (
     with_act,
     with_json,
 )
-from ..output import compress_rows, emit_json, format_number, format_pairs, format_table
+from ..output import (
+    compress_rows,
+    emit_json,
+    format_number,
+    format_pairs,
+    format_table,
+    verdict_table,
+)
 
 __all__ = ["register"]
 
@@ -70,12 +77,7 @@ def _cmd_plan(args: argparse.Namespace, out: TextIO) -> int:
     if plan.loss is not None:
         _training_text(plan, out)
     out.write(f"verdict: {plan.verdict}\n\n")
-    out.write(format_table([[r.name, "-" if r.passes is None else ("pass" if r.passes else "FAIL"),
-                             "-" if r.value is None else r.value,
-                             "-" if r.limit is None else r.limit,
-                             r.fix or (r.detail if r.passes is None else "")]
-                            for r in plan.verdict.reasons],
-                           ["reason", "result", "value", "limit", "fix"]) + "\n\n")
+    out.write(verdict_table(plan.verdict) + "\n\n")
     for note in plan.notes:
         out.write(f"note: {note}\n")
     return EXIT_OK
