@@ -57,6 +57,10 @@ SIZE = (7.2, 5.2)
 _CHARS_PER_INCH = 11.0
 #: Characters of an 8-point legend line per inch (the same measure, less the markers).
 _LEGEND_CHARS_PER_INCH = 14.0
+#: Labels keep this far (inches) from the axes' borders, and a piece of contour shorter than
+#: _LABEL_MIN_LENGTH inches inside that margin gets none.
+_LABEL_MARGIN = 0.35
+_LABEL_MIN_LENGTH = 0.8
 #: A title is cut after this many lines (formulas may be 500 characters long).
 _TITLE_LINES = 3
 
@@ -247,28 +251,29 @@ def place_labels(ax: Any, contour_sets: Sequence[tuple[Any, Any, float]],
     for cs, form, size in contour_sets:
         positions, levels = [], []
         for level, segs in zip(cs.levels, cs.allsegs):
-            pts = [s for s in segs if len(s)]
-            if not pts:
-                continue
-            xy = np.concatenate(pts)
-            at = inches(xy)
-            inside = ((at[:, 0] > 0.25) & (at[:, 0] < wi - 0.25)
-                      & (at[:, 1] > 0.15) & (at[:, 1] < hi - 0.15))
-            if not inside.any():
-                continue
-            xy, at = xy[inside], at[inside]
-            if placed:
-                ref = np.array(placed)
-                d = np.min(np.hypot(at[:, None, 0] - ref[None, :, 0],
-                                    at[:, None, 1] - ref[None, :, 1]), axis=1)
-            else:  # the first label: the middle of its line
-                d = -np.hypot(at[:, 0] - wi / 2, at[:, 1] - hi / 2)
-            k = int(np.argmax(d))
-            if placed and d[k] < spacing:
-                continue
-            placed.append(at[k])
-            positions.append((float(xy[k, 0]), float(xy[k, 1])))
-            levels.append(float(level))
+            for seg in segs:  # each piece of the level's line gets its own label
+                if len(seg) < 2:
+                    continue
+                at = inches(seg)
+                inside = ((at[:, 0] > _LABEL_MARGIN) & (at[:, 0] < wi - _LABEL_MARGIN)
+                          & (at[:, 1] > _LABEL_MARGIN) & (at[:, 1] < hi - _LABEL_MARGIN))
+                steps = np.hypot(*np.diff(at, axis=0).T)
+                if not inside.any() or float(np.sum(steps[inside[1:]])) < _LABEL_MIN_LENGTH:
+                    continue
+                xy, at = seg[inside], at[inside]
+                if placed:
+                    ref = np.array(placed)
+                    d = np.min(np.hypot(at[:, None, 0] - ref[None, :, 0],
+                                        at[:, None, 1] - ref[None, :, 1]), axis=1)
+                else:  # the first label: the middle of the axes
+                    d = -np.hypot(at[:, 0] - wi / 2, at[:, 1] - hi / 2)
+                k = int(np.argmax(d))
+                if placed and d[k] < spacing:
+                    continue
+                placed.append(at[k])
+                positions.append((float(xy[k, 0]), float(xy[k, 1])))
+                if float(level) not in levels:
+                    levels.append(float(level))
         if positions:
             ax.clabel(cs, levels=levels, manual=positions, fmt=form, fontsize=size, inline=True)
             labelled += levels

@@ -25,7 +25,7 @@ __all__ = ["plot_variance_map", "plot_correlation_map", "NEAR_IDENTITY"]
 
 #: The map is shown magnified when it stays within this fraction of the axis span of the
 #: identity (about 5 pixels at the default size; common practice, no source).
-NEAR_IDENTITY = 0.015
+NEAR_IDENTITY = 0.03
 _MAP = "#1f5fa8"
 _COBWEB = "#d9771e"
 _SIZE = (6.4, 5.2)
