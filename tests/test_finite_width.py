@@ -203,3 +203,14 @@ def test_result_dict_is_json_ready():
     r = finite_width("tanh", 1.5, 0.05, [64] * 5)
     d = pc.jsonable(r.to_dict())
     assert d["width_needed"] == r.width_needed and len(d["q_log_sd"]) == 5
+
+
+def test_extremes_stay_finite_or_say_why():
+    # chaotic tanh over 10000 layers: chi_1^L passes the double range (inf, no warning);
+    # a collapsing ReLU (sigma_w2 = 1) is refused with the reason, not a domain error on q
+    r = finite_width("tanh", 3.0, 0.0, [64] * 10001)
+    assert r.gradient_mean_field[0] == math.inf and pc.jsonable(r.to_dict())
+    with pytest.raises(ComputationError, match="collapses"):
+        finite_width("relu", 1.0, 0.0, [64] * 3001)
+    one_output = finite_width("sigmoid", 4.0, 0.1, [2] * 50 + [1])
+    assert "width 2" in one_output.message

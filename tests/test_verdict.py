@@ -184,7 +184,8 @@ def test_plan_for_a_loss_reads_the_ceiling_and_the_readout():
 
 def test_network_verdict_plain_chaotic_stack():
     # a plain tanh stack at sigma_w2 = 3 (chaotic): the same Verdict type; with inputs of mean
-    # square q* / sigma_w2 every pre-activation sits at q*, and the input/output gradient is chi_1^L (Schoenholz et al. 2017), chi_1 = sigma_w2 E[sech^4] at q*
+    # square q* / sigma_w2 every pre-activation sits at q*, and the input/output gradient is
+    # chi_1^L (Schoenholz et al. 2017), chi_1 = sigma_w2 E[sech^4] at q*
     # by mpmath
     sw, depth = 3.0, 60
     q_star = pc.propagation("tanh", sw, 0.0).q_star
@@ -212,7 +213,8 @@ def test_network_verdict_residual_demo_passes():
     import json
     import pathlib
 
-    path = pathlib.Path(__file__).resolve().parents[1] / "demo" / "networks" / "otter-residual-mlp.json"
+    path = (pathlib.Path(__file__).resolve().parents[1] / "demo" / "networks"
+            / "otter-residual-mlp.json")
     result = pc.network_propagation(pc.network(json.loads(path.read_text())), q0=1.0, c0=0.5)
     v = pc.network_verdict(result)
     assert v.trainable and v.reason("correlation depth").passes
@@ -229,7 +231,8 @@ def test_network_verdict_in_the_cli_and_the_service():
     from propcalc.cli import main
     from propcalc_api import create_app
 
-    path = pathlib.Path(__file__).resolve().parents[1] / "demo" / "networks" / "otter-residual-mlp.json"
+    path = (pathlib.Path(__file__).resolve().parents[1] / "demo" / "networks"
+            / "otter-residual-mlp.json")
     out = io.StringIO()
     assert main(["network", str(path), "--json", "--no-plan"], out) == 0
     doc = json.loads(out.getvalue())

@@ -30,8 +30,9 @@ order in 1/n around the infinite-width trajectory K_{l+1} = V(K_l):
   exp(-variance / 2).
 
 Gradients (the gradient-independence convention of Schoenholz et al. 2017; exact for ReLU,
-Hanin & Nica 2019). A vector g at the top is pulled back by ``g^l = phi'(h^l) * (W_{l+1}^T g^{l+1})``;
-given layer l the ratio ``R_l = |g^l|^2 / |g^{l+1}|^2 = (sigma_w2 / n_l) sum_j phi'(h^l_j)^2 zeta_j^2``
+Hanin & Nica 2019). A vector g at the top is pulled back by
+``g^l = phi'(h^l) * (W_{l+1}^T g^{l+1})``; given layer l the ratio
+``R_l = |g^l|^2 / |g^{l+1}|^2 = (sigma_w2 / n_l) sum_j phi'(h^l_j)^2 zeta_j^2``
 (zeta_j independent standard normals) has mean chi_1(s_l) (Schoenholz et al. 2017, eq. 8) and
 relative variance ``kappa_g / n_l`` with ``kappa_g = 3 E[phi'^4] / E[phi'^2]^2 - 1``. Then
 ``ln G_l = sum_{m >= l} (ln chi_1(s_m) + eps_m)`` with ``Var eps_m = kappa_g / n_m``, E eps_m =
@@ -61,9 +62,11 @@ from typing import Any
 
 import numpy as np
 
+from .. import domains
 from ..activations.base import Activation
 from ..activations.resolver import resolve
-from ..errors import ComputationError, InvalidParameterError, check_int, check_nonnegative, check_positive
+from ..errors import (ComputationError, InvalidParameterError, check_int, check_nonnegative,
+                      check_positive)
 from ..meanfield.maps import variance_map
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule, gaussian_expectation
 from ..results import Result
@@ -279,10 +282,10 @@ def _trajectory(act: Activation, sw: float, sb: float, q0: float, n_layers: int,
     for layer in range(1, n_layers + 1):
         prev = ks[layer - 1]
         nxt = float(variance_map(act, prev, sw, sb, rule))
-        if not (math.isfinite(nxt) and 0.0 < nxt <= 1e12):
-            raise ComputationError(f"the mean-field variance leaves (0, 1e12] at layer {layer} "
-                                   f"({nxt:.3g}): the signal explodes or collapses, so there is "
-                                   "no finite-width expansion around it")
+        if not (math.isfinite(nxt) and domains.Q_POSITIVE_MIN <= nxt <= domains.Q_MAX):
+            raise ComputationError(f"the mean-field variance leaves [1e-200, 1e12] at layer "
+                                   f"{layer} ({nxt:.3g}): the signal explodes or collapses, so "
+                                   "there is no finite-width expansion around it")
         ks[layer] = nxt
         if nxt == prev:  # at the fixed point: the rest is the same number
             ks[layer:] = nxt
@@ -375,15 +378,17 @@ def finite_width(act: Any, sigma_w2: float, sigma_b2: float, widths: Sequence[in
     q_var = rel_p + 2.0 * inv_n
     q_var[0] = 0.0
     q_mean = k + d
-    q_typ = k * np.exp(d / k - 0.5 * rel_p - inv_n)
-    q_typ[0] = k[0]
     log_g_mf = np.concatenate([np.cumsum(np.log(co["chi"][:n_layers])[::-1])[::-1], [0.0]])
-    g_mf = np.exp(log_g_mf)
-    g_typ = np.exp(log_g_mf + real["mean_g"])
+    # a chaotic or collapsing stack takes these past the double range: inf / 0 is the answer
+    with np.errstate(over="ignore", under="ignore"):
+        q_typ = k * np.exp(d / k - 0.5 * rel_p - inv_n)
+        g_mf = np.exp(log_g_mf)
+        g_typ = np.exp(log_g_mf + real["mean_g"])
+    q_typ[0] = k[0]
 
     top_var = float(rel_p[-1])
     top_drift = float(d[-1] / k[-1])
-    top_typ = float(math.expm1(d[-1] / k[-1] - 0.5 * top_var))
+    top_typ = float(np.expm1(min(d[-1] / k[-1] - 0.5 * top_var, 700.0)))
     g_var = float(real["var_g"][0])
     # unit-width sums: the same quantities times n for a uniform width n
     u_top_var = float(unit["P"][-1] / k[-1] ** 2)
@@ -400,7 +405,7 @@ def finite_width(act: Any, sigma_w2: float, sigma_b2: float, widths: Sequence[in
     beta = float(np.sum(inv_n[:-1]))
     typ_all = d / k - 0.5 * rel_p
     over = ((np.sqrt(rel_p) > SPREAD_LIMIT) | (np.abs(d / k) > DRIFT_LIMIT)
-            | (np.abs(np.expm1(typ_all)) > DRIFT_LIMIT))
+            | (np.abs(np.expm1(np.minimum(typ_all, 700.0))) > DRIFT_LIMIT))
     depth_limit = int(np.flatnonzero(over)[0]) if np.any(over) else None
     msg = _message(n_layers, ws, k[-1], math.sqrt(top_var), top_drift, top_typ,
                    math.sqrt(g_var), spread_ok, gradient_ok, drift_ok, width_needed, within)
@@ -408,14 +413,16 @@ def finite_width(act: Any, sigma_w2: float, sigma_b2: float, widths: Sequence[in
     return FiniteWidth(act.label, sw, sb, qi, tuple(ws), beta, tup(k), tup(q_mean), tup(q_typ),
                        tup(np.sqrt(q_var)), tup(g_mf), tup(g_typ),
                        tup(np.sqrt(real["var_g"])), math.sqrt(top_var), top_drift, top_typ,
-                       math.sqrt(g_var), spread_ok, gradient_ok, drift_ok, width_needed, depth_limit,
-                       within, msg)
+                       math.sqrt(g_var), spread_ok, gradient_ok, drift_ok, width_needed,
+                       depth_limit, within, msg)
 
 
 def _message(n_layers: int, ws: list[int], k_top: float, top_sd: float, drift: float,
              typ: float, g_sd: float, spread_ok: bool, gradient_ok: bool, drift_ok: bool,
              needed: int, within: bool) -> str:
-    width = f"width {ws[0]}" if len(set(ws)) == 1 else f"widths {min(ws)}-{max(ws)}"
+    hidden = ws[:-1]  # the top layer's own width enters only its sampling
+    width = (f"width {hidden[0]}" if len(set(hidden)) == 1
+             else f"widths {min(hidden)}-{max(hidden)}")
     text = (f"{n_layers} layers at {width}: ln q at the top spreads by {top_sd:.3g} (sd) "
             f"between networks, its mean moves by {100 * drift:+.3g}% and the typical network's "
             f"q by {100 * typ:+.3g}% of q = {k_top:.4g}; ln |gradient|^2 at the bottom spreads "
