@@ -58,6 +58,7 @@ __all__ = [
     "check_array",
     "domain_table",
     "format_bound",
+    "check_signal",
 ]
 
 
@@ -348,3 +349,19 @@ def domain_table() -> tuple[dict[str, Any], ...]:
     """One row per domain (name, lower, upper, inclusive ends, zero, integer, constraint,
     units, reason), in a stable order, for the documentation and the front ends."""
     return tuple(d.row() for d in _DOMAINS)
+
+
+def check_signal(q_input: float, sigma_b2: Any) -> None:
+    """Refuse zero inputs without a bias (``q_input`` = 0 where ``sigma_b2`` = 0).
+
+    Every pre-activation is then exactly 0 at every layer: no variance flows anywhere (q = 0
+    stays put whether it attracts or repels) and two inputs, both zero, have no correlation,
+    so a report of fixed points, phases and depth scales would contradict itself (issue 12
+    section 2: ``report tanh -w 1.5 --q-input 0`` said "collapses" at a repelling q = 0).
+    ``sigma_b2`` may be an array (a sweep's axis): one zero entry is enough to refuse.
+    """
+    if q_input == 0.0 and np.any(np.asarray(sigma_b2) == 0.0):
+        raise InvalidParameterError(
+            "q_input", "> 0 when sigma_b2 = 0 (zero inputs and no bias make every "
+            "pre-activation 0 at every layer: nothing propagates)", q_input,
+            hint="give inputs of positive mean square, or a bias")

@@ -107,3 +107,59 @@ def test_every_option_of_every_command_has_help_text() -> None:
 def test_version() -> None:
     code, out, _ = run("--version")
     assert code == 0 and out.startswith("propcalc ")
+
+
+def test_edge_refuses_q_star_with_sigma_b2() -> None:
+    # dropped --q-star before (exit 0)
+    code, out, err = run("edge", "tanh", "--q-star", "1", "--sigma-b2", "0.05")
+    assert code == 2 and out == ""
+    assert "--q-star and --sigma-b2 exclude each other" in err
+
+
+def test_zero_inputs_without_a_bias_are_refused_everywhere() -> None:
+    # 'report tanh -w 1.5 --q-input 0' said "collapses to 0" at a repelling q = 0 (chi_q = 1.5)
+    # and called the phase chaotic with xi_c = inf
+    import propcalc
+
+    code, out, err = run("report", "tanh", "-w", "1.5", "--q-input", "0")
+    assert code == 2 and out == ""
+    assert "q_input must be > 0 when sigma_b2 = 0 (zero inputs and no bias" in err
+    for call in (lambda: propcalc.propagation("tanh", 1.5, 0.0, q_input=0.0),
+                 lambda: propcalc.variance_fixed_points("relu", 2.0, 0.0, q_input=0.0),
+                 lambda: propcalc.sweep("tanh", [1.5], [0.0, 0.1], q_input=0.0, progress=False)):
+        with pytest.raises(propcalc.InvalidParameterError, match=r"^q_input must be > 0 when "):
+            call()
+
+
+def test_zero_inputs_with_a_bias_flow_to_the_fixed_point() -> None:
+    # with sigma_b2 > 0 the first layer has q = sigma_b2 and flows on: the fixed point solves
+    # V(q) = q, V(q) = 1.5 E[tanh(sqrt(q) z)^2] + 0.1 (Poole et al. 2016, eq. 3); reference:
+    # scipy.integrate.quad for the expectation and scipy.optimize.brentq for the root
+    import math
+
+    from scipy import integrate, optimize
+
+    import propcalc
+
+    def v(q: float) -> float:
+        f = lambda z: math.tanh(math.sqrt(q) * z) ** 2 * math.exp(-z * z / 2)  # noqa: E731
+        return 1.5 * integrate.quad(f, -math.inf, math.inf, epsabs=0, epsrel=1e-13)[0] \
+            / math.sqrt(2 * math.pi) + 0.1
+
+    q_star = optimize.brentq(lambda q: v(q) - q, 0.1, 2.0, xtol=1e-15, rtol=1e-15)
+    p = propcalc.propagation("tanh", 1.5, 0.1, q_input=0.0)
+    assert p.q_star == pytest.approx(q_star, rel=1e-10)
+
+
+def test_a_closed_pipe_is_not_a_failure() -> None:
+    # 'propcalc report ... | head -2' ended in a BrokenPipeError traceback
+    from propcalc import cli
+
+    class Closed:
+        def write(self, text: str) -> int:
+            raise BrokenPipeError(32, "Broken pipe")
+
+        def flush(self) -> None:
+            pass
+
+    assert cli.main(["report", "tanh", "-w", "1.5"], out=Closed()) == 0  # type: ignore[arg-type]

@@ -13,6 +13,7 @@ from __future__ import annotations
 import argparse
 import contextlib
 import importlib
+import os
 import sys
 from collections.abc import Sequence
 from importlib import metadata
@@ -102,6 +103,11 @@ def main(argv: Sequence[str] | None = None, out: TextIO | None = None,
             return code if isinstance(code, int) else (EXIT_OK if code is None else EXIT_USAGE)
         args.err = err  # where a command says what it wrote when stdout carries JSON
         return int(args.func(args, out))
+    except BrokenPipeError:  # the reader stopped early (propcalc ... | head): not a failure
+        if out is sys.stdout:  # keep Python's final flush from writing into the closed pipe
+            with contextlib.suppress(OSError, ValueError):
+                os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_OK
     except UsageError as exc:
         err.write(f"propcalc: error: {exc}\n")
         return EXIT_USAGE

@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .. import domains
 from ..activations import Activation, resolve
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..results import OMIT, Result
@@ -152,6 +153,7 @@ def variance_fixed_points(act: Activation | str, sigma_w2: float, sigma_b2: floa
     sw = checked("sigma_w2", sigma_w2)
     sb = checked("sigma_b2", sigma_b2)
     qi = checked("q_input", q_input)
+    domains.check_signal(qi, sb)
     sol = solve_variance(act, np.array([sw]), np.array([sb]), np.array([qi]), rule)
     check_reached(sol, np.array([sw]), np.array([sb]))
     return variance_result(sol, 0, sb)
@@ -372,6 +374,7 @@ def propagation(act: Activation | str, sigma_w2: float, sigma_b2: float, depth: 
     sw = checked("sigma_w2", sigma_w2)
     sb = checked("sigma_b2", sigma_b2)
     qi = checked("q_input", q_input)
+    domains.check_signal(qi, sb)
     if depth is not None:
         depth = checked("depth", depth)
     core = propagate(act, np.array([sw]), np.array([sb]), qi, rule)

@@ -48,6 +48,7 @@ from typing import Any
 
 import numpy as np
 
+from .. import domains
 from ..activations import Activation, builtin_activation, builtin_names, resolve
 from ..activations import activation as make_activation
 from ..errors import ActivationTypeError, InvalidParameterError, check_int, check_nonnegative
@@ -355,6 +356,7 @@ def sweep(activations: str | Activation | Sequence[str | Activation], sigma_w2: 
     sw_axis = check_axis("sigma_w2", sigma_w2, positive=True)
     sb_axis = check_axis("sigma_b2", sigma_b2, positive=False)
     qi = checked("q_input", q_input)
+    domains.check_signal(qi, sb_axis)
     if method not in ("vectorised", "pointwise"):
         raise InvalidParameterError("method", "one of vectorised, pointwise", method)
     if executor is not None and not isinstance(executor, Executor):

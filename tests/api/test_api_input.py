@@ -60,3 +60,17 @@ def test_plan_members_that_would_be_ignored_are_refused(client, body: dict, poin
     assert r.status_code == 422
     [entry] = r.get_json()["errors"]
     assert entry["pointer"] == pointer and entry["detail"].startswith(detail)
+
+
+def test_zero_inputs_without_a_bias_are_refused(client) -> None:
+    # answered 200 with "collapses to 0" at a repelling q = 0 before
+    r = client.post("/v1/propagation", json={"activation": "tanh", "sigma_w2": 1.5,
+                                             "q_input": 0})
+    assert r.status_code == 422
+    [entry] = r.get_json()["errors"]
+    assert entry["pointer"] == "/q_input" and entry["detail"].startswith("must be > 0 when "
+                                                                        "sigma_b2 = 0")
+    r = client.post("/v1/propagation", json={"activation": "tanh", "sigma_w2": 1.5,
+                                             "sigma_b2": 0.1, "q_input": 0})
+    assert r.status_code == 200
+    assert r.get_json()["q_star"] == propcalc.propagation("tanh", 1.5, 0.1, q_input=0.0).q_star

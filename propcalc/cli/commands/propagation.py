@@ -90,6 +90,10 @@ def _report_plot(act: Any, p: Any, args: argparse.Namespace,
 def _cmd_edge(args: argparse.Namespace, out: TextIO) -> int:
     needs_plot(args, "--sigma-w2-range", "--sigma-b2-range", "--grid")
     target = start_plot(args)
+    if args.sigma_b2 is not None and args.q_star is not None:  # one would be dropped
+        raise UsageError("--q-star and --sigma-b2 exclude each other: --sigma-b2 solves for the "
+                         "edge-of-chaos points at that bias variance (their q* follow from it); "
+                         "--q-star samples the edge-of-chaos line at those q*")
     act = activation_of(args)
     if args.sigma_b2 is not None:
         points = edge_of_chaos_at_bias(act, args.sigma_b2)
