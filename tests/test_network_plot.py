@@ -48,11 +48,11 @@ def test_panels_draw_the_result_numbers():
     r = propcalc.network_propagation(RESNET)
     fig = network_plot.plot_network(r)
     ax_q, ax_c, ax_g = fig.axes[:3]
-    (q_line,) = lines_with(ax_q, "q, mean field")
+    (q_line,) = lines_with(ax_q, "mean field")
     np.testing.assert_allclose(q_line.get_ydata(), r.q, rtol=0, atol=0)
-    (c_line,) = lines_with(ax_c, "c, mean field")
+    (c_line,) = lines_with(ax_c, "mean field")
     np.testing.assert_allclose(c_line.get_ydata(), r.c, rtol=0, atol=0)
-    (g_line,) = lines_with(ax_g, "gradient, mean field")
+    (g_line,) = lines_with(ax_g, "mean field")
     np.testing.assert_allclose(g_line.get_ydata(), r.gradient, rtol=0, atol=0)
     # q doubles per residual block (Yang & Schoenholz 2017: second moments add): log scale
     assert ax_q.get_yscale() == "log" and ax_g.get_yscale() == "log"
@@ -79,7 +79,7 @@ def test_merging_inputs_shown_as_one_minus_c_on_log_scale():
     fig = network_plot.plot_network(r)
     ax_c = fig.axes[1]
     assert ax_c.get_yscale() == "log"
-    (line,) = lines_with(ax_c, "1 - c, mean field")
+    (line,) = lines_with(ax_c, "mean field")
     np.testing.assert_allclose(line.get_ydata(), 1.0 - np.array(r.c), rtol=0, atol=0)
     texts = [t.get_text() for leg in fig.legends for t in leg.get_texts()]
     assert any("inputs indistinguishable" in t for t in texts)
@@ -90,7 +90,7 @@ def test_simulated_positions_with_bands():
     assert r.gaussian_positions < len(r.q) - 1
     fig = network_plot.plot_network(r)
     ax_q = fig.axes[0]
-    (pts,) = lines_with(ax_q, "q, finite-width simulation")
+    (pts,) = lines_with(ax_q, "finite-width simulation")
     first = r.gaussian_positions + 1
     np.testing.assert_array_equal(pts.get_xdata(), np.arange(first, len(r.q)))
     np.testing.assert_allclose(pts.get_ydata(), r.q[first:], rtol=0, atol=0)
@@ -106,7 +106,7 @@ def test_tokens_and_attention():
               {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0}})]}}]}
     r = propcalc.network_propagation(tf, c0=0.2, c0_within=0.1, c0_between=0.05)
     fig = network_plot.plot_network(r)
-    (line,) = lines_with(fig.axes[1], "two positions of one input")
+    (line,) = lines_with(fig.axes[1], "two positions (tokens) of one input")
     np.testing.assert_allclose(line.get_ydata(), r.c_within, rtol=0, atol=0)
 
 
@@ -126,8 +126,8 @@ def test_long_network_one_line_per_block_kind():
     r = propcalc.network_propagation(plain(1500), c0=0.0)
     assert len(r.q) - 1 > network_plot.SPLIT_POSITIONS
     fig = network_plot.plot_network(r)
-    (dense,) = lines_with(fig.axes[0], "q after dense blocks")
-    (act,) = lines_with(fig.axes[0], "q after activation blocks")
+    (dense,) = lines_with(fig.axes[0], "mean field, after dense blocks")
+    (act,) = lines_with(fig.axes[0], "mean field, after activation blocks")
     np.testing.assert_array_equal(dense.get_xdata(), np.arange(1, 3001, 2))
     np.testing.assert_allclose(dense.get_ydata(), 2.0, rtol=1e-12)
     np.testing.assert_allclose(act.get_ydata(), 1.0, rtol=1e-12)

@@ -115,21 +115,20 @@ def _groups(result: NetworkPropagation, simulated: np.ndarray) -> list[tuple[str
 
 
 def _series(ax: Any, x: np.ndarray, y: np.ndarray, simulated: np.ndarray, band: Any,
-            label: str, log: bool, groups: list[tuple[str, np.ndarray]]) -> None:
+            log: bool, groups: list[tuple[str, np.ndarray]]) -> None:
     """The mean-field line(s) and the simulated points with their band."""
     for k, (name, mask) in enumerate(groups):
         colour = _GROUPS[k % len(_GROUPS)]
         if not name:
             marker = "o" if x.size <= 60 else None
             ax.plot(x, np.where(mask, y, np.nan), color=colour, linewidth=1.8, marker=marker,
-                    markersize=3, label=f"{label}, mean field")
+                    markersize=3, label="mean field")
         elif np.count_nonzero(mask) > 1:
             ax.plot(x[mask], y[mask], color=colour, linewidth=1.4,
-                    label=f"{label} {name} blocks, mean field")
+                    label=f"mean field, {name} blocks")
         else:
             ax.plot(x[mask], y[mask], color=colour, linestyle="none", marker="o",
-                    markersize=4, label=f"{label} {name}" + ("" if name == "input" else
-                                                            " block"))
+                    markersize=4, label=name if name == "input" else f"mean field, {name} block")
     pos, lo, hi = band
     if pos.size:
         if log:
@@ -138,7 +137,7 @@ def _series(ax: Any, x: np.ndarray, y: np.ndarray, simulated: np.ndarray, band: 
         ax.fill_between(pos, lo, hi, color=_SIMULATED, alpha=0.25, linewidth=0,
                         label="simulation band (+- 2 SE)")
         ax.plot(pos, y[pos], color=_SIMULATED, linestyle="none", marker="o", markersize=3,
-                label=f"{label}, finite-width simulation")
+                label="finite-width simulation")
     if log:
         ax.set_yscale("log")
 
@@ -181,8 +180,7 @@ def plot_network(result: NetworkPropagation, *, title: str | None = None) -> Any
     ax_q, ax_c, ax_g = fig.subplots(3, 1, sharex=True)
 
     qband = _band(result, "q")
-    _series(ax_q, x, q, simulated, qband, "q", _log_helps(q, qband[1], qband[2]),
-            groups)
+    _series(ax_q, x, q, simulated, qband, _log_helps(q, qband[1], qband[2]), groups)
     ax_q.set_ylabel("q  (second moment per unit)")
 
     cband = _band(result, "c")
@@ -190,13 +188,13 @@ def plot_network(result: NetworkPropagation, *, title: str | None = None) -> Any
     near = bool(np.any(np.isfinite(gap) & (gap < NEAR_ONE))) and bool(
         np.all(gap[np.isfinite(gap)] > 0.0))
     if near:
-        _series(ax_c, x, gap, simulated, (cband[0], 1.0 - cband[2], 1.0 - cband[1]), "1 - c",
-                True, groups)
+        _series(ax_c, x, gap, simulated, (cband[0], 1.0 - cband[2], 1.0 - cband[1]), True,
+                groups)
         ax_c.axhline(s.distance, color=_MARKS["merge"][0], linestyle=":", linewidth=1.0,
-                     label=f"1 - c = {s.distance:g}")
+                     label=f"1 - c = {s.distance:g}: indistinguishable below")
         ax_c.set_ylabel("1 - c  (distance of two inputs)")
     else:
-        _series(ax_c, x, c, simulated, cband, "c", False, groups)
+        _series(ax_c, x, c, simulated, cband, False, groups)
         ax_c.set_ylabel("c  (correlation of two inputs)")
         finite = c[np.isfinite(c)]
         low = min(0.0, float(finite.min())) if finite.size else 0.0
@@ -204,20 +202,28 @@ def plot_network(result: NetworkPropagation, *, title: str | None = None) -> Any
     if result.c_within is not None:
         cw = _values(result.c_within)
         ax_c.plot(x, 1.0 - cw if near else cw, color=_WITHIN, linestyle="--", linewidth=1.4,
-                  label=("1 - " if near else "") + "two positions of one input")
+                  label="two positions (tokens) of one input" + (": 1 - c" if near else ""))
 
     gband = _band(result, "gradient")
     glog = _log_helps(g, gband[1], gband[2])
-    _series(ax_g, x, g, simulated, gband, "gradient", glog, groups)
+    _series(ax_g, x, g, simulated, gband, glog, groups)
     if glog:
         for level in (s.gradient_factor, 1.0 / s.gradient_factor):
-            ax_g.axhline(level, color="0.6", linestyle=":", linewidth=1.0)
+            ax_g.axhline(level, color="0.6", linestyle=":", linewidth=1.0,
+                         label=f"gradient factor {s.gradient_factor:g} either way")
     ax_g.set_ylabel("gradient  (mean square, output = 1)")
     ax_g.set_xlabel("stream position (0 = the input; a residual block is one position)")
 
     texts = {"distance": s.distance, "decorrelated": s.decorrelated,
              "gradient_factor": s.gradient_factor}
+    # one legend for the figure: every labelled element once (the panels share them)
     handles: list[Any] = []
+    labels: set[str] = set()
+    for ax in (ax_q, ax_c, ax_g):
+        for h, text in zip(*ax.get_legend_handles_labels()):
+            if text not in labels:
+                labels.add(text)
+                handles.append(h)
     seen: set[str] = set()
     for kind, pos in _marks(result):
         colour, text = _MARKS[kind]
@@ -240,11 +246,7 @@ def plot_network(result: NetworkPropagation, *, title: str | None = None) -> Any
     for ax in (ax_q, ax_c, ax_g):
         ax.set_xlim(-0.5, n + 0.5) if n <= 200 else ax.set_xlim(-0.01 * n, 1.01 * n)
         ax.grid(True, color="0.9", linewidth=0.6)
-        # "best" searches the data for a free corner: slow (and warned about) on long series
-        ax.legend(loc="best" if n <= 2000 else "upper right", fontsize=7)
-    if handles:
-        fig.legend(handles=handles, loc="outside lower center", ncols=2, fontsize=8,
-                   frameon=False)
+    fig.legend(handles=handles, loc="outside lower center", ncols=2, fontsize=8, frameon=False)
     if title is None:
         title = (f"q, c and the gradient through the network: {n} positions, inputs at "
                  f"q0 = {result.q0:g}, c0 = {result.c0:g}")
