@@ -33,7 +33,9 @@ ENTRY_POINT_GROUP = "propcalc.commands"
 
 _DESCRIPTION = (
     "Mean-field signal propagation for deep random networks: gains, fixed points, "
-    "edge of chaos, depth limits and initialisation plans; dropout, maxout, "
+    "edge of chaos, depth limits and initialisation plans; networks described block by "
+    "block (residual, normalisation, convolution, attention); activations shaped for a "
+    "depth; dropout, maxout, "
     "self-normalisation, Jacobian spectra, the softmax output layer, and finite-width "
     "checks on seeded random networks. Infinite-width predictions at initialisation: "
     "check them on your own model.")
