@@ -35,7 +35,7 @@ from propcalc.output.plots import (  # noqa: E402
 from propcalc.meanfield.sweep import sweep  # noqa: E402
 from propcalc.numerics.quadrature import DEFAULT_RULE  # noqa: E402
 from propcalc.output.phase_plot import edge_line_parts  # noqa: E402
-from propcalc.output.phase_regions import locate_regions  # noqa: E402
+from propcalc.output.phase_regions import BISECTION_STEPS, locate_regions  # noqa: E402
 
 TANH = propcalc.activation("tanh")
 SMALL = dict(n_grid=(9, 7))
@@ -269,7 +269,8 @@ def test_gelu_unbounded_boundary_is_the_computed_line():
     pts = np.concatenate(reg.unbounded_boundary)
     low = pts[pts[:, 1] < 0.1]
     assert low.shape[0] > 10
-    np.testing.assert_allclose(low[:, 1], q_r - low[:, 0], atol=(sw[1] - sw[0]) / 200)
+    # bisection leaves half an interval: a cell / 2^(BISECTION_STEPS + 1) along sigma_w2
+    np.testing.assert_allclose(low[:, 1], q_r - low[:, 0], atol=(sw[1] - sw[0]) / 2 ** BISECTION_STEPS)
 
 
 def test_gelu_edge_line_is_solid_only_where_it_is_the_edge():

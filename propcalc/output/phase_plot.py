@@ -102,7 +102,7 @@ def plot_phase_diagram(act: Activation, point: PointLike = None, *,
         tanh): about 0.2 ms per point, more for chaotic points whose c* is
         close to 1 (2-D integrals, about 10 ms each); pass ``executor`` for
         big grids. The region boundaries are then located between the
-        nodes by bisection (8 halvings of each grid edge a boundary crosses).
+        nodes by bisection (6 halvings of each grid edge a boundary crosses).
     q_input : float
         Mean squared input coordinate.
     xi_c_levels : sequence of float

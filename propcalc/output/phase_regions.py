@@ -39,9 +39,9 @@ __all__ = ["Regions", "BISECTION_STEPS", "ON_EDGE", "reached_chi_1", "point_clas
 
 Array = np.ndarray
 
-#: Halvings of a grid edge: the boundary is placed to 1/256 of a cell (a tenth of a pixel
+#: Halvings of a grid edge: the boundary is placed to 1/64 of a cell (an eighth of a pixel
 #: at the default size).
-BISECTION_STEPS = 8
+BISECTION_STEPS = 6
 #: A point of the edge-of-chaos line is the edge seen from q_input when chi_1 at the fixed
 #: point reached is 1 to this (the line's own q* gives 1 to rounding; another gives a
 #: different slope).
