@@ -39,8 +39,7 @@ def _edge_tanh(pc):
 
 def _sweep_tanh(pc):
     import numpy as np
-    w, b = np.meshgrid(np.linspace(0.5, 4, 16), np.linspace(0, 0.5, 16))
-    pc.sweep("tanh", w.ravel(), b.ravel())
+    pc.sweep("tanh", np.linspace(0.5, 4, 64), np.linspace(0, 0.5, 64))  # a 64 x 64 grid
 
 
 CASES = {
@@ -48,8 +47,9 @@ CASES = {
     "propagation, typed formula": lambda pc: pc.propagation("x * tanh(softplus(x))", 1.7, 0.05),
     "edge_of_chaos tanh, 9 q*": _edge_tanh,
     "recommend tanh, 20 layers": lambda pc: pc.recommend("tanh", depth=20),
-    "sweep tanh 16 x 16": _sweep_tanh,
-    "dropout tanh rho 0.9": lambda pc: pc.dropout_propagation("tanh", 1.7, 0.05, 0.9),
+    "sweep tanh 64 x 64": _sweep_tanh,
+    "dropout tanh rho 0.9": lambda pc: pc.dropout_propagation(pc.activation("tanh"), 1.7, 0.05,
+                                                              0.9),
 }
 
 #: one case in a fresh interpreter: CPU seconds of the call, caches emptied first
@@ -89,13 +89,14 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--base", default="8c978ff", help="the earlier commit (default 8c978ff)")
     ap.add_argument("--repeat", type=int, default=5, help="alternating runs per case")
+    ap.add_argument("--only", nargs="*", default=None, help="names of cases to run (default all)")
     args = ap.parse_args(argv)
     with tempfile.TemporaryDirectory() as tmp:
         before = _export(args.base, Path(tmp))
         after = Path.cwd()
         print(f"{'case':32s} {'before s':>9s} {'after s':>9s} {'ratio':>7s}")
         ratios = []
-        for name in CASES:
+        for name in args.only or CASES:
             tb, ta = [], []
             for _ in range(args.repeat):
                 tb.append(_time(before, name))
