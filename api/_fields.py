@@ -137,6 +137,8 @@ def _nullable(schema: dict[str, Any], allow_none: bool) -> dict[str, Any]:
         return {"oneOf": [schema, {"type": "null"}]}
     if "type" in schema:
         types = schema["type"] if isinstance(schema["type"], list) else [schema["type"]]
+        if "enum" in schema:  # an enum refuses what it does not list: null must be listed too
+            schema = {**schema, "enum": [*schema["enum"], None]}
         return {**schema, "type": [*types, "null"]}
     return {"oneOf": [schema, {"type": "null"}]}
 
