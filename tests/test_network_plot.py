@@ -147,3 +147,5 @@ def test_unknown_positions_without_simulation_are_named():
     fig = network_plot.plot_network(r)
     texts = [t.get_text() for leg in fig.legends for t in leg.get_texts()]
     assert f"not Gaussian from position {first}: no numbers (not simulated: see the notes)" in texts
+    for fmt in ("png", "svg"):  # the hatched region renders without warnings
+        assert save_figure(fig, None, fmt)
