@@ -183,9 +183,11 @@ class Computations(NetworkComputations):
         spec = req["activation"]
         layers = None
         if req.get("layers") is not None:
-            layers = [Layer.dense(d["in_features"], d["out_features"]) if d["kind"] == "dense"
-                      else Layer.conv(d["in_channels"], d["out_channels"], tuple(d["kernel_size"]))
-                      for d in req["layers"]]
+            # a plain stack: the channels must chain (issue 12 section 2)
+            layers = list(Layer.chain(
+                [Layer.dense(d["in_features"], d["out_features"]) if d["kind"] == "dense"
+                 else Layer.conv(d["in_channels"], d["out_channels"], tuple(d["kernel_size"]))
+                 for d in req["layers"]]))
         n = (len(layers) if layers is not None else
              len(req["widths"]) - 1 if req.get("widths") is not None else req["depth"])
         self._budget(spec, COSTS["plan"] + COSTS["plan_layer"] * n, f"a plan of {n} layers")

@@ -63,7 +63,12 @@ class Layer(Result):
         "dense" or "conv".
     in_features, out_features : int
         Matrix shape: columns and rows of the weight reshaped to 2-D
-        (``out_channels`` rows and ``in_channels * k`` columns for a convolution).
+        (``out_channels`` rows and ``in_channels * k`` columns for a convolution). Not
+        shown in the repr, where a Conv2d(3, 16, 3) would read "in_features=27": the fans
+        and the weight shape say it in the convolution's own terms.
+    in_channels, out_channels : int
+        Of a convolution (properties; for a dense layer, its numbers of inputs and
+        outputs).
     weight_shape : tuple of int
         (out, in) for dense layers; (out_channels, in_channels, *kernel) for
         convolutions (derived from the other fields).
@@ -74,8 +79,8 @@ class Layer(Result):
     fan_in: int
     fan_out: int
     kind: str = "dense"
-    in_features: int = field(default=0, metadata=OMIT)
-    out_features: int = field(default=0, metadata=OMIT)
+    in_features: int = field(default=0, repr=False, metadata=OMIT)
+    out_features: int = field(default=0, repr=False, metadata=OMIT)
     weight_shape: tuple[int, ...] = field(init=False)
     kernel_size: tuple[int, ...] = ()
 
@@ -87,6 +92,54 @@ class Layer(Result):
             k = int(np.prod(self.kernel_size))
             shape = (self.out_features, self.in_features // k, *self.kernel_size)
         object.__setattr__(self, "weight_shape", shape)
+
+    @property
+    def in_channels(self) -> int:
+        """Input channels of a convolution (inputs of a dense layer)."""
+        return self.weight_shape[1]
+
+    @property
+    def out_channels(self) -> int:
+        """Output channels of a convolution (outputs of a dense layer)."""
+        return self.weight_shape[0]
+
+    @staticmethod
+    def chain(layers: Sequence["Layer"], field: str = "layers") -> tuple["Layer", ...]:
+        """The layers of a plain stack, checked to take each other's outputs.
+
+        Each dense layer after a dense layer must take as many inputs as the previous one
+        has outputs; each convolution after a convolution as many input channels as the
+        previous one has output channels (issue 12 section 2: ``--conv 3:64:3x3 --conv
+        32:64:3x3`` was accepted). A dense layer after a convolution (a flattening) and a
+        convolution after a dense layer are not checked.
+        The command line's ``--conv`` layers and the service's ``layers`` describe a plain
+        stack and pass through here; :func:`propcalc.recommend` takes ``layers`` as given,
+        since the layers of a real module (``module_layers``: residual projections, grouped
+        convolutions, concatenations) need not chain.
+
+        Raises
+        ------
+        InvalidParameterError
+            Naming ``field[i]`` of the first layer that does not take the previous one's
+            outputs.
+        """
+        out = tuple(layers)
+        for i, layer in enumerate(out):
+            if not isinstance(layer, Layer):
+                raise InvalidParameterError(f"{field}[{i}]", "a Layer", layer)
+        for i in range(1, len(out)):
+            prev, cur = out[i - 1], out[i]
+            if prev.kind != cur.kind:
+                continue
+            if cur.kind == "dense":
+                what, got, want = "inputs", cur.in_features, prev.out_features
+            else:
+                what, got, want = "input channels", cur.in_channels, prev.out_channels
+            if got != want:
+                raise InvalidParameterError(
+                    f"{field}[{i}]", f"a layer with {want} {what}, the outputs of "
+                    f"{field}[{i - 1}], in a plain stack", got)
+        return out
 
     @classmethod
     def dense(cls, in_features: int, out_features: int) -> "Layer":

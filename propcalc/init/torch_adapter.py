@@ -16,6 +16,7 @@ both shapes and fans; nothing is changed in that case.
 
 from __future__ import annotations
 
+import warnings
 from typing import Any
 
 from .draw import SeedLike, draw_plan
@@ -23,7 +24,8 @@ from ..errors import PropcalcError
 from .layers import Layer
 from .plan import InitPlan
 
-__all__ = ["PlanMismatchError", "module_layers", "apply_plan", "TORCH_INSTALL_HINT"]
+__all__ = ["PlanMismatchError", "UnmodelledLayerWarning", "module_layers", "apply_plan",
+           "TORCH_INSTALL_HINT"]
 
 TORCH_INSTALL_HINT = ("this needs PyTorch >= 2.1 (propcalc's optional `torch` extra): install a "
                       "CPU or GPU build of torch")
@@ -31,6 +33,14 @@ TORCH_INSTALL_HINT = ("this needs PyTorch >= 2.1 (propcalc's optional `torch` ex
 
 class PlanMismatchError(PropcalcError, ValueError):
     """The module's layers and the plan's layers disagree (count, shape or fans)."""
+
+
+class UnmodelledLayerWarning(UserWarning):
+    """:func:`module_layers` met layers a plain-stack plan does not model (LayerNorm...)."""
+
+
+#: how many skipped layers a warning names before it counts the rest
+_NAMED_SKIPS = 6
 
 
 def _torch() -> Any:
@@ -63,6 +73,27 @@ def _layer_of(index: int, name: str, m: Any) -> Layer:
     return Layer.conv(int(m.in_channels) // groups, int(m.out_channels), tuple(m.kernel_size))
 
 
+def _skipped(module: Any) -> list[str]:
+    """The module's parts that a plain stack of Linear/Conv layers and one activation does
+    not model: leaf modules other than those layers, activation functions and reshapes
+    (normalisation, dropout, pooling, embeddings, custom layers), and any module holding
+    parameters or buffers of its own (attention's projections)."""
+    nn = _torch().nn
+    kept = (nn.Linear, nn.Conv1d, nn.Conv2d, nn.Conv3d, nn.Identity, nn.Flatten, nn.Unflatten)
+    out = []
+    for name, m in module.named_modules():
+        if isinstance(m, kept):
+            continue
+        if (type(m).__module__ == "torch.nn.modules.activation"
+                and not isinstance(m, nn.MultiheadAttention)):
+            continue  # the activation the plan is made for (checked by the caller)
+        own = (next(m.parameters(recurse=False), None) is not None
+               or next(m.buffers(recurse=False), None) is not None)
+        if own or next(m.children(), None) is None:
+            out.append(f"{type(m).__name__} '{name or '<root>'}'")
+    return out
+
+
 def _describe(layer: Layer) -> str:
     return (f"{layer.kind} weight shape {tuple(layer.weight_shape)} "
             f"(fan_in {layer.fan_in}, fan_out {layer.fan_out})")
@@ -74,6 +105,15 @@ def module_layers(module: Any) -> tuple[Layer, ...]:
     Use it to make a plan that fits a model:
     ``recommend(act, layers=module_layers(model))``.
 
+    Warns
+    -----
+    UnmodelledLayerWarning
+        Naming the modules it skips that change the signal (LayerNorm, BatchNorm,
+        Dropout, pooling, attention, embeddings, custom layers): the plan treats the model
+        as a plain stack, so it does not account for them (issue 12 section 2: they were
+        skipped silently). :func:`propcalc.read_module` and :func:`propcalc.plan_module`
+        read such modules as networks of blocks.
+
     Raises
     ------
     ImportError
@@ -81,7 +121,15 @@ def module_layers(module: Any) -> tuple[Layer, ...]:
     PlanMismatchError
         If ``module`` is not an ``nn.Module`` or a layer is still lazy.
     """
-    return tuple(_layer_of(i + 1, name, m) for i, (name, m) in enumerate(_targets(module)))
+    layers = tuple(_layer_of(i + 1, name, m) for i, (name, m) in enumerate(_targets(module)))
+    skipped = _skipped(module)
+    if skipped:
+        named = ", ".join(skipped[:_NAMED_SKIPS])
+        more = f" and {len(skipped) - _NAMED_SKIPS} more" if len(skipped) > _NAMED_SKIPS else ""
+        warnings.warn(f"module_layers reads only the Linear and Conv layers; the plan does not "
+                      f"model {named}{more}: use propcalc.plan_module to plan the model as a "
+                      "network of blocks", UnmodelledLayerWarning, stacklevel=2)
+    return layers
 
 
 def apply_plan(module: Any, plan: InitPlan, seed: SeedLike = None, *,

@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from typing import Any, TextIO
 
-from ... import recommend
+from ... import Layer, recommend
 from ..options import (
     EXIT_OK,
     UsageError,
@@ -33,7 +33,9 @@ def _cmd_plan(args: argparse.Namespace, out: TextIO) -> int:
         raise UsageError("the network's size is missing: give --depth N, --widths d0,d1,...,dL "
                          "or --conv IN:OUT:KERNEL (repeatable)")
     act = activation_of(args)
-    layers = [conv_layer(spec) for spec in args.conv] if args.conv else None
+    # the --conv layers describe a plain stack: their channels must chain (issue 12 section 2)
+    layers = list(Layer.chain([conv_layer(spec) for spec in args.conv], "--conv")) \
+        if args.conv else None
     training = {}
     if args.loss is not None:
         training = dict(loss=args.loss, n_classes=args.n_classes, batch_size=args.batch_size,
