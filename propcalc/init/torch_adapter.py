@@ -168,7 +168,7 @@ def apply_plan(module: Any, plan: InitPlan, seed: SeedLike = None, *,
     Examples
     --------
     >>> import torch, propcalc                                   # doctest: +SKIP
-    >>> from propcalc.torch_init import apply_plan, module_layers  # doctest: +SKIP
+    >>> from propcalc.init.torch_adapter import apply_plan, module_layers  # doctest: +SKIP
     >>> net = torch.nn.Sequential(torch.nn.Linear(64, 256), torch.nn.Tanh(),
     ...                           torch.nn.Linear(256, 10))       # doctest: +SKIP
     >>> plan = propcalc.recommend(propcalc.activation("tanh"),
