@@ -120,6 +120,13 @@ def test_plan_text_agrees_with_network_plan():
     assert plan.branch_weight.message in section
 
 
+def test_nothing_flagged_states_the_thresholds(tmp_path):
+    code, out, err = run("network", write(tmp_path, relu_stack(3)), "--no-plan")
+    assert code == 0, err
+    assert propcalc.network_propagation(relu_stack(3)).summary.findings == ()
+    assert "- nothing flagged (thresholds: inputs merge at 1 - c <= 0.001" in out
+
+
 def test_reads_stdin(monkeypatch):
     monkeypatch.setattr(sys, "stdin", io.StringIO(json.dumps(relu_stack(3))))
     code, out, err = run("network", "-", "--json", "--no-plan")

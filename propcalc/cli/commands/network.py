@@ -169,10 +169,10 @@ def _summary_lines(summary: Any) -> list[str]:
         if f.advice:
             out.append(f"  change: {f.advice}")
     if not summary.findings:
-        out.append(f"- nothing to flag: the two inputs neither merge (1 - c <= "
-                   f"{summary.distance:g}) nor decorrelate, gradients stay within "
-                   f"{summary.gradient_factor:g}x and the signal within "
-                   f"{summary.signal_factor:g}x")
+        out.append(f"- nothing flagged (thresholds: inputs merge at 1 - c <= "
+                   f"{summary.distance:g}, lose their correlation at |c| <= "
+                   f"{summary.decorrelated:g}; gradients beyond {summary.gradient_factor:g}x, "
+                   f"the signal beyond {summary.signal_factor:g}x)")
     return out
 
 
