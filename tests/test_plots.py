@@ -374,3 +374,25 @@ def test_map_on_the_identity_is_magnified():
     # C(c) within a hair of c: tanh just above sigma_w2 = 1 with sigma_b2 = 0 (q* small)
     fig = plot_correlation_map(TANH, (1.0005, 0.0), n_points=15)
     assert len(fig.axes) == 2 and "C(c) - c" in fig.axes[1].get_ylabel()
+
+
+def test_phase_diagram_says_what_lies_outside_the_window():
+    # sigmoid: ordered over the whole default window, its edge far to the right
+    fig = plot_phase_diagram(propcalc.activation("sigmoid"), n_grid=(7, 5))
+    labels = legend_texts(fig)
+    assert any(t.startswith("edge of chaos outside this window (nearest: sigma_w2 = ")
+               for t in labels)
+    assert any(t.startswith("xi_c from ") and t.endswith("no level crossed") for t in labels)
+    # ReLU's one critical point (2, 0) (He et al. 2015) and a point beyond the window
+    relu = propcalc.activation("relu")
+    fig = plot_phase_diagram(relu, (3.0, 0.1), sigma_w2_range=(0.5, 1.5), n_grid=(7, 5))
+    labels = legend_texts(fig)
+    assert "edge of chaos: one point (2, 0), outside this window" in labels
+    assert any(t.endswith("(outside this window)") and t.startswith("your point (3, 0.1)")
+               for t in labels)
+    assert user_markers(fig) == []
+    assert all(np.all(ln.get_xdata() <= 1.5) for ln in fig.axes[0].get_lines())
+    # step jumps: chi_1 is infinite, there is no line
+    fig = plot_phase_diagram(propcalc.activation("step"), n_grid=(5, 4))
+    assert any("chi_1 is infinite for an activation with a jump" in t
+               for t in legend_texts(fig))

@@ -160,7 +160,11 @@ def plot_phase_diagram(act: Activation, point: PointLike = None, *,
     if prop is not None:
         label = wrap(f"your point ({fmt(prop.sigma_w2)}, {fmt(prop.sigma_b2)}): {prop.phase}, "
                      f"{xi_c_words(prop)}", 48)
-        mark_user(ax, prop.sigma_w2, prop.sigma_b2, label)
+        (x0, x1), (y0, y1) = ax.get_xlim(), ax.get_ylim()
+        if x0 <= prop.sigma_w2 <= x1 and y0 <= prop.sigma_b2 <= y1:
+            mark_user(ax, prop.sigma_w2, prop.sigma_b2, label)
+        else:
+            label += "\n(outside this window)"
         handles.append(Line2D([], [], linestyle="none", marker="*", markersize=13,
                               color=USER, markeredgecolor="black", label=label))
         avoid.append((prop.sigma_w2, prop.sigma_b2))
@@ -226,6 +230,12 @@ def _contours(ax: Any, sw: np.ndarray, sb: np.ndarray, xi_c: np.ndarray,
         out.append((cs, lambda v: f"{v:g}", 8.0))
         handles.append(Line2D([], [], color=XI, linewidth=0.8,
                               label="xi_c = " + ", ".join(f"{v:g}" for v in levels)))
+    else:
+        finite = xi_c[np.isfinite(xi_c)]
+        if finite.size:
+            handles.append(Line2D([], [], linestyle="none",
+                                  label=f"xi_c from {fmt(float(finite.min()), 2)} to "
+                                        f"{fmt(float(finite.max()), 2)} here: no level crossed"))
     levels = _levels_within([v for v in sorted(set(depth_levels)) if v != depth], td)
     if levels:
         cs = ax.contour(sw, sb, 6.0 * xi_plot, levels=levels, colors=DEPTH, linewidths=1.1,
@@ -254,14 +264,36 @@ def _edge(ax: Any, act: Activation, q_input: float, rule: QuadratureRule) -> lis
     fin = np.isfinite(e_sw)
     whole = np.concatenate([v[0][np.isfinite(v[0])] for v in parts.values()])
     whole_b = np.concatenate([v[1][np.isfinite(v[1])] for v in parts.values()])
-    if whole.size and np.ptp(whole) < 1e-9 * max(1.0, abs(whole[0])) and np.ptp(whole_b) < 1e-9:
-        ax.plot([whole[0]], [whole_b[0]], linestyle="none", marker="o", markersize=8,
-                color=EDGE, zorder=6, clip_on=False)
-        handles.append(Line2D([], [], linestyle="none", marker="o", color=EDGE,
-                              label=f"edge of chaos: one point ({fmt(whole[0])}, "
-                                    f"{fmt(whole_b[0])})"))
-        return handles
     (x0, x1), (y0, y1) = ax.get_xlim(), ax.get_ylim()
+    if whole.size and np.ptp(whole) < 1e-9 * max(1.0, abs(whole[0])) and np.ptp(whole_b) < 1e-9:
+        inside = x0 <= whole[0] <= x1 and y0 <= whole_b[0] <= y1
+        if inside:
+            ax.plot([whole[0]], [whole_b[0]], linestyle="none", marker="o", markersize=8,
+                    color=EDGE, zorder=6, clip_on=False)
+        handles.append(Line2D([], [], linestyle="none", marker="o" if inside else None,
+                              color=EDGE,
+                              label=f"edge of chaos: one point ({fmt(whole[0])}, "
+                                    f"{fmt(whole_b[0])})" + ("" if inside else ", outside "
+                                                             "this window")))
+        return handles
+    if act.has_jumps:
+        handles.append(Line2D([], [], linestyle="none", label="no edge of chaos: chi_1 is "
+                              "infinite for an activation with a jump"))
+        return handles
+    shown = [(x >= x0) & (x <= x1) & (y >= y0) & (y <= y1) for x, y in parts.values()]
+    if whole.size and not any(np.any(m) for m in shown):
+        # the nearest point of the line, in units of the window
+        d = np.hypot((np.clip(whole, x0, x1) - whole) / (x1 - x0),
+                     (np.clip(whole_b, y0, y1) - whole_b) / (y1 - y0))
+        k = int(np.argmin(d))
+        handles.append(Line2D([], [], linestyle="none",
+                              label=f"edge of chaos outside this window (nearest: "
+                                    f"sigma_w2 = {fmt(whole[k])}, sigma_b2 = {fmt(whole_b[k])})"))
+        return handles
+    if not whole.size:
+        handles.append(Line2D([], [], linestyle="none",
+                              label="no edge of chaos with sigma_b2 >= 0"))
+        return handles
 
     def visible(x: np.ndarray, y: np.ndarray) -> bool:
         """Whether the piece spans more than _SPECK of the axes inside the window."""
