@@ -65,10 +65,15 @@ network propagation        200 + 1.5 per unit of the engine's Network.cost (one
                             multiply-add of the simulated networks
 network plan                300 + 2.5 per unit; 40 per unit with a target
                             (the branch-weight search)
-network image               the image + the propagation
+network image               the image + the propagation + 0.2 per position
 shaping                     400 + 1.5 per layer (twice for a formula; elu by
-                            deep kernel shaping: 2.1 ms per layer)
-shaping image               the image + the shaping
+                            deep kernel shaping: 2.1 ms per layer); 0.05 per
+                            layer for the leaky slope form (relu, leaky_relu
+                            by tat: closed forms)
+shaping image               the image + the shaping + (8 + 0.1 n_points) per
+                            layer (ten times for a formula: its composed
+                            maps are 2-D integrals, 0.75 ms per point and
+                            layer); 0.1 per layer for the leaky slope form
 ==========================  =====================================================
 
 The per-point cost of a phase diagram is its typical cost over the default
@@ -173,6 +178,12 @@ COSTS = {
     "network_simulation_element": 5e-7,
     "shape": 400.0,
     "shape_layer": 1.5,
+    "shape_slope_layer": 0.05,
+    "shape_slope_plot_layer": 0.1,
+    "network_plot_position": 0.2,
+    "shape_plot_layer": 8.0,
+    "shape_plot_point_layer": 0.1,
+    "shape_plot_formula_factor": 10.0,
 }
 
 

@@ -40,8 +40,10 @@ from ._budget import COSTS, FORMULA_FACTOR, check_budget
 from ._fields import format_number
 
 __all__ = ["NetworkComputations", "network_estimate", "simulation_estimate", "shape_estimate",
-           "formula_activations"]
+           "shape_plot_cost", "slope_form", "formula_activations", "SLOPE_FORM_BASES"]
 
+#: built-ins that "tat" shapes in the closed-form slope form (propcalc.shaping.solve)
+SLOPE_FORM_BASES = ("relu", "leaky_relu")
 #: inputs of the simulation that fills non-Gaussian positions (measure_network's default)
 SIMULATED_INPUTS = int(inspect.signature(measure_network).parameters["inputs"].default)
 
@@ -108,9 +110,31 @@ def simulation_estimate(net: Network) -> float:
             + COSTS["network_simulation_element"] * work * SIMULATION_REPETITIONS)
 
 
-def shape_estimate(depth: int, formula: bool) -> float:
-    """Estimated units of one shaping solve at this depth."""
-    return (COSTS["shape"] + COSTS["shape_layer"] * depth) * (FORMULA_FACTOR if formula else 1.0)
+def shape_plot_cost(req: dict[str, Any]) -> float:
+    """Estimated units of the curves of the shaping image: the network map before and after
+    shaping at ``n_points`` correlations, composed layer by layer (closed forms for the leaky
+    slope form, which costs nothing per layer)."""
+    spec = req["activation"]
+    if slope_form(req):
+        return COSTS["shape_slope_plot_layer"] * req["depth"]
+    per = COSTS["shape_plot_layer"] + COSTS["shape_plot_point_layer"] * req["n_points"]
+    factor = COSTS["shape_plot_formula_factor"] if "formula" in spec else 1.0
+    return per * req["depth"] * factor
+
+
+def slope_form(req: dict[str, Any]) -> bool:
+    """Whether the request is shaped in the closed-form leaky slope form (tat of relu and
+    leaky_relu, built-in)."""
+    return req["method"] == "tat" and req["activation"].get("name") in SLOPE_FORM_BASES
+
+
+def shape_estimate(req: dict[str, Any]) -> float:
+    """Estimated units of one shaping solve."""
+    depth = req["depth"]
+    if slope_form(req):
+        return COSTS["shape"] + COSTS["shape_slope_layer"] * depth
+    factor = FORMULA_FACTOR if "formula" in req["activation"] else 1.0
+    return (COSTS["shape"] + COSTS["shape_layer"] * depth) * factor
 
 
 class NetworkComputations:
@@ -120,8 +144,10 @@ class NetworkComputations:
     activation: Any
 
     # -- networks ----------------------------------------------------------------------------
-    def _network(self, req: dict[str, Any], plan: dict[str, Any] | None) -> tuple[Network, float]:
-        """The validated network and the estimate of the work admitted so far."""
+    def _network(self, req: dict[str, Any], plan: dict[str, Any] | None, extra: float = 0.0,
+                 per_position: float = 0.0) -> tuple[Network, float]:
+        """The validated network and the estimate of the work admitted so far (with ``extra``
+        units, plus ``per_position`` units per stream position, of what follows: an image)."""
         budget = self.limits.work_budget
         description = req["network"]
         formulas = formula_activations(description)
@@ -131,6 +157,7 @@ class NetworkComputations:
                          "/network", "use fewer distinct formulas")
         net = network(description)
         prop, planned = network_estimate(net, plan, formulas > 0)
+        prop += extra + per_position * net.n_positions
         what = (f"a network of {net.n_positions} positions ({format_number(round(net.cost))} "
                 "correlation-map evaluations)")
         if plan is not None and prop <= budget < prop + planned:
@@ -172,17 +199,17 @@ class NetworkComputations:
                          "plan": None if planned is None else planned.to_dict(),
                          "verdict": network_verdict(result).to_dict()})
 
-    def network_result(self, req: dict[str, Any]) -> Any:
-        """The NetworkPropagation of a request (for the image)."""
-        net, admitted = self._network(req, None)
+    def network_result(self, req: dict[str, Any], extra: float = 0.0,
+                       per_position: float = 0.0) -> Any:
+        """The NetworkPropagation of a request (for the image: the units to draw it)."""
+        net, admitted = self._network(req, None, extra, per_position)
         return self._propagate(net, req, admitted)
 
     # -- shaping -----------------------------------------------------------------------------
     def shaped(self, req: dict[str, Any], extra: float = 0.0) -> Any:
         """The ShapedActivation of a request (``extra``: units of what follows, e.g. an image)."""
         spec = req["activation"]
-        formula = "formula" in spec
-        check_budget(shape_estimate(req["depth"], formula) + extra, self.limits.work_budget,
+        check_budget(shape_estimate(req) + extra, self.limits.work_budget,
                      f"shaping an activation for depth {req['depth']}", "/depth",
                      "ask for a smaller depth")
         return shape_activation(self.activation(spec), req["depth"], target=req.get("target"),

@@ -40,6 +40,7 @@ from ._budget import (
 )
 from ._config import PLOT_DPI_DEFAULT
 from ._meter import MeteredExecutor, metered_chunk_size, take_expensive_slot
+from ._networks import shape_plot_cost
 from ._problems import Problem
 from ._service import Computations
 
@@ -233,5 +234,31 @@ class Plots:
                                          q_input=req["q_input"], progress=False,
                                          executor=meter,
                                          chunk_size=metered_chunk_size(meter.total_points))
+
+        return self._render(make, fmt, req["dpi"])
+
+    # -- networks and shaping (issues 14 and 16) --------------------------------------------------
+    def network(self, req: dict[str, Any], fmt: str) -> bytes:
+        """q, c and the gradient against the stream position (propcalc.output.network_plot)."""
+        plots_module()
+        image = plot_image_cost(fmt, req["dpi"])
+        result = self.computations.network_result(req, extra=image,
+                                                  per_position=COSTS["network_plot_position"])
+
+        def make(mod: ModuleType) -> Any:
+            return importlib.import_module("propcalc.output.network_plot").plot_network(result)
+
+        return self._render(make, fmt, req["dpi"])
+
+    def shape(self, req: dict[str, Any], fmt: str) -> bytes:
+        """The network correlation map before and after shaping (propcalc.output.shaping_plot)."""
+        plots_module()
+        n = req["n_points"]
+        extra = plot_image_cost(fmt, req["dpi"]) + shape_plot_cost(req)
+        shaped = self.computations.shaped(req, extra=extra)
+
+        def make(mod: ModuleType) -> Any:
+            return importlib.import_module("propcalc.output.shaping_plot").plot_shaping(
+                shaped, n_points=n)
 
         return self._render(make, fmt, req["dpi"])

@@ -234,6 +234,18 @@ ENDPOINTS: tuple[Endpoint, ...] = (
              "achieved C_L(0) and C_L'(1), the conditions, every root found and the one "
              "chosen, the depth verdict; used with sigma_w2 = 1, sigma_b2 = 0.",
              "ShapeRequest", None, "ShapedActivation", "shape", _POST_ERRORS, "shaping"),
+    Endpoint("network_plot", "/v1/plots/network", "POST", "Network image",
+             "q, c and the gradient against the stream position of a described network "
+             "(the members of POST /v1/network without the plan), the positions the summary "
+             "flags marked, simulated positions with their bands." + _IMAGE_NOTE,
+             "NetworkPlotRequest", None, "", "network", _IMAGE_POST_ERRORS, "images",
+             image=True),
+    Endpoint("shape_plot", "/v1/plots/shape", "POST", "Shaping image",
+             "The whole-network correlation map C_L(c_0) before (the base activation at its "
+             "edge of chaos) and after shaping, with the target, and the correlation of two "
+             "orthogonal inputs layer by layer (the members of POST /v1/shape and n_points)."
+             + _IMAGE_NOTE, "ShapePlotRequest", None, "", "shape", _IMAGE_POST_ERRORS, "images",
+             image=True),
     *_image_endpoints(
         "phase_diagram", "phase-diagram", "Phase diagram image",
         "Ordered (chi_1 < 1) and chaotic (chi_1 > 1) regions over a sigma_w2 x sigma_b2 grid, "

@@ -237,3 +237,32 @@ def test_openapi_documents_the_description(client, strict_json):
             propcalc.network(bad)
         assert not validator.is_valid(bad)
     assert np.all([p in doc["paths"] for p in ("/v1/network", "/v1/shape")])
+
+
+# ---------------------------------------------------------------------------------------------
+# the image: q, c and the gradient against the position (propcalc.output.network_plot)
+# ---------------------------------------------------------------------------------------------
+def test_network_image(client, make_client):
+    body = {"network": residual_net("relu", 12), "c0": 0.1, "format": "svg"}
+    first = client.post("/v1/plots/network", json=body)
+    assert first.status_code == 200 and first.mimetype == "image/svg+xml"
+    assert first.data.lstrip().startswith(b"<?xml") and b"<svg" in first.data
+    # deterministic: the same request drawn again by another app without an image cache
+    again = make_client(PLOT_CACHE_ENTRIES=0).post("/v1/plots/network", json=body)
+    assert again.headers["X-Propcalc-Cache"] == "miss"
+    assert again.data == first.data and again.headers["ETag"] == first.headers["ETag"]
+    png = client.post("/v1/plots/network", json={**body, "format": "png", "dpi": 50})
+    assert png.status_code == 200 and png.data[:8] == b"\x89PNG\r\n\x1a\n"
+    assert png.headers["Content-Disposition"] == 'inline; filename="network.png"'
+
+
+def test_network_image_errors(client):
+    bad = {"blocks": [dense(2.0), {"residual": {"branch": [{"dense": {"sigma_w2": 1.0}}]}}]}
+    got = problem(client.post("/v1/plots/network", json={"network": bad}), 422, INVALID)
+    assert pointers(got) == ["/network/blocks/1/residual/branch/0/dense/sigma_b2"]
+    got = problem(client.post("/v1/plots/network", json={"network": stack("relu", 2),
+                                                         "plan": None}), 422, INVALID)
+    assert pointers(got) == ["/plan"]  # the image has no plan
+    got = problem(client.post("/v1/plots/network",
+                              json={"network": stack("tanh", 2000, 1.5, 0.05)}), 422, BUDGET)
+    assert pointers(got) == ["/network"]

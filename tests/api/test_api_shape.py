@@ -130,3 +130,26 @@ def test_openapi_documents_shaping(client, strict_json):
     res = doc["components"]["schemas"]["ShapedActivation"]
     assert {"params", "network_map_at_0", "network_slope_at_1", "roots",
             "depth_verdict"} <= set(res["properties"])
+
+
+def test_shaping_image(client, make_client):
+    body = {"activation": "tanh", "depth": 20, "n_points": 21, "format": "svg"}
+    first = client.post("/v1/plots/shape", json=body)
+    assert first.status_code == 200 and first.mimetype == "image/svg+xml"
+    # deterministic: drawn again by another app without an image cache, the same bytes
+    again = make_client(PLOT_CACHE_ENTRIES=0).post("/v1/plots/shape", json=body)
+    assert again.headers["X-Propcalc-Cache"] == "miss"
+    assert again.data == first.data and again.headers["ETag"] == first.headers["ETag"]
+    png = client.post("/v1/plots/shape", json={"activation": "relu", "depth": 50, "dpi": 50},
+                      headers={"Accept": "image/png"})
+    assert png.status_code == 200 and png.data[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_shaping_image_errors(client):
+    got = problem(client.post("/v1/plots/shape", json={"activation": "tanh", "depth": 20,
+                                                       "n_points": 4}), 422, INVALID)
+    assert [e["pointer"] for e in got["errors"]] == ["/n_points"]
+    # the composed maps of a formula are 2-D integrals per point and layer: refused up front
+    got = problem(client.post("/v1/plots/shape", json={
+        "activation": {"formula": "x * sigmoid(x)"}, "depth": 500}), 422, BUDGET)
+    assert [e["pointer"] for e in got["errors"]] == ["/depth"]
