@@ -684,3 +684,46 @@ def test_edge_at_bias_returns_the_bias_asked_for(name, sigma_b2):
         again = propcalc.edge_of_chaos(name, cp.q_star)
         assert again.sigma_b2 == pytest.approx(sigma_b2, rel=1e-12)
         assert again.sigma_w2 == cp.sigma_w2
+
+
+# ------------------------------------------------------------------------------------------
+# an oscillating formula on the edge of chaos (issue 12, section 1)
+# ------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("q_star", [1.5, 6.0])
+def test_sine_plus_linear_edge_of_chaos(q_star):
+    # phi = sin(2x) + x/2: E[phi'^2] = 2 (1 + e^(-8q)) + 2 e^(-2q) + 1/4,
+    # E[phi^2] = (1 - e^(-8q)) / 2 + 2 q e^(-2q) + q / 4 and
+    # d/dq E[phi^2] = 4 e^(-8q) + 2 e^(-2q) - 4 q e^(-2q) + 1/4 (Gaussian characteristic
+    # function and Stein's identity E[x sin(2x)] = 2 q E[cos 2x]), by mpmath at 30 digits.
+    # It missed chi_q by 4e-10 at q* = 1.5 and q* by 4e-7 at 6 (the c* solve then failed)
+    with mpmath.workdps(30):
+        q = mpmath.mpf(q_star)
+        e2, e8 = mpmath.exp(-2 * q), mpmath.exp(-8 * q)
+        sw = 1 / (2 * (1 + e8) + 2 * e2 + mpmath.mpf(1) / 4)
+        sb = q - sw * ((1 - e8) / 2 + 2 * q * e2 + q / 4)
+        chi_q = sw * (4 * e8 + 2 * e2 - 4 * q * e2 + mpmath.mpf(1) / 4)
+        sw, sb, chi_q = float(sw), float(sb), float(chi_q)
+    cp = propcalc.edge_of_chaos("sin(2*x) + 0.5*x", q_star)
+    assert cp.sigma_w2 == pytest.approx(sw, rel=1e-13)
+    assert cp.sigma_b2 == pytest.approx(sb, rel=1e-13)
+    assert cp.chi_q == pytest.approx(chi_q, rel=1e-12)
+    p = propcalc.propagation("sin(2*x) + 0.5*x", sw, sb)
+    assert p.q_star == pytest.approx(q_star, rel=1e-13)
+    assert p.chi_q == pytest.approx(chi_q, rel=1e-12)
+    assert abs(p.chi_1 - 1.0) <= 1e-13
+
+
+@pytest.mark.parametrize("sw,sb", [(4.0, 0.1), (40.0, 1.0)])
+def test_sine_chaotic_fixed_points(sw, sb):
+    # sin: V(q) = sigma_w2 (1 - e^(-2q)) / 2 + sigma_b2 and C(c) = (sigma_w2 e^(-q) sinh(q c)
+    # + sigma_b2) / q* (characteristic functions, as above); roots by mpmath.findroot
+    p = propcalc.propagation("sin(x)", sw, sb)
+    with mpmath.workdps(30):
+        w, b = mpmath.mpf(sw), mpmath.mpf(sb)
+        q = mpmath.findroot(lambda t: w * -mpmath.expm1(-2 * t) / 2 + b - t, p.q_star)
+        c = mpmath.findroot(lambda t: (w * mpmath.exp(-q) * mpmath.sinh(q * t) + b) / q - t,
+                            p.c_star)
+        chi_c = float(w * mpmath.exp(-q) * mpmath.cosh(q * c))
+    assert p.q_star == pytest.approx(float(q), rel=1e-13)
+    assert p.c_star == pytest.approx(float(c), abs=1e-14)
+    assert p.chi_c == pytest.approx(chi_c, rel=1e-12, abs=1e-15)

@@ -468,3 +468,36 @@ def test_variance_map_slope_at_small_variance(name, fn, q):
         ref = float(1.5 * mpmath.diff(second, mpmath.mpf(q)))
     got = float(maps.variance_map_slope(A(name), q, 1.5))
     assert got == pytest.approx(ref, rel=2e-11)
+
+
+# ------------------------------------------------------------------------------------------
+# oscillating formulas (issue 12, section 1)
+# ------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("q", [1.0, 10.0, 30.0, 100.0, 1e3, 1e5])
+def test_sine_second_moment_at_large_variance(q):
+    # E[sin(sqrt(q) z)^2] = (1 - e^(-2q)) / 2 (E[cos(a z)] = e^(-a^2 / 2), the Gaussian
+    # characteristic function); it was off by 2.6e-10 at q = 10, 9e-6 at 30 and 1% at 100
+    act = A("sin(x)")
+    assert act.reach == math.inf  # oscillates: panels graded to its scale everywhere
+    ref = -math.expm1(-2.0 * q) / 2.0
+    assert float(maps.second_moment(act, q)) == pytest.approx(ref, rel=1e-13)
+
+
+@pytest.mark.parametrize("q", [2.0, 20.0])
+def test_sine_correlation_map(q):
+    # E[sin(u1) sin(u2)] = (E[cos(u1 - u2)] - E[cos(u1 + u2)]) / 2 = e^(-q) sinh(q c) (the
+    # Gaussian characteristic function of u1 -+ u2, variances 2 q (1 -+ c)); the 2-D rule
+    cs = np.array([-0.9, -0.3, 0.2, 0.7, 0.99])
+    got = maps.correlation_map(A("sin(x)"), cs, 2.0, 0.1, q)
+    v = 2.0 * -math.expm1(-2.0 * q) / 2.0 + 0.1
+    ref = (2.0 * np.exp(-q) * np.sinh(q * cs) + 0.1) / v
+    assert_allclose(got, ref, rtol=0, atol=2e-14)
+
+
+def test_oscillating_formula_beyond_its_integrable_variance_is_refused():
+    # sin(x) at q = 1e9 needs 6e4 panels of width 6 in x over +-10 sqrt(q): refused, with why
+    with pytest.raises(propcalc.ComputationError, match="oscillates.*cannot be integrated"):
+        maps.second_moment(A("sin(x)"), 1e9)
+    # below the limit the scan and the large-variance limits stay inside it
+    assert maps.largest_variance(A("sin(x)")) == pytest.approx(3.6e7)
+    assert maps.largest_variance(A("tanh")) == math.inf

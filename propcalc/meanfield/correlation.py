@@ -411,7 +411,8 @@ def solve_correlation(act: Activation, sigma_w2: Array, sigma_b2: Array, q: Arra
     kappa = np.full(n, np.nan)
     bound = np.full(n, np.nan)
     ends: tuple[Array, Array] | None = None
-    series = guess is None and rule == DEFAULT_RULE and act.scale == 1.0 and not act.has_jumps
+    series = (guess is None and rule == DEFAULT_RULE and act.scale == 1.0 and act.reach == 0.0
+              and not act.has_jumps)
     if curvature is not None:
         kappa, bound = (np.atleast_1d(np.asarray(a, dtype=float)) for a in curvature)
     if todo.size and series:

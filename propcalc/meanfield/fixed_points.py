@@ -41,10 +41,10 @@ from ..errors import ComputationError
 from ..numerics import roots
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..vocabulary import NEUTRAL_TOLERANCE, VarianceStatus
-from .maps import second_moment, variance_map_slope
+from .maps import largest_variance, second_moment, variance_map_slope
 
 __all__ = ["Q_MIN", "Q_MAX", "SCAN_STEPS", "LARGE_Q", "VarianceSolution", "solve_variance",
-           "collapse_rate"]
+           "collapse_rate", "large_variance"]
 
 Array = np.ndarray
 
@@ -189,6 +189,8 @@ def _solve_block(act: Activation, sw: Array, sb: Array, q_input: Array,
     # V(q) >= about V(0) near 0, so a grid starting below V(0)/10 sees V(q) - q > 0 there
     q_lo = np.maximum(np.where(v0 > 0, np.minimum(Q_MIN, v0 / 10.0), Q_MIN), 1e-300)
     q_hi = np.maximum(Q_MAX, 10.0 * (sb + q_start))
+    # an oscillating formula is integrable up to a limit (sin: 3.6e7): the scan stops there
+    q_hi = np.minimum(q_hi, 0.5 * largest_variance(act, rule))
     k_lo, k_hi = _grid_index(q_lo, up=False), _grid_index(q_hi, up=True)
     ks = np.arange(int(k_lo.min()), int(k_hi.max()) + 1)
     grid = _grid(ks)
@@ -293,7 +295,8 @@ def _flow(act: Activation, sw: Array, sb: Array, q_start: Array, g_start: Array,
     unbounded = (status == VarianceStatus.UNBOUNDED.value) & ~falls
     if np.any(unbounded):
         # lim V(q)/q at large q, evaluated at LARGE_Q (for ReLU exactly sigma_w2 / 2)
-        growth[unbounded] = sw[unbounded] * float(second_moment(act, LARGE_Q, rule)) / LARGE_Q
+        large = large_variance(act, rule)
+        growth[unbounded] = sw[unbounded] * float(second_moment(act, large, rule)) / large
     # neutral: V(q) = q identically (ReLU at sigma_w2 = 2, linear at 1, with sigma_b2 = 0)
     status[neutral] = VarianceStatus.NEUTRAL.value
     q_star[neutral] = q_start[neutral]
@@ -310,6 +313,12 @@ def _flow(act: Activation, sw: Array, sb: Array, q_start: Array, g_start: Array,
                             stable=reached_stable, growth_rate=growth, q_floor=q_lo,
                             falls_below=falls, owner=owner[order], points_q=pq[order],
                             points_chi=chi[order], points_stable=stable[order])
+
+
+def large_variance(act: Activation, rule: QuadratureRule = DEFAULT_RULE) -> float:
+    """Where large-variance limits are evaluated: LARGE_Q, or below the largest variance an
+    oscillating activation can be integrated at."""
+    return min(LARGE_Q, 0.5 * largest_variance(act, rule))
 
 
 def _first(owner: Array, mask: Array, n: int) -> Array:

@@ -51,6 +51,7 @@ from ..errors import InvalidParameterError, check_nonnegative, check_positive
 from ..numerics.hermite import SERIES_PASSES, coefficients_at, series_sum
 from ..numerics.quadrature import (DEFAULT_RULE, QuadratureRule, bivariate_expectation,
                          conditional_pair_expectation, gaussian_expectation, legendre_rule)
+from ..numerics.quadrature import largest_variance as quadrature_largest_variance
 
 __all__ = [
     "CONDITIONAL_GAP",
@@ -70,6 +71,7 @@ __all__ = [
     "chi_1",
     "variance_growth_rate",
     "variance_collapse_rate",
+    "largest_variance",
 ]
 
 Array = np.ndarray
@@ -79,7 +81,17 @@ _Q_LO, _Q_HI = domains.Q_POSITIVE_MIN, domains.Q_MAX
 def _scaled(act: Activation, rule: QuadratureRule) -> QuadratureRule:
     """The rule with the activation's feature scale (steep formulas need finer grading)."""
     scale = getattr(act, "scale", 1.0)
-    return rule if rule.scale == scale else dataclasses.replace(rule, scale=scale)
+    reach = getattr(act, "reach", 0.0)
+    if rule.scale == scale and rule.reach == reach:
+        return rule
+    return dataclasses.replace(rule, scale=scale, reach=reach)
+
+
+def largest_variance(act: Activation, rule: QuadratureRule = DEFAULT_RULE) -> float:
+    """The largest variance whose Gaussian integrals of ``act`` can be resolved: inf, or for
+    an oscillating formula the limit of :func:`propcalc.numerics.quadrature.largest_variance`
+    (sin(x): 3.6e7). Scans and large-variance limits stop there."""
+    return quadrature_largest_variance(_scaled(act, rule))
 
 
 def _q_array(q: Any, field: str = "q") -> Array:
@@ -232,6 +244,7 @@ def variance_growth_rate(act: Activation, sigma_w2: float, q_large: float = 1e12
     """
     rule = _scaled(act, rule)
     sw = check_positive("sigma_w2", sigma_w2)
+    q_large = min(q_large, 0.5 * largest_variance(act, rule))
     return float(sw * second_moment(act, q_large, rule) / q_large)
 
 
@@ -499,7 +512,7 @@ def correlation_map(act: Activation | str, c: Any, sigma_w2: float, sigma_b2: fl
     if vq == 0.0:
         return np.ones_like(_c_array(c))
     ca = _c_array(c)
-    if (ca.size and qf > 0 and rule == DEFAULT_RULE and act.scale == 1.0
+    if (ca.size and qf > 0 and rule == DEFAULT_RULE and act.scale == 1.0 and act.reach == 0.0
             and not act.has_jumps and act.smoothing is None):
         return (sw * _by_parity(act, ca, lambda cc: _pair_by_series(act, cc, qf, rule)) + sb) / vq
     return (sw * _by_parity(act, ca, lambda cc: pair_expectation(act, cc, qf, rule)) + sb) / vq

@@ -60,6 +60,9 @@ __all__ = [
     "bivariate_expectation",
     "conditional_pair_expectation",
     "rule_nodes",
+    "largest_variance",
+    "FEATURE_WIDTH",
+    "MAX_FEATURE_PANELS",
 ]
 
 Array = np.ndarray
@@ -120,6 +123,10 @@ class QuadratureRule:
         The x-scale of the integrand's structure (1 for every built-in; smaller
         for steep formulas such as tanh(10 x)). The grading resolves features
         of this width at any q.
+    reach : float
+        How far from x = 0 that structure extends (0: only near 0, which the grading
+        resolves; inf: everywhere, an oscillating formula). Where it is > 0, panels of
+        at most FEATURE_WIDTH scales in x cover ``|x| <= reach`` (within the z range).
     """
 
     n_per_panel: int = 16
@@ -127,6 +134,7 @@ class QuadratureRule:
     z_max: float = 10.0
     grade_out: bool = True
     scale: float = 1.0
+    reach: float = 0.0
 
     @property
     def uniform_edges(self) -> Array:
@@ -135,6 +143,53 @@ class QuadratureRule:
 
 
 DEFAULT_RULE = QuadratureRule()
+
+#: Width of the panels, in scales, over the region where an activation has structure away
+#: from x = 0 (``QuadratureRule.reach``): 16 Gauss-Legendre nodes on a panel of half-width h
+#: integrate exp(i w x) with an error of about (w h)^32 (16!)^4 / (33 (32!)^3) (DLMF 3.5.v),
+#: 1e-34 at w h = 4; with w up to 1.5 / scale (sin(2x) + x/2 has scale 0.625 / 2) and h = 3
+#: scales that is w h <= 4.5.
+FEATURE_WIDTH = 6.0
+#: The most such panels one expectation may use (16 nodes each); an oscillating activation at
+#: a variance that needs more is refused (sin(x): q up to (6 * 20000 / 20)^2 = 3.6e7).
+MAX_FEATURE_PANELS = 20000
+
+
+def _feature_count(sq_max: float, rule: QuadratureRule) -> int:
+    """Number of feature panels for rows whose largest standard deviation is ``sq_max``."""
+    if not rule.reach > 0.0 or not sq_max > 0.0 or not math.isfinite(sq_max):
+        return 0
+    span = min(2.0 * rule.reach, 2.0 * rule.z_max * sq_max)
+    k = int(math.ceil(span / (FEATURE_WIDTH * rule.scale)))
+    if k > MAX_FEATURE_PANELS:
+        limit = (MAX_FEATURE_PANELS * FEATURE_WIDTH * rule.scale / (2.0 * rule.z_max)) ** 2
+        raise ComputationError(
+            f"the activation has structure of width {rule.scale:.3g} in x out to |x| = "
+            f"{rule.reach:.3g} (it oscillates): at q = {sq_max * sq_max:.3g} its Gaussian "
+            f"integral would need {k} panels, more than the limit {MAX_FEATURE_PANELS} "
+            f"(reached at q = {limit:.3g}), so it cannot be integrated to the stated accuracy")
+    return k
+
+
+def largest_variance(rule: QuadratureRule) -> float:
+    """The largest q at which the rule integrates an activation with ``rule.reach = inf``
+    (an oscillating one) within MAX_FEATURE_PANELS panels; inf otherwise."""
+    if not rule.reach > 0.0 or (2.0 * rule.reach <= MAX_FEATURE_PANELS * FEATURE_WIDTH * rule.scale):
+        return math.inf
+    return (MAX_FEATURE_PANELS * FEATURE_WIDTH * rule.scale / (2.0 * rule.z_max)) ** 2
+
+
+def _feature_edges(mean: Array, sq: Array, rule: QuadratureRule, k: int) -> Array:
+    """k + 1 panel edges in z per row, uniform in x over ``|x| <= reach`` (within the range)."""
+    L = rule.z_max
+    lo = np.maximum(-rule.reach, mean - L * sq)
+    hi = np.minimum(rule.reach, mean + L * sq)
+    hi = np.maximum(hi, lo)
+    t = np.linspace(0.0, 1.0, k + 1)
+    x = lo[..., None] + (hi - lo)[..., None] * t
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = (x - mean[..., None]) / sq[..., None]
+    return np.where(np.isfinite(z), z, 0.0)
 
 
 def _grading_levels(sqrt_q_max: float, scale: float = 1.0) -> int:
@@ -173,7 +228,8 @@ def _plain_nodes(rule: QuadratureRule) -> tuple[Array, Array]:
 
 
 def _node_count(sqrt_q: float, n_extra: int, rule: QuadratureRule) -> int:
-    n_edges = _uniform_edges(rule).size + 5 + 2 * _grading_levels(sqrt_q, rule.scale) + n_extra
+    n_edges = (_uniform_edges(rule).size + 5 + 2 * _grading_levels(sqrt_q, rule.scale) + n_extra
+               + _feature_count(sqrt_q, rule))
     return (n_edges - 1) * rule.n_per_panel
 
 
@@ -223,7 +279,7 @@ def _scalar_nodes(mean: float, q: float, breakpoints: tuple[float, ...],
                   rule: QuadratureRule) -> tuple[Array, Array]:
     if not (q > 0.0 and math.isfinite(q) and math.isfinite(mean)):
         x, w = _rule_nodes(mean, q, breakpoints, rule, None)
-    elif _centred(mean, breakpoints):
+    elif _centred(mean, breakpoints) and not rule.reach > 0.0:
         sq = math.sqrt(q)
         z, w = _centred_nodes(_grading_levels(sq, rule.scale), bool(breakpoints), rule)
         x = sq * z
@@ -246,6 +302,9 @@ def _row_nodes(mean: float, q: float, breakpoints: Sequence[float], rule: Quadra
         parts.append((np.asarray(breakpoints, dtype=float) - mean) * inv)
     if extra is not None:
         parts.append(extra)
+    k = _feature_count(sq, rule)
+    if k:
+        parts.append(_feature_edges(np.asarray(mean, float), np.asarray(sq), rule, k))
     z, w = _panel_nodes(parts, rule)
     return mean + sq * z, w
 
@@ -293,7 +352,7 @@ def _rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float],
     mean, q = np.broadcast_arrays(np.asarray(mean, dtype=float), np.asarray(q, dtype=float))
     sq = np.sqrt(q)
     if (extra_edges is None and sq.size and _centred(mean, breakpoints)
-            and np.all((sq > 0) & np.isfinite(sq))):
+            and not rule.reach > 0.0 and np.all((sq > 0) & np.isfinite(sq))):
         # every row has the same panels in z: one cached set, scaled (no per-row work)
         z, w = _centred_nodes(_grading_levels(float(np.max(sq)), rule.scale),
                               bool(len(breakpoints)), rule)
@@ -322,6 +381,9 @@ def _rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float],
         pieces.append(bz)
     if extra_edges is not None:
         pieces.append(np.broadcast_to(extra_edges, sq.shape + extra_edges.shape[-1:]))
+    k = _feature_count(float(np.max(sq)) if sq.size else 0.0, rule)
+    if k:
+        pieces.append(_feature_edges(mean, sq, rule, k))
     edges = np.clip(np.concatenate(pieces, axis=-1), -L, L)
     edges.sort(axis=-1)
     a, bb = edges[..., :-1], edges[..., 1:]
