@@ -85,6 +85,7 @@ from .caches import clear_caches
 from .jsonable import jsonable
 from .vocabulary import (
     EDGE_TOLERANCE,
+    EDGE_BAND,
     NEUTRAL_TOLERANCE,
     BiasDistribution,
     Distribution,
@@ -177,6 +178,7 @@ __all__ = [
     "BiasDistribution",
     "Distribution",
     "EDGE_TOLERANCE",
+    "EDGE_BAND",
     "NEUTRAL_TOLERANCE",
     "Phase",
     "Target",

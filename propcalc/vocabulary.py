@@ -27,6 +27,7 @@ __all__ = [
     "BIAS_DISTRIBUTIONS",
     "TARGETS",
     "EDGE_TOLERANCE",
+    "EDGE_BAND",
     "NEUTRAL_TOLERANCE",
 ]
 
@@ -35,7 +36,7 @@ class Phase(enum.StrEnum):
     """Phase of a deep random network (Poole et al. 2016; Schoenholz et al. 2017).
 
     ordered: chi_1 < 1 (c* = 1, gradients vanish); chaotic: chi_1 > 1 (c* < 1,
-    gradients explode); edge of chaos: chi_1 = 1 within :data:`EDGE_TOLERANCE`;
+    gradients explode); edge of chaos: chi_1 = 1 within :data:`EDGE_BAND`;
     unbounded variance: the forward variance has no finite fixed point to
     settle to, so no phase in the sense of those papers applies.
     """
@@ -105,6 +106,15 @@ TARGETS: tuple[str, ...] = tuple(t.value for t in Target)
 #: (Schoenholz et al. 2017, eq. 9 expanded near chi_1 = 1), exceeds 1e8 layers there.
 #: A point printed with enough digits to place chi_1 within 1e-10 reproduces the verdict.
 EDGE_TOLERANCE = 1e-9
+#: The verdict band around the edge of chaos: a point with |chi_1 - 1| <= EDGE_BAND is
+#: reported in the phase "edge of chaos". A critical point printed to 6 significant digits
+#: and pasted back moves sigma_w2 and sigma_b2 by up to 5e-7 relative, which moves chi_1 by
+#: up to a few times that (tanh at q* = 1: 8e-7, erf: 1.3e-6); 1e-5 covers it, so the
+#: pasted point gets the same verdict. Inside the band but beyond EDGE_TOLERANCE the depth
+#: scale is still computed and reported: xi_c ~ 1 / |chi_1 - 1| (smooth phi; 2 / |chi_1 - 1|
+#: kinked) exceeds 1e5 layers there (Schoenholz et al. 2017, eq. 9 near chi_1 = 1), beyond
+#: the depth of any network that is trained.
+EDGE_BAND = 1e-5
 #: A map slope (chi_q = V'(q*), a spectral radius...) within this of 1 is neutral to first
 #: order: neither attracting nor repelling by its slope alone. The variance fixed points
 #: then decide from the next term of the map (the sign of V(q) - q on each side). The same

@@ -727,3 +727,47 @@ def test_sine_chaotic_fixed_points(sw, sb):
     assert p.q_star == pytest.approx(float(q), rel=1e-13)
     assert p.c_star == pytest.approx(float(c), abs=1e-14)
     assert p.chi_c == pytest.approx(chi_c, rel=1e-12, abs=1e-15)
+
+
+# ------------------------------------------------------------------------------------------
+# the edge-of-chaos band: a printed point pasted back keeps its verdict (issue 12, section 1)
+# ------------------------------------------------------------------------------------------
+def _rounded(x, digits=6):
+    return float(f"{x:.{digits}g}")
+
+
+@pytest.mark.parametrize("name", ["tanh", "erf", "hard_tanh", "sin(2*x) + 0.5*x",
+                                  "tanh(2*x) + 0.1*x"])
+def test_rounded_critical_point_keeps_the_verdict(name):
+    # a critical point (chi_1 = 1 on the line of Poole et al. 2016 / Schoenholz et al. 2017)
+    # printed to 6 significant digits moves chi_1 by up to ~1e-6 (tanh 8e-7, erf 1.3e-6): the
+    # documented band vocabulary.EDGE_BAND = 1e-5 keeps "edge of chaos", and the depth scale
+    # it hides is still reported (xi_c > 1e5 layers)
+    assert propcalc.EDGE_BAND == 1e-5
+    cp = propcalc.edge_of_chaos(name, 0.5)
+    if not cp.valid:
+        pytest.skip("no critical point at q* = 0.5")
+    assert cp.stable  # a repelling q* is left by any perturbation, rounding included
+    p = propcalc.propagation(name, _rounded(cp.sigma_w2), _rounded(cp.sigma_b2))
+    assert p.phase == "edge of chaos"
+    assert abs(p.chi_1 - 1.0) <= propcalc.EDGE_BAND
+    assert p.xi_c is None or p.xi_c > 1e5
+
+
+def test_rounded_plan_of_issue_12_keeps_the_verdict():
+    # issue 12: the plan for x * tanh(softplus(x)) said "edge of chaos" and the same point
+    # rounded to 6 digits was "chaotic, xi_c = 1.8e6"
+    name = "x * tanh(softplus(x))"
+    plan = propcalc.recommend(name, depth=20)
+    exact = propcalc.propagation(name, plan.sigma_w2, plan.sigma_b2)
+    pasted = propcalc.propagation(name, _rounded(plan.sigma_w2), _rounded(plan.sigma_b2))
+    assert exact.phase == pasted.phase == "edge of chaos"
+    assert pasted.xi_c > 1e5 and any("edge-of-chaos band" in n for n in pasted.notes)
+
+
+def test_band_does_not_hide_the_phase_beyond_it():
+    # tanh at sigma_b2 = 0.05, 1.001 times its critical sigma_w2: chi_1 - 1 ~ 5e-4, chaotic;
+    # 0.999 times: ordered (Poole et al. 2016, fig. 2)
+    cp = propcalc.edge_of_chaos_at_bias("tanh", 0.05)[0]
+    assert propcalc.propagation("tanh", cp.sigma_w2 * 1.001, 0.05).phase == "chaotic"
+    assert propcalc.propagation("tanh", cp.sigma_w2 * 0.999, 0.05).phase == "ordered"

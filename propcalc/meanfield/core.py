@@ -15,7 +15,8 @@ Formulas
   sigma_w2 (phi'(0-)^2 + phi'(0+)^2) / 2; for an unbounded variance its
   large-q limit, evaluated at ``LARGE_Q``.
 * Phases: ordered (chi_1 < 1, c* = 1, chi_c = chi_1), edge of chaos
-  (|chi_1 - 1| <= EDGE_TOLERANCE, xi_c infinite), chaotic (chi_1 > 1, c* < 1)
+  (|chi_1 - 1| <= EDGE_BAND; xi_c infinite within EDGE_TOLERANCE, computed beyond),
+  chaotic (chi_1 > 1, c* < 1)
   (Poole et al. 2016; Schoenholz et al. 2017).
 * Depth scales xi = -1 / ln|slope| (Schoenholz et al. 2017, eqs. 6 and 9) and
   the trainable depth, about 6 xi_c layers (Schoenholz et al. 2017, section 5,
@@ -34,9 +35,10 @@ from ..activations import Activation, resolve
 from .. import domains
 from ..errors import InvalidParameterError, check_int, check_nonnegative, check_positive
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
-from ..vocabulary import EDGE_TOLERANCE, Phase, VarianceStatus
+from ..vocabulary import EDGE_BAND, EDGE_TOLERANCE, Phase, VarianceStatus
 from .correlation import CorrelationSolution, solve_correlation
-from .fixed_points import LARGE_Q, VarianceSolution, check_reached, collapse_rate, solve_variance
+from .fixed_points import (VarianceSolution, check_reached, collapse_rate, large_variance,
+                           solve_variance)
 from .maps import derivative_second_moment
 
 __all__ = ["QUANTITIES", "TRAINABLE_DEPTH_FACTOR", "TRAINABLE_RULE", "CoreResult", "propagate",
@@ -123,7 +125,8 @@ def propagate(act: Activation, sigma_w2: Array, sigma_b2: Array, q_input: Array 
     q = var.q_star
     c1 = np.empty(n)
     if np.any(unbounded):  # the large-variance limit, where the variance is headed
-        c1[unbounded] = sw[unbounded] * float(derivative_second_moment(act, LARGE_Q, rule))
+        c1[unbounded] = sw[unbounded] * float(derivative_second_moment(
+            act, large_variance(act, rule), rule))
     c1[collapse] = collapse_rate(act, sw[collapse])
     rest = np.flatnonzero(~unbounded & ~collapse)
     if rest.size:
@@ -131,16 +134,19 @@ def propagate(act: Activation, sigma_w2: Array, sigma_b2: Array, q_input: Array 
 
     phase = np.full(n, Phase.CHAOTIC.value, dtype=_TEXT)
     finite = np.isfinite(c1)
-    edge = finite & (np.abs(c1 - 1.0) <= EDGE_TOLERANCE)
-    phase[finite & ~edge & (c1 < 1.0)] = Phase.ORDERED.value
-    phase[edge] = Phase.EDGE_OF_CHAOS.value
+    edge = finite & (np.abs(c1 - 1.0) <= EDGE_TOLERANCE)  # chi_1 = 1 to the integrals' accuracy
+    band = finite & (np.abs(c1 - 1.0) <= EDGE_BAND)  # the verdict (vocabulary.EDGE_BAND)
+    phase[finite & ~band & (c1 < 1.0)] = Phase.ORDERED.value
+    phase[band] = Phase.EDGE_OF_CHAOS.value
     phase[unbounded] = Phase.UNBOUNDED.value
 
     c_star = np.ones(n)
     chi_c = np.where(edge, 1.0, c1)
     gap = np.zeros(n)
     chi_c_error = np.full(n, 4e-16)
-    need = np.flatnonzero((phase == Phase.CHAOTIC.value) & ~collapse)
+    need = np.flatnonzero(((phase == Phase.CHAOTIC.value)
+                           | ((phase == Phase.EDGE_OF_CHAOS.value) & (c1 > 1.0) & ~edge))
+                          & ~collapse)
     if need.size:
         sol: CorrelationSolution = solve_correlation(act, sw[need], sb[need], q[need], rule,
                                                      slope_at_one=c1[need])

@@ -19,7 +19,7 @@ from .. import domains
 from ..activations import Activation, resolve
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..results import OMIT, Result
-from ..vocabulary import Phase, VarianceStatus
+from ..vocabulary import EDGE_BAND, Phase, VarianceStatus
 from .core import TRAINABLE_RULE, CoreResult, checked, propagate
 from .fixed_points import VarianceSolution, check_reached, solve_variance
 from .maps import chi_1 as chi_1_map
@@ -313,8 +313,14 @@ def _report(act: Activation, core: CoreResult, i: int, q_input: float, depth: in
     if phase == Phase.EDGE_OF_CHAOS:
         edge = (edge_approach(act, sw, sb, q, rule) if not collapse
                 else "1 - c_l stays constant: the collapsed network is linear")
-        notes.append("exactly critical: xi_c is infinite and correlations approach 1 only "
-                     "polynomially in depth; " + edge)
+        if math.isinf(float(core.xi_c[i])):
+            notes.append("exactly critical: xi_c is infinite and correlations approach 1 only "
+                         "polynomially in depth; " + edge)
+        else:
+            notes.append(f"critical within the edge-of-chaos band |chi_1 - 1| <= {EDGE_BAND:g} "
+                         f"(chi_1 = 1 {'+' if c1 > 1 else '-'} {abs(c1 - 1.0):.3g}): xi_c = "
+                         f"{float(core.xi_c[i]):.4g} layers, beyond the depth of a trained "
+                         "network; near it " + edge)
     xi_c = float(core.xi_c[i])
     if fps.status == VarianceStatus.FIXED_POINT and not fps.reached.stable:  # type: ignore[union-attr]
         notes.append(f"q* = {q:.6g} is not attracting (chi_q = {chi_q:.6g}): a finite network "
@@ -326,7 +332,7 @@ def _report(act: Activation, core: CoreResult, i: int, q_input: float, depth: in
                      f"digits only: chi_c = 1 - {1.0 - float(core.chi_c[i]):.3g} sits near the "
                      "rounding floor of double precision (within about 1e-9 of the edge of "
                      "chaos, where xi_c ~ 1 / |chi_1 - 1|)")
-    if phase != Phase.EDGE_OF_CHAOS:
+    if phase != Phase.EDGE_OF_CHAOS or math.isfinite(xi_c):
         notes.append(f"trainable depth: {TRAINABLE_RULE}")
     return Propagation(q_star=q, chi_q=chi_q, xi_q=float(core.xi_q[i]),
                        c_star=float(core.c_star[i]), chi_c=float(core.chi_c[i]), xi_c=xi_c,
