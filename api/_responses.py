@@ -167,6 +167,8 @@ class ReasonSchema(StrictSchema):
     depth_limit = ext(allow_none=True)
     fix = text(allow_none=True)
     detail = text()
+    decides = _r(StrictBoolean(metadata=_d("false for a warning: beyond its limit it does not "
+                                           "make the plan untrainable")))
 
 class VerdictSchema(StrictSchema):
     """The trainability verdict: every reason, the depth limit they set, a summary."""
@@ -176,6 +178,7 @@ class VerdictSchema(StrictSchema):
     depth_limit = ext(allow_none=True)
     limited_by = text(allow_none=True)
     failing = _r(fields.List(StrictString()))
+    warnings = _r(fields.List(StrictString()))
     not_computed = _r(fields.List(StrictString()))
     summary = text()
     reasons = _r(fields.List(fields.Nested(ReasonSchema)))

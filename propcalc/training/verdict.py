@@ -8,7 +8,8 @@ One structure for the Python API, the CLI and the service (:class:`Verdict`, a l
   (:func:`propcalc.meanfield.report.edge_approach`): the mean-field analysis sets no limit there
   by itself, so the other reasons decide. An exploding or non-attracting variance fails here;
 * ``gradient growth``: chi_1^L, the mean-field change of squared gradient norms over the depth
-  (Schoenholz et al. 2017), within a factor GROWTH_LIMIT either way (ours, no source);
+  (Schoenholz et al. 2017), within a factor e^6 either way (the change over 6 xi_c layers in the
+  ordered phase);
 * ``learning rate``: the ceiling 2 / lambda_max at initialisation when the plan has one
   (:mod:`propcalc.training.learning_rate`); it limits the step, not the depth: a training run
   above it diverges (or catapults, Lewkowycz et al. 2020), so the fix is to stay below it;
@@ -19,14 +20,17 @@ One structure for the Python API, the CLI and the service (:class:`Verdict`, a l
   1% of ln K (common practice, no source), or for MSE the outputs' initial variance.
 
 A reason that cannot be computed (no widths, no loss given) says so (``passes`` None) and does
-not count against the plan. The verdict never says "no depth limit" when finite width sets one.
+not count against the plan. The learning rate and the finite-width reasons are warnings
+(:data:`WARNINGS`): beyond their limits they say so with the fix and the depth they allow, but
+``trainable`` weighs only the deciding reasons (correlation depth, gradient growth, output
+layer). The verdict never says "no depth limit" when finite width sets one.
 """
 
 from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from ..activations.base import Activation
@@ -42,11 +46,19 @@ from ..vocabulary import NEUTRAL_TOLERANCE
 from .finite_width import (DRIFT_LIMIT, GRADIENT_SPREAD_LIMIT, SPREAD_LIMIT, FiniteWidth,
                            finite_width)
 
-__all__ = ["GROWTH_LIMIT", "MSE_OUTPUT_LIMIT", "REASONS", "Reason", "Verdict", "network_verdict",
+__all__ = ["GROWTH_LIMIT", "MSE_OUTPUT_LIMIT", "REASONS", "WARNINGS", "Reason", "Verdict",
+           "network_verdict",
            "trainability"]
 
-#: the squared gradient norm may change by at most this factor over the depth (ours, no source)
-GROWTH_LIMIT = 100.0
+#: the squared gradient norm may change by at most this factor over the depth: e^6, the change
+#: over 6 xi_c layers in the ordered phase, where xi_c = -1 / ln chi_1 (Schoenholz et al. 2017),
+#: so the two reasons agree there
+GROWTH_LIMIT = math.exp(6.0)
+#: reasons that are warnings: beyond their limit they say so, with the fix, but do not make the
+#: plan untrainable (their limits are ours, without measurements of training behind them; the
+#: learning-rate ceiling limits the step, not the plan)
+WARNINGS = ("learning rate", "finite-width spread", "finite-width gradient spread",
+            "finite-width drift")
 #: largest variance of an MSE output at initialisation that passes (ours, no source: the scale
 #: of standardised targets; above it the initial outputs dominate the loss)
 MSE_OUTPUT_LIMIT = 1.0
@@ -76,6 +88,9 @@ class Reason(Result):
     fix : str or None
         The change that fixes it (None when it passes or was not computed).
     detail : str
+    decides : bool
+        False for a warning (:data:`WARNINGS`): beyond its limit it is reported with its fix but
+        does not make the plan untrainable.
     """
 
     name: str
@@ -86,6 +101,10 @@ class Reason(Result):
     depth_limit: float | None
     fix: str | None
     detail: str
+    decides: bool = field(init=False)
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "decides", self.name not in WARNINGS)
 
 
 @dataclass(frozen=True)
@@ -95,14 +114,16 @@ class Verdict(Result):
     Attributes
     ----------
     trainable : bool
-        Every computed reason passes.
+        Every computed reason that decides (not a warning) passes.
     depth : int
     depth_limit : float or None
         The smallest depth any reason allows (None: none sets a limit).
     limited_by : str or None
         The reason that sets ``depth_limit``.
     failing : tuple of str
-        Names of the reasons that fail.
+        Names of the deciding reasons that fail.
+    warnings : tuple of str
+        Names of the warnings beyond their limits.
     not_computed : tuple of str
         Names of the reasons that could not be computed.
     summary : str
@@ -114,6 +135,7 @@ class Verdict(Result):
     depth_limit: float | None
     limited_by: str | None
     failing: tuple[str, ...]
+    warnings: tuple[str, ...]
     not_computed: tuple[str, ...]
     summary: str
     reasons: tuple[Reason, ...]
@@ -188,10 +210,9 @@ def _growth(p: Propagation, depth: int) -> Reason:
     ok = 1.0 / GROWTH_LIMIT <= growth <= GROWTH_LIMIT
     per_layer = abs(math.log(c1)) if c1 > 0 else math.inf
     limit = (math.log(GROWTH_LIMIT) / per_layer) if per_layer > 1e-12 else None
-    way = "grow" if growth > 1 else "shrink"
-    detail = (f"squared gradient norms {way} by a factor {growth:.3g} over {depth} layers "
+    detail = (f"squared gradient norms change by a factor {growth:.3g} over {depth} layers "
               f"(chi_1 = {c1:.6g} per layer; Schoenholz et al. 2017); the limit is a factor "
-              f"{GROWTH_LIMIT:g} either way (ours, no source)")
+              f"e^6 = {GROWTH_LIMIT:.0f} either way, what 6 xi_c layers allow in the ordered phase")
     fix = None if ok else (f"move to the edge of chaos (chi_1 = 1), or use at most "
                            f"{limit:.0f} layers" if limit is not None else "move to chi_1 = 1")
     return Reason(name, quantity, growth, GROWTH_LIMIT, ok, limit, fix, detail)
@@ -352,7 +373,8 @@ def trainability(act: Activation | str, propagation: Propagation, depth: int, *,
 
 
 def _assemble(depth: int, reasons: list[Reason]) -> Verdict:
-    failing = tuple(r.name for r in reasons if r.passes is False)
+    failing = tuple(r.name for r in reasons if r.passes is False and r.decides)
+    warnings = tuple(r.name for r in reasons if r.passes is False and not r.decides)
     missing = tuple(r.name for r in reasons if r.passes is None)
     limits = [(r.depth_limit, r.name) for r in reasons
               if r.depth_limit is not None and r.passes is not None]
@@ -361,7 +383,8 @@ def _assemble(depth: int, reasons: list[Reason]) -> Verdict:
     parts = [head]
     for r in reasons[1:]:
         if r.passes is False:
-            parts.append(f"{r.name} fails ({r.quantity} = {r.value:.3g}, limit {r.limit:.3g}): "
+            what = "fails" if r.decides else "is beyond its limit"
+            parts.append(f"{r.name} {what} ({r.quantity} = {r.value:.3g}, limit {r.limit:.3g}): "
                          f"{r.fix}")
     lr = next(r for r in reasons if r.name == "learning rate")
     if lr.passes:
@@ -373,9 +396,15 @@ def _assemble(depth: int, reasons: list[Reason]) -> Verdict:
         if fwr.passes is None:
             parts.append("finite width not checked (" + fwr.detail[len("not computed: "):] + ")")
     trainable = not failing
-    parts.append("trainable as planned" if trainable else "not trainable as planned")
-    return Verdict(trainable, depth, depth_limit, limited_by, failing, missing, "; ".join(parts),
-                   tuple(reasons))
+    if not trainable:
+        parts.append("not trainable as planned")
+    elif warnings:
+        parts.append("trainable as planned by the deciding reasons, with the warnings above "
+                     "(finite-width limits are ours, no source)")
+    else:
+        parts.append("trainable as planned")
+    return Verdict(trainable, depth, depth_limit, limited_by, failing, warnings, missing,
+                   "; ".join(parts), tuple(reasons))
 
 
 def network_verdict(result: NetworkPropagation) -> Verdict:
@@ -432,8 +461,9 @@ def network_verdict(result: NetworkPropagation) -> Verdict:
                       GROWTH_LIMIT, ok, None,
                       None if ok else (advice or "move towards the edge of chaos"),
                       f"squared gradient norms change by a factor {g0:.3g} from the output to "
-                      f"the input over {n} positions; the limit is a factor {GROWTH_LIMIT:g} "
-                      "either way (ours, no source)")
+                      f"the input over {n} positions; the limit is a factor e^6 = "
+                      f"{GROWTH_LIMIT:.0f} either way, what 6 xi_c layers allow in the ordered "
+                      "phase of a plain stack (Schoenholz et al. 2017)")
     plain = "computed for plain stacks: recommend(act, widths=..., loss=...)"
     reasons = [corr, grow, _not_computed("learning rate", "ceiling 2 / lambda_max", plain)]
     reasons += [_not_computed(name, quantity, plain + "; propcalc network --check measures a "
