@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 from typing import Any, TextIO
 
+from propcalc import install_hint
 from propcalc.cli import UsageError
 
 __all__ = ["register"]
@@ -22,7 +23,7 @@ def _serve(args: argparse.Namespace, out: TextIO) -> int:
     except ImportError as exc:
         missing = exc.name or str(exc)
         raise UsageError(f"the HTTP service needs the 'service' extra ({missing} is not "
-                         "installed): pip install 'propcalc[service]'") from None
+                         f"installed): {install_hint('service')}") from None
     if args.workers is not None and not args.production:
         raise UsageError(f"--workers is an option of the production server (--production), "
                          f"got --workers {args.workers} without it")

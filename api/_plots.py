@@ -27,7 +27,7 @@ import threading
 from types import ModuleType
 from typing import Any
 
-from propcalc import Activation, Propagation, propagation
+from propcalc import Activation, Propagation, install_hint, propagation
 
 from ._budget import (
     COSTS,
@@ -51,7 +51,7 @@ MIMETYPES = {"png": "image/png", "svg": "image/svg+xml"}
 #: image format of each media type
 FORMAT_OF = {v: k for k, v in MIMETYPES.items()}
 #: how to install the plotting extra
-PLOT_EXTRA = 'pip install "propcalc[plot]"'
+PLOT_EXTRA = install_hint("plot")
 
 _RENDER_LOCK = threading.Lock()
 

@@ -78,6 +78,7 @@ from .errors import (
     InvalidParameterError,
     PropcalcError,
     UnknownActivationError,
+    install_hint,
 )
 from .activations import LIMITS as FORMULA_LIMITS, FormulaLimits, activation, formula_activation
 from .activations import SERVICE_LIMITS as SERVICE_FORMULA_LIMITS, formula_activation_within, formula_limit_rows
@@ -222,6 +223,7 @@ __all__ = [
     "recommend",
     "resolve",
     "nearest_name",
+    "install_hint",
     "canonical_name",
     "ShapedActivation",
     "ShapingError",

@@ -27,6 +27,7 @@ __all__ = [
     "check_positive",
     "check_nonnegative",
     "check_int",
+    "install_hint",
 ]
 
 
@@ -144,3 +145,12 @@ def check_int(field: str, value: Any, minimum: int = 1, maximum: int | None = No
     if maximum is not None and out > maximum:
         raise InvalidParameterError(field, f"an integer <= {maximum}", value)
     return out
+
+
+def install_hint(extra: str) -> str:
+    """The command that adds an optional extra (``plot``, ``service``...) of propcalc.
+
+    From the checkout, as the README's set-up does: propcalc is installed from its source
+    tree, not from a package index (issue 12 section 4: the hint named an index).
+    """
+    return f'python3 -m pip install -e ".[{extra}]" in the propcalc checkout'

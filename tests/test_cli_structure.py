@@ -111,8 +111,7 @@ def test_a_contributed_command_that_cannot_load_says_what_to_install(monkeypatch
     code, out, err = run("web", "--anything", "1")
     assert (code, out) == (2, "")
     assert err == ("propcalc: error: the web command needs the 'web' extra (somewebthing is not "
-                   "installed): pip install 'propcalc[web]' (from a checkout: pip install -e "
-                   "'.[web]')\n")
+                   "installed): python3 -m pip install -e \".[web]\" in the propcalc checkout\n")
 
 
 def test_a_contributed_command_cannot_replace_a_built_in(monkeypatch):

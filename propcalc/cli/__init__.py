@@ -36,7 +36,7 @@ gives ``{"spectrum", "advice"}`` and ``softmax`` ``{"initial_loss",
 status 2 for usage errors, 1 for computation failures. ``-h`` writes the
 help to the output stream and returns 0.
 
-Pictures (the ``plot`` extra, matplotlib: ``pip install "propcalc[plot]"``):
+Pictures (the ``plot`` extra, matplotlib: ``python3 -m pip install -e ".[plot]"`` in the checkout):
 ``--plot FILE`` writes a PNG or SVG image, the format taken from the
 extension (``.png`` or ``.svg``), and prints one line saying where it went
 (on stderr with ``--json``, so that stdout stays one JSON document). It is

@@ -15,7 +15,7 @@ import re
 from collections.abc import Sequence
 from typing import Any, NoReturn
 
-from .. import Layer, activation, nearest_name
+from .. import Layer, activation, install_hint, nearest_name
 
 __all__ = [
     "EXIT_OK",
@@ -254,7 +254,7 @@ def with_plot(p: argparse.ArgumentParser, text: str, required: bool = False) -> 
     """``--plot FILE`` (PNG or SVG by the extension), described by ``text``."""
     p.add_argument("--plot", metavar="FILE", required=required,
                    help=f"{text}: FILE.png or FILE.svg (needs matplotlib: "
-                        "pip install \"propcalc[plot]\")")
+                        f"{install_hint('plot')})")
 
 
 def with_window(p: argparse.ArgumentParser) -> None:

@@ -12,6 +12,7 @@ import os
 from types import ModuleType
 from typing import Any, TextIO
 
+from .. import install_hint
 from .options import UsageError
 
 __all__ = ["PLOT_EXTENSIONS", "plot_target", "plots_module", "start_plot", "write_plot",
@@ -38,8 +39,8 @@ def plots_module() -> ModuleType:
     try:
         return importlib.import_module("propcalc.output.plots")
     except ImportError:
-        raise UsageError('--plot needs matplotlib, which is not installed: '
-                         'pip install "propcalc[plot]"') from None
+        raise UsageError("--plot needs matplotlib, which is not installed: "
+                         f"{install_hint('plot')}") from None
 
 
 def start_plot(args: argparse.Namespace) -> tuple[str, str, ModuleType] | None:

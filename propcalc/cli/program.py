@@ -19,7 +19,7 @@ from collections.abc import Sequence
 from importlib import metadata
 from typing import Any, TextIO
 
-from .. import ComputationError, PropcalcError
+from .. import ComputationError, PropcalcError, install_hint
 from .options import EXIT_COMPUTATION, EXIT_OK, EXIT_USAGE, Parser, UsageError
 
 __all__ = ["BUILTIN_COMMANDS", "ENTRY_POINT_GROUP", "build_parser", "main"]
@@ -50,8 +50,7 @@ def _unavailable(entry: metadata.EntryPoint, exc: Exception) -> Any:
         if extras:
             extra = extras[0]
             raise UsageError(f"the {entry.name} command needs the '{extra}' extra ({missing} is "
-                             f"not installed): pip install 'propcalc[{extra}]' (from a checkout: "
-                             f"pip install -e '.[{extra}]')")
+                             f"not installed): {install_hint(extra)}")
         raise UsageError(f"the {entry.name} command could not be loaded: {exc}")
 
     return handler

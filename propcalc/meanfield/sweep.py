@@ -51,7 +51,8 @@ import numpy as np
 from .. import domains
 from ..activations import Activation, builtin_activation, builtin_names, resolve
 from ..activations import activation as make_activation
-from ..errors import ActivationTypeError, InvalidParameterError, check_int, check_nonnegative
+from ..errors import (ActivationTypeError, InvalidParameterError, check_int, check_nonnegative,
+                      install_hint)
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..results import ABSENT_AS_NONE, Result
 from ..vocabulary import NEUTRAL_TOLERANCE, PHASES, VARIANCE_STATUSES
@@ -295,7 +296,7 @@ def _progress_bar(total: int, progress: bool | None, desc: str) -> Any:
         from tqdm.auto import tqdm
     except ImportError:
         if progress:
-            raise ImportError("the progress bar needs tqdm: pip install 'propcalc[sweep]'"
+            raise ImportError(f"the progress bar needs tqdm: {install_hint('sweep')}"
                               ) from None
         return None
     return tqdm(total=total, disable=None if progress is None else not progress, file=sys.stderr,

@@ -20,11 +20,13 @@ from typing import IO, Any
 
 import numpy as np
 
+from ..errors import install_hint
+
 try:
     import matplotlib
     from matplotlib.figure import Figure
 except ImportError as exc:  # pragma: no cover - exercised only without the extra
-    raise ImportError("propcalc.plots needs matplotlib: pip install 'propcalc[plot]'") from exc
+    raise ImportError(f"propcalc.output.plots needs matplotlib: {install_hint('plot')}") from exc
 
 from ..activations.base import Activation
 from ..errors import InvalidParameterError, check_int, check_nonnegative, check_positive

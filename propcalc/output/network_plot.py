@@ -31,7 +31,7 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import InvalidParameterError
+from ..errors import InvalidParameterError, install_hint
 from ..networks.propagate import NetworkPropagation
 
 __all__ = ["LOG_RATIO", "NEAR_ONE", "SPLIT_POSITIONS", "plot_network"]
@@ -166,7 +166,7 @@ def plot_network(result: NetworkPropagation, *, title: str | None = None) -> Any
         from matplotlib.lines import Line2D
         from matplotlib.patches import Patch
     except ImportError:
-        raise ImportError("plots need matplotlib: pip install 'propcalc[plot]'") from None
+        raise ImportError(f"plots need matplotlib: {install_hint('plot')}") from None
     if not isinstance(result, NetworkPropagation):
         raise InvalidParameterError("result", "a NetworkPropagation", type(result).__name__)
     q, c, g = _values(result.q), _values(result.c), _values(result.gradient)

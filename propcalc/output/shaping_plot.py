@@ -18,7 +18,7 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import InvalidParameterError, check_int
+from ..errors import InvalidParameterError, check_int, install_hint
 from ..shaping.results import ShapedActivation
 
 __all__ = ["plot_shaping"]
@@ -45,7 +45,7 @@ def plot_shaping(shaped: ShapedActivation, *, n_points: int = 101) -> Any:
     try:
         from matplotlib.figure import Figure
     except ImportError:
-        raise ImportError("plots need matplotlib: pip install 'propcalc[plot]'") from None
+        raise ImportError(f"plots need matplotlib: {install_hint('plot')}") from None
     if not isinstance(shaped, ShapedActivation):
         raise InvalidParameterError("shaped", "a ShapedActivation", type(shaped).__name__)
     n = check_int("n_points", n_points, 5, 1001)

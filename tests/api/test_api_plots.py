@@ -326,7 +326,8 @@ def test_501_without_matplotlib(make_client, monkeypatch):
     monkeypatch.setitem(sys.modules, "propcalc.output.plots", None)  # importing it now fails
     c = make_client()
     body = problem(c.post(PHASE, json=SMALL_PHASE), 501)
-    assert 'pip install "propcalc[plot]"' in body["detail"]
+    # from the checkout, as the README's set-up installs it (issue 12 section 4)
+    assert 'python3 -m pip install -e ".[plot]" in the propcalc checkout' in body["detail"]
     assert c.post("/v1/propagation", json={"activation": "tanh", "sigma_w2": 1}
                   ).status_code == 200  # the JSON endpoints do not need it
 

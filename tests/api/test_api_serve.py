@@ -68,7 +68,7 @@ def test_serve_without_the_service_extra(monkeypatch):
     monkeypatch.setitem(sys.modules, "propcalc_api", None)  # import now raises ImportError
     err = io.StringIO()
     assert main(["serve"], out=io.StringIO(), err=err) == 2
-    assert "pip install 'propcalc[service]'" in err.getvalue()
+    assert 'python3 -m pip install -e ".[service]" in the propcalc checkout' in err.getvalue()
 
 
 def test_serve_bad_port():
