@@ -23,7 +23,10 @@ one activation              50
 propagation report          200
 critical point              5
 edge-of-chaos line          10 + 1 per q* value; 150 at a fixed sigma_b2
-plan                        300 + 0.05 per layer
+plan                        300 + 0.05 per layer; with a loss + 200 + 3 per
+                            layer (the tangent kernel: relu 2.5 ms per layer)
+                            + the Monte Carlo term of the softmax below for
+                            the readout (cross_entropy, 100000 draws)
 variance map                0.5 per q value
 correlation map             k(q) per c value, 3 k(q) more with the slope,
                             k(q) = 6 * 2 ** (log10(max(q, 1)) / 2); plus 200
@@ -140,6 +143,8 @@ COSTS = {
     "edge_at_bias": 150.0,
     "plan": 300.0,
     "plan_layer": 0.05,
+    "plan_loss": 200.0,
+    "plan_loss_layer": 3.0,
     "variance_point": 0.5,
     "correlation_base": 6.0,
     "correlation_growth": 0.5,

@@ -13,12 +13,13 @@ body back through its schema before sending it.
 
 from __future__ import annotations
 
+import inspect
 from dataclasses import dataclass
 from typing import Any
 
 from marshmallow import Schema, ValidationError, fields, post_load, validates_schema
 
-from propcalc import alpha_dropout, builtin_names
+from propcalc import alpha_dropout, builtin_names, output_layer_scale
 
 from ._config import (
     ALPHA_PRIME_ABS_MAX,
@@ -73,6 +74,11 @@ from ._schema_base import (
     _one_of, q_input_field, q_star_field, sigma_b2_field, sigma_w2_field,
 )
 from ._responses import RESPONSE_SCHEMAS
+
+#: the readout check of a plan with cross_entropy draws output_layer_scale's default number of
+#: samples of K logits, and samples x K is at most MC_MAX_ELEMENTS (propcalc.variants.output_layer)
+PLAN_READOUT_SAMPLES = int(inspect.signature(output_layer_scale).parameters["n_samples"].default)
+PLAN_MAX_CLASSES = MC_MAX_ELEMENTS // PLAN_READOUT_SAMPLES
 
 __all__ = ["StrictSchema", "Schemas", "build_schemas", "DISTRIBUTIONS", "TARGETS",
            "DEFAULT_EDGE_Q_STARS", "PARAM_NAME_PATTERN", "MAX_SIZE", "VARIANCE_STATUSES",
@@ -294,12 +300,46 @@ def build_schemas(limits: Limits) -> Schemas:
         sigma_b2 = sigma_b2_field(load_default=None, allow_none=True)
         q_star = q_star_field(load_default=None, allow_none=True)
         q_input = q_input_field(PLAN_Q_INPUT_MIN, load_default=1.0)
+        # training (issue 15): the loss sets the readout's scale and the learning-rate ceiling
+        loss = Choice(["cross_entropy", "mse"], load_default=None, allow_none=True, metadata=_d(
+            "cross_entropy (softmax) or mse: the plan then scales the last layer for the loss "
+            "and carries learning_rate_ceiling and learning_rate (needs widths or dense layers)"))
+        n_classes = JSONInteger(validate=Interval(2, PLAN_MAX_CLASSES), load_default=None,
+                                allow_none=True, metadata=_d(
+                                    "K, the outputs (cross_entropy: required, the last width); "
+                                    f"at most {PLAN_MAX_CLASSES}: the readout's check draws "
+                                    f"{PLAN_READOUT_SAMPLES} samples of K logits"))
+        batch_size = JSONInteger(validate=Interval(1, MAX_SIZE), load_default=None,
+                                 allow_none=True, metadata=_d("B, inputs per step (with a loss)"))
+        momentum = FiniteNumber(validate=Interval(0, 1, high_open=True), load_default=0.0,
+                                metadata=_d("heavy-ball momentum: the ceiling is 2 (1 + momentum) "
+                                            "/ lambda_max"))
+        input_correlation = FiniteNumber(validate=Interval(-1, 1), load_default=None,
+                                         allow_none=True, metadata=_d(
+                                             "the inputs' pairwise correlation (default 0)"))
+        scale_output = StrictBoolean(load_default=True, metadata=_d(
+            "with a loss, scale the last layer for it; false keeps the hidden scale"))
 
         @validates_schema
         def _size(self, data: dict[str, Any], **kwargs: Any) -> None:
             if all(data.get(k) is None for k in ("depth", "widths", "layers")):
                 raise ValidationError("one of depth, widths or layers is required",
                                       field_name="depth")
+            errors: dict[str, list[str]] = {}
+            loss = data.get("loss")
+            if loss is None:
+                for name in ("n_classes", "batch_size", "input_correlation"):
+                    if data.get(name) is not None:
+                        errors[name] = ["is only read with a loss (give loss)"]
+            else:
+                if data.get("batch_size") is None:
+                    errors["batch_size"] = [f"is required with loss {loss}"]
+                if loss == "cross_entropy" and data.get("n_classes") is None:
+                    errors["n_classes"] = ["is required with loss cross_entropy"]
+                if data.get("widths") is None and data.get("layers") is None:
+                    errors["widths"] = ["is required with a loss (widths or dense layers)"]
+            if errors:
+                raise ValidationError(errors)
 
     class VarianceMapRequestSchema(StrictSchema):
         """The variance map V(q), its slope and chi_1 at sampled q."""

@@ -63,7 +63,7 @@ from ._fields import format_number
 from ._json import canonical_dumps
 from ._networks import NetworkComputations
 from ._problems import TYPE_INVALID_FIELDS, Problem, WorkBudgetExceeded
-from ._schemas import DEFAULT_EDGE_Q_STARS
+from ._schemas import DEFAULT_EDGE_Q_STARS, PLAN_READOUT_SAMPLES
 
 __all__ = ["Computations", "expand_grid", "default_samples", "DEFAULT_SAMPLES"]
 
@@ -190,11 +190,24 @@ class Computations(NetworkComputations):
                  for d in req["layers"]]))
         n = (len(layers) if layers is not None else
              len(req["widths"]) - 1 if req.get("widths") is not None else req["depth"])
-        self._budget(spec, COSTS["plan"] + COSTS["plan_layer"] * n, f"a plan of {n} layers")
+        loss, k = req.get("loss"), req.get("n_classes")
+        estimate = COSTS["plan"] + COSTS["plan_layer"] * n
+        what = f"a plan of {n} layers"
+        if loss is not None:
+            # the tangent kernel through every layer, and the readout's Monte Carlo check
+            estimate += COSTS["plan_loss"] + COSTS["plan_loss_layer"] * n
+            if loss == "cross_entropy" and req["scale_output"]:
+                estimate += max_probability_cost(k, 1.0, PLAN_READOUT_SAMPLES)
+            what += f" with its learning-rate ceiling for {loss}"
+        self._budget(spec, estimate, what, "/widths" if loss is not None else None,
+                     "fewer layers" if loss is not None else "")
         plan = recommend(self.activation(spec), req.get("depth"), widths=req.get("widths"),
                          layers=layers, distribution=req["distribution"], target=req["target"],
                          sigma_b2=req.get("sigma_b2"), q_star=req.get("q_star"),
-                         q_input=req["q_input"])
+                         q_input=req["q_input"], loss=loss, n_classes=k,
+                         batch_size=req.get("batch_size"), momentum=req["momentum"],
+                         input_correlation=req.get("input_correlation"),
+                         scale_output=req["scale_output"])
         return jsonable(plan.to_dict())
 
     # -- sampled maps --------------------------------------------------------------------------
