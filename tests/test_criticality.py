@@ -771,3 +771,32 @@ def test_band_does_not_hide_the_phase_beyond_it():
     cp = propcalc.edge_of_chaos_at_bias("tanh", 0.05)[0]
     assert propcalc.propagation("tanh", cp.sigma_w2 * 1.001, 0.05).phase == "chaotic"
     assert propcalc.propagation("tanh", cp.sigma_w2 * 0.999, 0.05).phase == "ordered"
+
+
+# ------------------------------------------------------------------------------------------
+# the chaotic c* at a large q* and the marginal fixed point q = 0 (issue 12, section 1)
+# ------------------------------------------------------------------------------------------
+def test_gelu_chaotic_fixed_point_at_large_variance():
+    # gelu at (1.99, 2): q* = 396; c* was off by 7e-12 and xi_c by 1.5e-7 without the final
+    # Newton step. Reference: mpmath at 30 digits, C(c) as the 1-D integral
+    # E[gelu(u1) S(c u1, q (1 - c^2))] with S(m, v) = m Phi(m / r) + v varphi(m / r) / r,
+    # r = sqrt(1 + v) (E[X Phi(X)] for X ~ N(m, v), by Stein's identity), roots by findroot
+    p = propcalc.propagation("gelu", 1.99, 2.0)
+    assert p.q_star == pytest.approx(396.262049610320987438403069588, rel=1e-13)
+    gap = 1.0 - 0.999905793352040328530373222998  # 9.42066e-5, to 1e-17 in a double
+    assert p.gap == pytest.approx(gap, rel=1e-11)
+    assert p.chi_c == pytest.approx(0.99944220610710784123698503228, rel=1e-14)
+    assert p.xi_c == pytest.approx(1792.27684249989797505183560346, rel=1e-10)
+
+
+def test_gelu_marginal_zero_fixed_point_repels():
+    # gelu at sigma_w2 = 4, sigma_b2 = 0: chi_q(0) = 4 phi'(0)^2 = 1 exactly, so the slope
+    # decides nothing; V(q) = q + 6 q^2 / pi + O(q^3) (gelu(x) = x / 2 + x^2 / sqrt(2 pi) + O(x^4),
+    # E[z^4] = 3), so q = 0 repels (it was marked attracting with chi_q = 0.9999999999999998)
+    fps = propcalc.variance_fixed_points("gelu", 4.0, 0.0)
+    zero = [fp for fp in fps.points if fp.q == 0.0]
+    assert zero and not zero[0].stable
+    assert abs(zero[0].chi_q - 1.0) <= propcalc.NEUTRAL_TOLERANCE
+    q = 1e-4
+    v = float(propcalc.meanfield.maps.variance_map(A("gelu"), q, 4.0, 0.0))
+    assert v - q == pytest.approx(6 * q * q / math.pi, rel=1e-3)

@@ -501,3 +501,30 @@ def test_oscillating_formula_beyond_its_integrable_variance_is_refused():
     # below the limit the scan and the large-variance limits stay inside it
     assert maps.largest_variance(A("sin(x)")) == pytest.approx(3.6e7)
     assert maps.largest_variance(A("tanh")) == math.inf
+
+
+@pytest.mark.parametrize("gap", [1e-8, 1e-6, 1e-4, 1e-2])
+def test_correlation_slope_of_a_jump_near_one(gap):
+    # issue 12: C'(1 - 1e-8) of where(x > 0.7, x, 0.2 x) was off by 4e-9 (the jump J = 0.56
+    # read as phi(b + h) - phi(b - h), which carries h (phi'(b-) + phi'(b+))). Reference, by
+    # Price's theorem with the Dirac mass J delta(x - b) in phi' (Price 1958): E[phi' phi'] =
+    # E[r r] + 2 J p(b) E[r(u2) | u1 = b] + J^2 p(b, b), r = 0.2 + 0.8 1{x > b}, with the
+    # bivariate orthant P(u1 > b, u2 > b) by mpmath.quad at 40 digits; at the c the double holds
+    c = 1.0 - gap
+    with mpmath.workdps(40):
+        e = 1 - mpmath.mpf(c)
+        b, sw, sb = mpmath.mpf("0.7"), mpmath.mpf("1.5"), mpmath.mpf("0.1")
+        jump, r = b - b / 5, mpmath.sqrt(e * (2 - e))
+        both = mpmath.quad(lambda z: mpmath.npdf(z) * mpmath.ncdf(((1 - e) * z - b) / r),
+                           [b, b + 10 * r, b + 1, 40])
+        tail = 1 - mpmath.ncdf(b)
+        err = mpmath.mpf("0.04") + mpmath.mpf("0.32") * tail + mpmath.mpf("0.64") * both
+        cond = mpmath.mpf("0.2") + mpmath.mpf("0.8") * mpmath.ncdf(-e * b / r)
+        dens_bb = mpmath.exp(-b * b / (2 - e)) / (2 * mpmath.pi * r)
+        edd = err + 2 * jump * mpmath.npdf(b) * cond + jump * jump * dens_bb
+        hi = tail + b * mpmath.npdf(b)  # E[x^2; x > b] at q = 1 (truncated normal moments)
+        ref = float(sw * edd / (sw * (mpmath.mpf("0.04") * (1 - hi) + hi) + sb))
+    act = A("where(x > 0.7, x, 0.2*x)")
+    assert act.jumps[0] == pytest.approx(0.56, rel=1e-15)
+    got = float(maps.correlation_map_slope(act, c, 1.5, 0.1, 1.0))
+    assert got == pytest.approx(ref, rel=3e-15)
