@@ -221,11 +221,12 @@ PLOT_USAGE_ERRORS = [
     (["report", "tanh", "-w", "1", "--plot", "{tmp}/x.png", "--plot-kind", "cobweb"],
      "argument --plot-kind: invalid choice"),
     # --q-star lists: finite numbers, at least one
-    (["edge", "tanh", "--q-star", "1e400"], "argument --q-star: must be finite numbers, got "
-                                            "'1e400'"),
-    (["edge", "tanh", "--q-star", "1,inf"], "must be finite numbers, got 'inf'"),
-    (["edge", "tanh", "--q-star", "nan"], "must be finite numbers, got 'nan'"),
-    (["edge", "tanh", "--q-star", ","], "must be at least one number like 0.5,1,2, got ','"),
+    (["edge", "tanh", "--q-star", "1e400"], "argument --q-star: must be finite numbers: item 1 "
+                                            "of '1e400' is '1e400'"),
+    (["edge", "tanh", "--q-star", "1,inf"], "must be finite numbers: item 2 of '1,inf' is 'inf'"),
+    (["edge", "tanh", "--q-star", "nan"], "must be finite numbers: item 1 of 'nan' is 'nan'"),
+    (["edge", "tanh", "--q-star", ","], "must be at least one number (comma-separated numbers "
+                                        "like 0.5,1,2), got ','"),
     (["edge", "tanh", "--q-star", ""], "must be at least one number"),
 ]
 

@@ -10,7 +10,13 @@ Subcommands::
     propcalc depth-scales ACT --plot FILE
                                       xi_q and xi_c against sigma_w2 at a fixed sigma_b2 (an
                                       image)
-    propcalc plan ACT --depth L       per-layer initialisation plan
+    propcalc plan ACT --depth L       per-layer initialisation plan (with --widths and --loss:
+                                      the learning-rate ceiling and learning rate)
+    propcalc network FILE|-           a network described block by block (JSON): q, c and the
+                                      gradient per position, summary, verdict, plan (--check:
+                                      seeded finite-width networks; --plot: against depth)
+    propcalc shape ACT --depth L      the activation shaped for the depth (--method tat|dks):
+                                      parameters, achieved C_L(0) and C_L'(1), roots, verdict
     propcalc dropout ACT -w W --keep-rate R[,R...]
                                       propagation with dropout (one keep rate: report; several:
                                       sweep)
