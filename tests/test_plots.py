@@ -396,3 +396,11 @@ def test_phase_diagram_says_what_lies_outside_the_window():
     fig = plot_phase_diagram(propcalc.activation("step"), n_grid=(5, 4))
     assert any("chi_1 is infinite for an activation with a jump" in t
                for t in legend_texts(fig))
+
+
+def test_depth_scales_names_a_curve_below_its_axis():
+    # step: V(q) = sigma_w2 / 2 + sigma_b2 does not depend on q (P(z > 0) = 1/2), so chi_q = 0
+    # and xi_q = 0 (Schoenholz et al. 2017, eq. 6): nothing to draw on a log axis, said in words
+    fig = plot_depth_scales(propcalc.activation("step"), sigma_b2=0.05, n_points=9)
+    assert any("= 0 here (settled in one layer), below the axis" in t
+               for t in legend_texts(fig))

@@ -66,6 +66,16 @@ def _bands(act: Activation, grid: np.ndarray, sb: float, q_input: float, rule: Q
     return out, inside
 
 
+def _below(xi: np.ndarray, bottom: float) -> str:
+    """Words for a curve that never rises into the axis (xi = 0: settled in one layer)."""
+    finite = xi[np.isfinite(xi)]
+    if not finite.size or np.any(finite >= bottom):
+        return ""
+    if np.all(finite == 0.0):
+        return "\n= 0 here (settled in one layer), below the axis"
+    return f"\nbelow the axis here (at most {fmt(float(finite.max()), 2)})"
+
+
 def plot_depth_scales(act: Activation, point: PointLike = None, *, sigma_b2: float | None = None,
                       sigma_w2_range: tuple[float, float] | None = None, n_points: int = 121,
                       xi_max: float | None = None, depth: int | None = None,
@@ -157,9 +167,9 @@ def plot_depth_scales(act: Activation, point: PointLike = None, *, sigma_b2: flo
     ax = fig.add_subplot()
     clip = 10.0 * top
     ax.plot(grid, np.where(np.isinf(xi_q), clip, xi_q), color="#1f5fa8", linewidth=1.8,
-            label="xi_q = -1/ln chi_q  (variance settles)")
+            label="xi_q = -1/ln chi_q  (variance settles)" + _below(xi_q, bottom))
     ax.plot(grid, np.where(np.isinf(xi_c), clip, xi_c), color="#c23b22", linewidth=1.8,
-            label="xi_c = -1/ln C'(c*)  (correlations settle)")
+            label="xi_c = -1/ln C'(c*)  (correlations settle)" + _below(xi_c, bottom))
     for k, (a, b) in enumerate(bands):
         ax.axvspan(a, b, facecolor=UNBOUNDED, edgecolor="0.45", hatch="//", linewidth=0.0,
                    zorder=0, label="variance grows without bound" if k == 0 else None)

@@ -174,7 +174,7 @@ def plot_variance_map(act: Activation, point: PointLike, *, q_max: float | None 
     ax.set_ylabel("V(q)  (variance of layer l + 1)")
     fit_title(ax, fig, f"Variance map of {act.label}:",
               f"sigma_w2 = {fmt(sw)}, sigma_b2 = {fmt(sb)}")
-    ax.legend(loc="upper left", fontsize=8)
+    ax.legend(loc="best", fontsize=8)
     ax.text(0.98, 0.03, wrap(fps.message, 60), transform=ax.transAxes, ha="right", va="bottom",
             fontsize=7.5, color="0.25",
             bbox=dict(boxstyle="round", facecolor="white", edgecolor="0.8"))
@@ -268,7 +268,7 @@ def plot_correlation_map(act: Activation, point: PointLike, *, c_min: float = -1
     ax.set_ylabel("C(c)  (correlation at layer l + 1)")
     fit_title(ax, fig, f"Correlation map of {act.label}:",
               f"sigma_w2 = {fmt(sw)}, sigma_b2 = {fmt(sb)}")
-    ax.legend(loc="upper left", fontsize=8)
+    ax.legend(loc="best", fontsize=8)
     ax.text(0.98, 0.03, f"phase: {prop.phase}", transform=ax.transAxes, ha="right", va="bottom",
             fontsize=9, color="0.25",
             bbox=dict(boxstyle="round", facecolor="white", edgecolor="0.8"))
