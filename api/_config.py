@@ -16,6 +16,7 @@ from collections.abc import Mapping
 from dataclasses import asdict, dataclass
 from typing import Any
 
+from propcalc import SERVICE_FORMULA_LIMITS
 from propcalc.domains import DOMAINS as _D
 
 from ._guard import Guard
@@ -112,9 +113,9 @@ DEFAULTS: dict[str, Any] = {
     "MAX_DEPTH": 1_000_000,
     # a finite-width simulation: width * width * depth * repetitions (weights drawn)
     "MAX_SIMULATION_SIZE": 20_000_000,
-    # typed formulas
-    "MAX_FORMULA_LENGTH": 200,
-    "MAX_FORMULA_PARAMS": 8,
+    # typed formulas: the engine's service limits (propcalc.SERVICE_FORMULA_LIMITS)
+    "MAX_FORMULA_LENGTH": SERVICE_FORMULA_LIMITS.max_length,
+    "MAX_FORMULA_PARAMS": SERVICE_FORMULA_LIMITS.max_parameters,
     # estimated work per request, in work units (1 unit ~ 1 ms of one core; see _budget.py)
     "WORK_BUDGET": 3000.0,
     # wall-clock guard in seconds for one computation, from its admission (0 disables): a

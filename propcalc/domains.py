@@ -285,7 +285,8 @@ _DOMAINS: tuple[Domain, ...] = (
                   "to 1e4 (a bias std of 100; keeps q* inside the fixed-point search)"),
     Domain("q_input", Q_POSITIVE_MIN, SIGMA_W2_MAX, zero=True,
            units="mean square of an input coordinate",
-           reason="model: 0 (zero inputs) or from the floor of q to 1e4; sigma_w2 q_input "
+           reason="model: 0 (zero inputs, with a bias: without one nothing propagates, "
+                  "check_signal) or from the floor of q to 1e4; sigma_w2 q_input "
                   "+ sigma_b2, the first layer's variance, then stays below about 1e8"),
     Domain("q_star", 1e-30, 1e6, units="pre-activation variance at the fixed point",
            reason="model: the edge-of-chaos line is searched over q* in [1e-30, 1e6]; below "
