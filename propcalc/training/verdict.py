@@ -162,7 +162,7 @@ def _correlation(p: Propagation, depth: int) -> Reason:
         return Reason(name, "variance growth per layer", rate, 1.0, False, 0.0,
                       "lower sigma_w2 (or plan at the edge of chaos: target 'edge')",
                       f"{depth} layers: the forward signal explodes (variance grows by about "
-                      f"{rate:.4g} per layer); not trainable as planned")
+                      f"{rate:.4g} per layer)")
     reached = p.variance_fixed_points.reached
     drifting = (p.status == "fixed_point" and reached is not None and not reached.stable
                 and abs(reached.chi_q - 1.0) > NEUTRAL_TOLERANCE)
