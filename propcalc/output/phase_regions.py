@@ -19,7 +19,8 @@ The phase rule is the one of :func:`propcalc.meanfield.core.propagate`
 its flow from ``q_input`` has no finite fixed point
 (:func:`propcalc.meanfield.fixed_points.solve_variance`); otherwise chi_1 =
 sigma_w2 E[phi'(sqrt(q*) z)^2] (Schoenholz et al. 2017, eq. 8), at a collapsed
-variance its q -> 0 limit, and the network is ordered when chi_1 < 1.
+variance its q -> 0 limit, and the network is ordered when chi_1 < 1 - EDGE_BAND (the
+band around the edge that :mod:`propcalc.vocabulary` gives the verdict).
 """
 
 from __future__ import annotations
@@ -32,7 +33,7 @@ from ..activations.base import Activation
 from ..meanfield.fixed_points import collapse_rate, solve_variance
 from ..meanfield.maps import derivative_second_moment
 from ..numerics.quadrature import QuadratureRule
-from ..vocabulary import EDGE_TOLERANCE, Phase, VarianceStatus
+from ..vocabulary import EDGE_BAND, Phase, VarianceStatus
 
 __all__ = ["Regions", "BISECTION_STEPS", "ON_EDGE", "reached_chi_1", "point_classes",
            "on_reached_edge", "locate_regions"]
@@ -108,7 +109,7 @@ def point_classes(act: Activation, sw: Array, sb: Array, q_input: float,
     """The class of each point (the phase rule of meanfield.core.propagate, without c*)."""
     unbounded, chi1 = reached_chi_1(act, sw, sb, q_input, rule)
     out = np.full(sw.shape, CHAOTIC, dtype=int)
-    out[np.isfinite(chi1) & (chi1 < 1.0 - EDGE_TOLERANCE)] = ORDERED
+    out[np.isfinite(chi1) & (chi1 < 1.0 - EDGE_BAND)] = ORDERED  # as core.propagate
     out[unbounded] = UNBOUNDED
     return out
 
