@@ -16,6 +16,8 @@ from typing import Any
 
 import numpy as np
 
+from .names import nearest_name
+
 __all__ = [
     "PropcalcError",
     "InvalidParameterError",
@@ -54,13 +56,22 @@ class InvalidParameterError(PropcalcError, ValueError):
         self.field = field
         self.constraint = constraint
         self.value = value
-        if value is None and constraint.startswith("given"):  # absent, not a value of None
+        if value is None and constraint.startswith(("given", "present")):  # absent, not None
             msg = f"{field} must be {constraint}; it is missing"
         else:
             msg = f"{field} must be {constraint}, got {_short_repr(value)}"
+        if not hint and isinstance(value, str) and constraint.startswith("one of "):
+            hint = _nearest_choice(value, constraint[len("one of "):])
         if hint:
             msg += f"; {hint}"
         super().__init__(msg)
+
+
+def _nearest_choice(value: str, listed: str) -> str:
+    """ "did you mean variance?" for a typo of one of the listed choices ("a, b, c"), or ""."""
+    choices = [c.strip().strip("'\"") for c in listed.split(",")]
+    close = nearest_name(value, choices)
+    return f"did you mean {close}?" if close is not None and close != value else ""
 
 
 def _short_repr(value: Any, limit: int = 100) -> str:

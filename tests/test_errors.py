@@ -195,3 +195,36 @@ def test_check_finite_refuses_an_integer_beyond_doubles():
     assert text.startswith("params.beta must be a finite real number, got 1000")
     assert text.endswith("... (401 characters)")  # the value is shortened, not printed in full
     assert info.value.value == 10**400
+
+
+def test_a_typo_of_a_choice_gets_the_nearest():
+    # issue 12 section 2: "suggest the nearest name (difflib) everywhere"; every engine check
+    # that lists its choices ("one of ...") now says which one was probably meant
+    err = InvalidParameterError("distribution", "one of normal, uniform, orthogonal", "normall")
+    assert str(err) == ("distribution must be one of normal, uniform, orthogonal, got 'normall'; "
+                        "did you mean normal?")
+    assert str(InvalidParameterError("method", "one of 'tat', 'dks'", "tatt")).endswith(
+        "; did you mean tat?")
+    assert str(InvalidParameterError("x", "one of a, b", "zzzz")) == "x must be one of a, b, got 'zzzz'"
+    assert str(InvalidParameterError("x", "one of a, b", "c", hint="given")).endswith("; given")
+
+
+def test_the_engine_suggests_the_nearest_choice_at_its_boundaries():
+    import propcalc
+
+    for call, hint in [(lambda: propcalc.recommend("tanh", 3, distribution="normall"), "normal"),
+                       (lambda: propcalc.recommend("tanh", 3, target="edg"), "edge"),
+                       (lambda: propcalc.shape_activation("relu", 10, method="tatt"), "tat"),
+                       (lambda: propcalc.network({"blocks": [{"dens": {"width": 3}}]}), "dense"),
+                       (lambda: propcalc.network({"blocks": [{"dense": {"widht": 3}}]}),
+                        "width")]:
+        with pytest.raises(InvalidParameterError, match=rf"; did you mean {hint}\?$"):
+            call()
+
+
+def test_a_missing_field_of_a_network_block_is_said_to_be_missing():
+    import propcalc
+
+    with pytest.raises(InvalidParameterError, match=r"^/blocks/0/dense/sigma_w2 must be present "
+                                                    r"\(.*\); it is missing$"):
+        propcalc.network({"blocks": [{"dense": {}}]})

@@ -18,6 +18,7 @@ from typing import Any
 from ..activations.resolver import resolve
 from ..domains import DOMAINS
 from ..errors import InvalidParameterError, PropcalcError
+from ..activations.names import nearest_name
 from .blocks import (
     WEIGHT_BLOCKS,
     ActivationBlock,
@@ -62,6 +63,12 @@ class NetworkDescriptionError(InvalidParameterError):
     def __init__(self, path: str, constraint: str, value: Any, hint: str = "") -> None:
         self.path = path
         super().__init__(path or "the network description", constraint, _show(value), hint)
+
+
+def _hint(word: Any, choices: Any) -> str:
+    """ "did you mean dense?" for a typo of a block kind or a field name, or ""."""
+    close = nearest_name(word, list(choices)) if isinstance(word, str) else None
+    return f"did you mean {close}?" if close is not None else ""
 
 
 def _show(value: Any) -> Any:
@@ -182,7 +189,8 @@ class _Walk:
         (kind, body), = value.items()
         if kind not in BLOCK_SPECS:
             raise NetworkDescriptionError(pointer_join(path, str(kind)),
-                                          f"a block kind ({kinds})", kind)
+                                          f"a block kind ({kinds})", kind,
+                                          _hint(kind, BLOCK_SPECS))
         spec = BLOCK_SPECS[kind]
         bpath = pointer_join(path, kind)
         if spec.shorthand is not None and isinstance(body, str):
@@ -198,7 +206,8 @@ class _Walk:
         for key in body:
             if key not in names:
                 raise NetworkDescriptionError(pointer_join(path, str(key)),
-                                              f"a field of {spec.kind} ({', '.join(names)})", key)
+                                              f"a field of {spec.kind} ({', '.join(names)})", key,
+                                              _hint(key, names))
         out: dict[str, Any] = {}
         for f in spec.fields:
             if f.name in body:
