@@ -320,8 +320,8 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
     q0, c0, _, _ = check_inputs(q0, c0, 0.0, 0.0, net.uses_positions())
     notes: list[str] = []
     found: BranchWeight | None = None
-    planned = _planned(net, q0, c0, distribution, convolution, q_star)[0]
     if target is not None:
+        planned = _planned(net, q0, c0, distribution, convolution, q_star)[0]
         # the layers first (they set the branch's maps), then the weight, then the layers
         # again (a first layer's scale depends on the stream entering it)
         for _ in range(2):
