@@ -309,6 +309,14 @@ _DOMAINS: tuple[Domain, ...] = (
     Domain("n_classes", 2, 10_000_000, integer=True, units="softmax outputs",
            reason="a classifier has at least 2 classes; 10^7 bounds the Monte Carlo work "
                   "(draws x classes)"),
+    Domain("batch_size", 1, 10_000_000, integer=True, units="inputs per step",
+           reason="at least one input; 10^7 keeps sizes exact and the work of a summary bounded "
+                  "(an explicit batch of inputs is limited separately, by the B x B kernel "
+                  "matrix it forms) (common practice, no source)"),
+    Domain("momentum", 0.0, 1.0, upper_open=True, units="heavy-ball momentum",
+           basic="in [0, 1)", upper_is_basic=True,
+           reason="heavy-ball gradient descent is stable on a quadratic only for momentum in "
+                  "[0, 1) (Polyak 1964, from memory)"),
     Domain("activation_parameter", -1e6, 1e6, units="slope, alpha, beta or a formula constant",
            reason="beyond 1e6 in size the activation's structure is finer than 1e-6 in x or "
                   "its values exceed 1e6 |x|, outside the feature scales (down to 1e-3) the "

@@ -158,3 +158,16 @@ def test_apply_plan_sets_the_readout_as_planned():
     assert float(net[4].bias.detach().abs().max()) == 0.0  # sigma_b2 = 0 for the readout
     hidden = net[2].weight.detach().double().numpy()
     assert np.mean(hidden * hidden) == pytest.approx(plan.sigma_w2 / 256, rel=0.05)
+
+
+@pytest.mark.parametrize("kwargs,match", [
+    ({"inputs": np.ones((2049, 16))}, "inputs must be a 2-D array of 2 to 2048 rows"),
+    ({"inputs": np.ones((4, 15))}, r"inputs must be rows of 16 numbers"),
+    ({"inputs": np.zeros((4, 16))}, "inputs must be rows that are not all zero"),
+    ({"inputs": np.ones((3, 16))}, "inputs must be at least batch_size = 4 rows"),
+    ({"input_correlation": np.zeros(1001)}, "input_correlation must be a correlation or at most"),
+    ({"input_correlation": 1.5}, r"c0 must be in \[-1, 1\]"),
+])
+def test_bad_batches_are_refused_with_the_field_named(kwargs, match):
+    with pytest.raises(PropcalcError, match=match):
+        learning_rate_ceiling("tanh", WIDTHS, 1.5, 0.1, loss="mse", batch_size=4, **kwargs)

@@ -21,11 +21,12 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
+from .. import domains
 from ..activations.base import Activation
 from ..errors import InvalidParameterError, check_int
 from ..meanfield.maps import second_moment, variance_map
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
-from ..training.learning_rate import LOSSES, MAX_BATCH_SIZE, LearningRateCeiling, learning_rate_ceiling
+from ..training.learning_rate import LOSSES, LearningRateCeiling, learning_rate_ceiling
 from ..training.ntk import UnsupportedKernelError
 from ..variants.output_layer import OutputLayerScale, output_layer_scale
 from .layers import Layer
@@ -79,7 +80,7 @@ def plan_for_loss(act: Activation, layers: Sequence[Layer | None], widths: Seque
         raise InvalidParameterError("loss", f"one of {', '.join(LOSSES)}", loss)
     if batch_size is None:
         raise InvalidParameterError("batch_size", "given when a loss is given", None)
-    b = check_int("batch_size", batch_size, 1, MAX_BATCH_SIZE)
+    b = domains.check("batch_size", batch_size)
     ws = _widths(layers, widths)
     k = ws[-1]
     if n_classes is None:

@@ -59,19 +59,25 @@ from typing import Any
 import numpy as np
 from scipy.interpolate import BarycentricInterpolator
 
+from .. import domains
 from ..activations.resolver import resolve
 from ..errors import InvalidParameterError, check_finite, check_int, check_nonnegative
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..results import OMIT, Result
 from .ntk import TangentKernel, layer_scales, tangent_kernel
 
-__all__ = ["FINITE_WIDTH_NOTE", "LOSSES", "MAX_BATCH_SIZE", "MAX_SAMPLED_CLASSES", "RECOMMENDED_FRACTION", "LearningRateCeiling",
+__all__ = ["FINITE_WIDTH_NOTE", "LOSSES", "MAX_BATCH_SIZE", "MAX_CORRELATION_SAMPLES",
+           "MAX_INPUT_ROWS", "MAX_SAMPLED_CLASSES", "RECOMMENDED_FRACTION", "LearningRateCeiling",
            "learning_rate_ceiling", "output_hessian"]
 
+#: most rows of an explicit batch of inputs (it forms N x N matrices)
+MAX_INPUT_ROWS = 2048
+#: most samples of the inputs' pairwise correlation (each is followed through every layer)
+MAX_CORRELATION_SAMPLES = 1000
 #: the losses the curvature is computed for
 LOSSES = ("mse", "cross_entropy")
 #: largest batch size accepted
-MAX_BATCH_SIZE = 10**7
+MAX_BATCH_SIZE = int(domains.domain("batch_size").upper)
 #: the recommended learning rate as a fraction of the ceiling (module docstring)
 RECOMMENDED_FRACTION = 0.5
 #: samples of the logits for E[sum_j p_j^2] at a planned logit variance
@@ -180,7 +186,7 @@ def output_hessian(loss: str, n_classes: int, logit_variance: float = 0.0,
     c = check_finite("output_correlation", output_correlation)
     if not -1.0 <= c <= 1.0:
         raise InvalidParameterError("output_correlation", "in [-1, 1]", output_correlation)
-    b = check_int("batch_size", batch_size, 1, MAX_BATCH_SIZE)
+    b = domains.check("batch_size", batch_size)
     if loss == "mse":
         return 2.0 / k
     if s2 == 0.0:
@@ -229,9 +235,9 @@ def _interpolant(nodes: np.ndarray, values: np.ndarray) -> Any:
 
 def _batch_cosines(inputs: Any, d: int) -> tuple[np.ndarray, np.ndarray]:
     x = np.asarray(inputs, dtype=float)
-    if x.ndim != 2 or x.shape[0] < 2:
-        raise InvalidParameterError("inputs", "a 2-D array with at least 2 rows (one per input)",
-                                    f"an array of shape {x.shape}")
+    if x.ndim != 2 or not 2 <= x.shape[0] <= MAX_INPUT_ROWS:
+        raise InvalidParameterError("inputs", f"a 2-D array of 2 to {MAX_INPUT_ROWS} rows (one "
+                                    "per input)", f"an array of shape {x.shape}")
     if x.shape[1] != d:
         raise InvalidParameterError("inputs", f"rows of {d} numbers (widths[0])",
                                     f"rows of {x.shape[1]}")
@@ -296,7 +302,7 @@ def learning_rate_ceiling(act: Any, widths: Sequence[int], sigma_w2: float | Seq
     act = resolve(act)
     if loss not in LOSSES:
         raise InvalidParameterError("loss", f"one of {', '.join(LOSSES)}", loss)
-    b = check_int("batch_size", batch_size, 1, MAX_BATCH_SIZE)
+    b = domains.check("batch_size", batch_size)
     if isinstance(widths, (str, bytes)) or not isinstance(widths, (Sequence, np.ndarray)):
         raise InvalidParameterError("widths", "a list of integers", widths)
     ws = [check_int(f"widths[{i}]", w, 1) for i, w in enumerate(widths)]
@@ -307,9 +313,7 @@ def learning_rate_ceiling(act: Any, widths: Sequence[int], sigma_w2: float | Seq
         raise InvalidParameterError("n_classes", f"equal to the last width ({k})", n_classes)
     if loss == "cross_entropy" and k < 2:
         raise InvalidParameterError("n_classes", ">= 2 for cross_entropy", k)
-    mu = check_finite("momentum", momentum)
-    if not 0.0 <= mu < 1.0:
-        raise InvalidParameterError("momentum", "in [0, 1)", momentum)
+    mu = domains.check("momentum", momentum)
     notes: list[str] = []
     if inputs is not None:
         sq, cos = _batch_cosines(inputs, ws[0])
@@ -363,6 +367,10 @@ def learning_rate_ceiling(act: Any, widths: Sequence[int], sigma_w2: float | Seq
                      "homogeneous phi with sigma_b2 = 0 and no biases)")
     else:
         cs = np.atleast_1d(np.asarray(input_correlation, dtype=float))
+        if cs.ndim != 1 or cs.size > MAX_CORRELATION_SAMPLES:
+            raise InvalidParameterError("input_correlation", "a correlation or at most "
+                                        f"{MAX_CORRELATION_SAMPLES} samples of them",
+                                        f"an array of shape {cs.shape}")
         kern = tangent_kernel(act, ws, sigma_w2, sigma_b2, q0, cs, biases=biases, rule=rule)
         diag = kern.output_diagonal
         off = float(np.mean(kern.output_off_diagonal))
