@@ -163,3 +163,29 @@ def test_a_closed_pipe_is_not_a_failure() -> None:
             pass
 
     assert cli.main(["report", "tanh", "-w", "1.5"], out=Closed()) == 0  # type: ignore[arg-type]
+
+
+@pytest.mark.parametrize("argv, message", [
+    # --second-moment and -b were read but not used without --margin (exit 0)
+    (["softmax", "10", "--logit-variance", "1", "--second-moment", "2"],
+     "--second-moment: options of the last layer's scale, which need --margin"),
+    (["softmax", "10", "--logit-variance", "1", "-b", "0.1", "--fan-in", "64"],
+     "--sigma-b2, --fan-in: options of the last layer's scale, which need --margin"),
+])
+def test_softmax_options_of_the_last_layer_need_margin(argv: list[str], message: str) -> None:
+    code, out, err = run(*argv)
+    assert code == 2 and out == "" and message in err
+
+
+def test_softmax_last_layer_options_take_effect_with_margin() -> None:
+    # the recommended sigma_w2 scales as 1 / E[phi^2] of the penultimate layer (logit variance
+    # = sigma_w2 E[phi^2] + sigma_b2, Result of output_layer_scale)
+    import json
+
+    import propcalc
+
+    code, out, _ = run("softmax", "10", "--margin", "--second-moment", "2", "--json")
+    assert code == 0
+    got = json.loads(out)["output_layer"]["sigma_w2"]
+    assert got == propcalc.output_layer_scale(10, 2.0).sigma_w2
+    assert got == pytest.approx(propcalc.output_layer_scale(10, 1.0).sigma_w2 / 2, rel=1e-12)

@@ -222,9 +222,14 @@ def _cmd_softmax(args: argparse.Namespace, out: TextIO) -> int:
     if args.logit_variance is None and args.margin is None:
         raise UsageError("give --logit-variance (the initial loss), --margin (the last layer's "
                          "scale), or both")
-    if args.margin is None and any(v is not None for v in (
-            args.fan_in, args.current_sigma_w2, args.current_sigma_b2)):
-        raise UsageError("--fan-in, --current-sigma-w2 and --current-sigma-b2 need --margin")
+    given = [o for o, v in (("--second-moment", args.second_moment), ("--sigma-b2", args.sigma_b2),
+                            ("--fan-in", args.fan_in), ("--current-sigma-w2", args.current_sigma_w2),
+                            ("--current-sigma-b2", args.current_sigma_b2)) if v is not None]
+    if args.margin is None and given:  # they shape the last layer only: never ignore them
+        raise UsageError(f"{', '.join(given)}: options of the last layer's scale, which need "
+                         "--margin")
+    second_moment = 1.0 if args.second_moment is None else args.second_moment
+    sigma_b2 = 0.0 if args.sigma_b2 is None else args.sigma_b2
     n = args.samples
     if n is None:
         n = max(2, min(_MC_DEFAULT_SAMPLES, _MC_MAX_ELEMENTS // max(k, 1)))
@@ -234,7 +239,7 @@ def _cmd_softmax(args: argparse.Namespace, out: TextIO) -> int:
         pmax = max_class_probability(k, args.logit_variance, n, args.seed)
     if args.margin is not None:
         margin = None if args.margin is _DEFAULT_MARGIN else args.margin
-        scale = output_layer_scale(k, args.second_moment, margin, args.sigma_b2, args.fan_in,
+        scale = output_layer_scale(k, second_moment, margin, sigma_b2, args.fan_in,
                                    args.current_sigma_w2, args.current_sigma_b2, n, args.seed)
     if args.json:
         emit_json({"initial_loss": None if loss is None else loss.to_dict(),
@@ -348,10 +353,10 @@ def register(sub: Any) -> None:
     p.add_argument("--margin", type=finite_float, nargs="?", const=_DEFAULT_MARGIN,
                    help="recommend the last layer's scale for an initial loss within this many "
                         "nats of ln K (alone: 1%% of ln K)")
-    p.add_argument("--second-moment", type=finite_float, default=1.0,
-                   help="E[phi^2] of the penultimate activations (default 1)")
-    p.add_argument("-b", "--sigma-b2", type=finite_float, default=0.0,
-                   help="the last layer's bias variance (default 0)")
+    p.add_argument("--second-moment", type=finite_float,
+                   help="with --margin: E[phi^2] of the penultimate activations (default 1)")
+    p.add_argument("-b", "--sigma-b2", type=finite_float,
+                   help="with --margin: the last layer's bias variance (default 0)")
     p.add_argument("--fan-in", type=int, help="width of the penultimate layer, for the weight std")
     p.add_argument("--current-sigma-w2", type=finite_float, help="the planned last layer's sigma_w2")
     p.add_argument("--current-sigma-b2", type=finite_float, help="the planned last layer's sigma_b2")
