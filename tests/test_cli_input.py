@@ -189,3 +189,23 @@ def test_softmax_last_layer_options_take_effect_with_margin() -> None:
     got = json.loads(out)["output_layer"]["sigma_w2"]
     assert got == propcalc.output_layer_scale(10, 2.0).sigma_w2
     assert got == pytest.approx(propcalc.output_layer_scale(10, 1.0).sigma_w2 / 2, rel=1e-12)
+
+
+def test_a_current_bias_without_the_current_weights_is_refused_everywhere() -> None:
+    # output_layer_scale read current_sigma_b2 and ignored it when current_sigma_w2 was absent;
+    # the engine refuses it now, so the CLI and the service (422 at /current_sigma_b2) do too
+    import propcalc
+
+    with pytest.raises(propcalc.InvalidParameterError, match=r"^current_sigma_b2 must be absent "
+                                                             r"without current_sigma_w2"):
+        propcalc.output_layer_scale(10, 1.0, current_sigma_b2=0.1)
+    code, _, err = run("softmax", "10", "--margin", "--current-sigma-b2", "0.1")
+    assert code == 2 and "current_sigma_b2 must be absent without current_sigma_w2" in err
+    pytest.importorskip("flask")
+    from propcalc_api import create_app
+
+    r = create_app().test_client().post("/v1/softmax/output-scale",
+                                        json={"n_classes": 10, "current_sigma_b2": 0.1})
+    assert r.status_code == 422 and r.get_json()["errors"][0]["pointer"] == "/current_sigma_b2"
+    both = propcalc.output_layer_scale(10, 1.0, current_sigma_w2=0.5, current_sigma_b2=0.1)
+    assert both.to_dict() != propcalc.output_layer_scale(10, 1.0, current_sigma_w2=0.5).to_dict()

@@ -373,6 +373,10 @@ def output_layer_scale(n_classes: int, penultimate_second_moment: float,
     -------
     OutputLayerScale
     """
+    if current_sigma_b2 is not None and current_sigma_w2 is None:  # it would be ignored
+        raise InvalidParameterError("current_sigma_b2", "absent without current_sigma_w2 (the "
+                                    "two describe the planned last layer whose loss is "
+                                    "reported)", current_sigma_b2)
     k = _classes(n_classes)
     m2 = check_positive("penultimate_second_moment", penultimate_second_moment)
     mg = 0.01 * math.log(k) if margin is None else check_positive("margin", margin)
