@@ -127,6 +127,8 @@ from .networks import (
 from .shaping import ShapedActivation, ShapingError, UnreachableTargetError, shape_activation
 from .training import (FiniteWidth, Reason, Verdict, finite_width, layer_fluctuations,
                        network_verdict, trainability)
+from .training import (LearningRateCeiling, NetworkTangentKernel, TangentKernel,
+                       learning_rate_ceiling, network_tangent_kernel, tangent_kernel)
 
 __version__ = "0.1.0"
 
@@ -229,6 +231,12 @@ __all__ = [
     "ShapingError",
     "UnreachableTargetError",
     "shape_activation",
+    "LearningRateCeiling",
+    "NetworkTangentKernel",
+    "TangentKernel",
+    "learning_rate_ceiling",
+    "network_tangent_kernel",
+    "tangent_kernel",
     "variance_fixed_points",
     "variance_map",
     "variance_map_slope",
