@@ -209,3 +209,15 @@ def test_a_current_bias_without_the_current_weights_is_refused_everywhere() -> N
     assert r.status_code == 422 and r.get_json()["errors"][0]["pointer"] == "/current_sigma_b2"
     both = propcalc.output_layer_scale(10, 1.0, current_sigma_w2=0.5, current_sigma_b2=0.1)
     assert both.to_dict() != propcalc.output_layer_scale(10, 1.0, current_sigma_w2=0.5).to_dict()
+
+
+@pytest.mark.parametrize("kwargs, field", [(dict(momentum=0.5), "momentum"),
+                                           (dict(scale_output=False), "scale_output")])
+def test_training_options_without_a_loss_are_refused(kwargs: dict, field: str) -> None:
+    # recommend read momentum and scale_output and ignored them when no loss was given
+    import propcalc
+
+    with pytest.raises(propcalc.InvalidParameterError, match=rf"^{field} must be .* when no loss "
+                                                             r"is given \(give loss=\)"):
+        propcalc.recommend("tanh", widths=[4, 4], **kwargs)
+    assert propcalc.recommend("tanh", widths=[4, 4], momentum=0.0, scale_output=True).loss is None

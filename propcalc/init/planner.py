@@ -288,6 +288,12 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
             if value is not None:
                 raise InvalidParameterError(name, "absent when no loss is given (give loss=)",
                                             value if name != "inputs" else "an array")
+        if momentum != 0.0:  # it would be ignored (issue 12 section 2)
+            raise InvalidParameterError("momentum", "0 when no loss is given (give loss=)",
+                                        momentum)
+        if scale_output is not True:
+            raise InvalidParameterError("scale_output", "True when no loss is given (give loss=)",
+                                        scale_output)
         return _with_verdict(InitPlan(act.label, chosen, description, distribution, sw, sb,
                                       p.q_star, n, inits, p, p.trainable_depth, verdict, ok,
                                       tuple(notes + list(p.notes))), act, plan_layers, rule)
