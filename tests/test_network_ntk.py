@@ -98,3 +98,23 @@ def test_other_blocks_are_refused_by_path(blocks, match):
 def test_a_missing_width_is_refused():
     with pytest.raises(UnsupportedKernelError, match="width of its input is not given"):
         network_tangent_kernel({"blocks": [{"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0}}]})
+
+
+def test_network_ceiling_equals_the_plain_stack_ceiling():
+    from propcalc.training import learning_rate_ceiling
+    from propcalc.training.network_ntk import network_learning_rate_ceiling
+    desc = {"input_width": 16, "blocks": [
+        {"dense": {"sigma_w2": 0.9, "sigma_b2": 0.1, "width": 64}},
+        {"repeat": {"times": 3, "blocks": [
+            {"activation": "tanh"}, {"dense": {"sigma_w2": 1.7, "sigma_b2": 0.1, "width": 64}}]}},
+        {"activation": "tanh"},
+        {"dense": {"sigma_w2": 0.3, "sigma_b2": 0.0, "width": 10}}]}
+    kw = dict(loss="cross_entropy", batch_size=32, q0=1.3, input_correlation=[0.1, 0.4],
+              momentum=0.5)
+    net = network_learning_rate_ceiling(desc, n_classes=10, **kw)
+    plain = learning_rate_ceiling("tanh", [16, 64, 64, 64, 64, 10], [0.9, 1.7, 1.7, 1.7, 0.3],
+                                  [0.1, 0.1, 0.1, 0.1, 0.0], **kw)
+    assert net.lambda_max == pytest.approx(plain.lambda_max, rel=1e-12)
+    assert net.learning_rate_ceiling == pytest.approx(plain.learning_rate_ceiling, rel=1e-12)
+    with pytest.raises(Exception, match="n_classes must be equal to the output width"):
+        network_learning_rate_ceiling(desc, n_classes=7, **kw)

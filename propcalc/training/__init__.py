@@ -10,11 +10,12 @@ Above :mod:`propcalc.meanfield` and :mod:`propcalc.variants`, below :mod:`propca
 
 from .finite_width import FiniteWidth, LayerFluctuations, finite_width, layer_fluctuations
 from .learning_rate import LOSSES, LearningRateCeiling, learning_rate_ceiling, output_hessian
-from .network_ntk import NetworkTangentKernel, network_tangent_kernel
+from .network_ntk import NetworkTangentKernel, network_learning_rate_ceiling, network_tangent_kernel
 from .ntk import TangentKernel, UnsupportedKernelError, tangent_kernel
 from .verdict import Reason, Verdict, network_verdict, trainability
 
 __all__ = ["FiniteWidth", "LOSSES", "LayerFluctuations", "LearningRateCeiling", "TangentKernel",
            "UnsupportedKernelError", "finite_width", "layer_fluctuations",
            "learning_rate_ceiling", "output_hessian", "tangent_kernel", "Reason", "Verdict",
-           "network_verdict", "trainability", "NetworkTangentKernel", "network_tangent_kernel"]
+           "network_verdict", "trainability", "NetworkTangentKernel", "network_learning_rate_ceiling",
+           "network_tangent_kernel"]

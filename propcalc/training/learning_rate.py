@@ -64,10 +64,10 @@ from ..activations.resolver import resolve
 from ..errors import InvalidParameterError, check_finite, check_int, check_nonnegative
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..results import OMIT, Result
-from .ntk import TangentKernel, layer_scales, tangent_kernel
+from .ntk import layer_scales, tangent_kernel
 
 __all__ = ["FINITE_WIDTH_NOTE", "LOSSES", "MAX_BATCH_SIZE", "MAX_CORRELATION_SAMPLES",
-           "MAX_INPUT_ROWS", "MAX_SAMPLED_CLASSES", "RECOMMENDED_FRACTION", "LearningRateCeiling",
+           "MAX_INPUT_ROWS", "MAX_SAMPLED_CLASSES", "ceiling_from_kernel", "RECOMMENDED_FRACTION", "LearningRateCeiling",
            "learning_rate_ceiling", "output_hessian"]
 
 #: most rows of an explicit batch of inputs (it forms N x N matrices)
@@ -145,7 +145,7 @@ class LearningRateCeiling(Result):
         even through a catapult (Lewkowycz et al. 2020).
     optimiser : str
     notes : tuple of str
-    kernel : TangentKernel
+    kernel : TangentKernel or NetworkTangentKernel
         The kernel it came from (Python only).
     """
 
@@ -165,7 +165,7 @@ class LearningRateCeiling(Result):
     catapult_limit: float
     optimiser: str
     notes: tuple[str, ...] = ()
-    kernel: TangentKernel | None = field(default=None, repr=False, metadata=OMIT)
+    kernel: Any = field(default=None, repr=False, metadata=OMIT)
 
 
 def output_hessian(loss: str, n_classes: int, logit_variance: float = 0.0,
@@ -384,22 +384,31 @@ def learning_rate_ceiling(act: Any, widths: Sequence[int], sigma_w2: float | Seq
                      "Theta(x, x) + (B - 1) mean Theta(x, x'); pass inputs for the exact matrix")
     s2 = kern.q[-1] if logit_variance is None else check_nonnegative("logit_variance",
                                                                      logit_variance)
-    h = output_hessian(loss, k, s2 if loss == "cross_entropy" else 0.0,
-                       float(np.clip(c_out, -1.0, 1.0)), b, seed)
-    lam = h * top / b
     beta = float(sum(1.0 / w for w in ws[1:-1]))
     if beta > FINITE_WIDTH_NOTE:
         notes.append(
             f"finite width: the sum of 1/width over the hidden layers is {beta:.3g}; the kernel "
-            "then fluctuates from draw to draw and the measured top curvature exceeds this "
-            "infinite-width value (by 1.06x at 0.074 and 2.4-3.6x at 0.77 for tanh on the "
-            "digits, docs/training.md); wider layers bring it back")
-    ceiling = 2.0 * (1.0 + mu) / lam
+            "then fluctuates from draw to draw and the measured top curvature departs from this "
+            "infinite-width value (1.06x at 0.074; from 0.3x for GELU to 3.6x for tanh near "
+            "0.8, on the digits, docs/training.md); wider layers bring it back")
+    return ceiling_from_kernel(loss, k, b, mu, how, float(diag), off, top, s2, c_out, seed,
+                               tuple(notes), kern)
+
+
+def ceiling_from_kernel(loss: str, n_classes: int, batch_size: int, momentum: float, inputs: str,
+                        diagonal: float, off_diagonal: float, top: float, logit_variance: float,
+                        output_correlation: float, seed: int, notes: tuple[str, ...],
+                        kernel: Any = None) -> LearningRateCeiling:
+    """The curvature and the learning rates from a batch kernel's numbers (module docstring)."""
+    h = output_hessian(loss, n_classes, logit_variance if loss == "cross_entropy" else 0.0,
+                       float(np.clip(output_correlation, -1.0, 1.0)), batch_size, seed)
+    lam = h * top / batch_size
+    ceiling = 2.0 * (1.0 + momentum) / lam
     rule_text = ("half the ceiling: 1/lambda_max, the step of the classic analysis of a function "
-                 "with Lipschitz gradient (Nesterov 2004, section 2.1.5, from memory)" if mu == 0.0
-                 else "half the ceiling (common practice, no source)")
-    optimiser = ("gradient descent / SGD without momentum" if mu == 0.0
-                 else f"SGD with heavy-ball momentum {mu:g}")
-    return LearningRateCeiling(loss, k, b, mu, how, float(diag), off, top, h, lam, ceiling,
-                               RECOMMENDED_FRACTION * ceiling, rule_text, 4.0 / lam, optimiser,
-                               tuple(notes) + _NOTES, kern)
+                 "with Lipschitz gradient (Nesterov 2004, section 2.1.5, from memory)"
+                 if momentum == 0.0 else "half the ceiling (common practice, no source)")
+    optimiser = ("gradient descent / SGD without momentum" if momentum == 0.0
+                 else f"SGD with heavy-ball momentum {momentum:g}")
+    return LearningRateCeiling(loss, n_classes, batch_size, momentum, inputs, diagonal,
+                               off_diagonal, top, h, lam, ceiling, RECOMMENDED_FRACTION * ceiling,
+                               rule_text, 4.0 / lam, optimiser, notes + _NOTES, kernel)

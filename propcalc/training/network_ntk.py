@@ -21,18 +21,27 @@ gives exactly :func:`propcalc.training.ntk.tangent_kernel` (tested).
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from typing import Any
 
+import numpy as np
+
+from .. import domains
+from ..errors import InvalidParameterError
 from ..networks.blocks import ActivationBlock, Dense, Repeat, Residual
 from ..networks.description import Network, network as read_network
 from ..networks.rules import Step, Stream
 from ..networks.walk import trace
 from ..results import Result
+from .learning_rate import LOSSES, LearningRateCeiling, ceiling_from_kernel
 from .ntk import UnsupportedKernelError
 
-__all__ = ["NetworkTangentKernel", "network_tangent_kernel"]
+__all__ = ["MAX_NETWORK_SAMPLES", "NetworkTangentKernel", "network_learning_rate_ceiling",
+           "network_tangent_kernel"]
+
+#: most samples of the input correlation for a network (each is a walk through the network)
+MAX_NETWORK_SAMPLES = 64
 
 
 @dataclass(frozen=True)
@@ -49,6 +58,8 @@ class NetworkTangentKernel(Result):
         ``Theta(x, x')``.
     output_q, output_c : float
         The output stream's second moment and the pair's correlation there.
+    output_width : int or None
+        Units of the output stream.
     parametrisation : str
         Always "standard".
     """
@@ -59,6 +70,7 @@ class NetworkTangentKernel(Result):
     off_diagonal: float
     output_q: float
     output_c: float
+    output_width: int | None
     parametrisation: str = "standard"
 
 
@@ -140,4 +152,66 @@ def network_tangent_kernel(network: Any, q0: float = 1.0, c0: float = 0.0
     theta = carry.run(net.blocks, (0.0, 0.0), "/blocks")
     out = carry.stream
     return NetworkTangentKernel(float(q0), float(c0), float(theta[0]), float(theta[1]),
-                                float(out.q), float(out.c))
+                                float(out.q), float(out.c), out.width)
+
+
+def network_learning_rate_ceiling(network: Any, *, loss: str, batch_size: int,
+                                  n_classes: int | None = None, q0: float = 1.0,
+                                  input_correlation: float | Sequence[float] = 0.0,
+                                  momentum: float = 0.0, seed: int = 0) -> LearningRateCeiling:
+    """The learning-rate ceiling of a network of blocks at initialisation.
+
+    :func:`network_tangent_kernel` at each input correlation, then the batch kernel's top
+    eigenvalue ``Theta(x, x) + (B - 1) mean Theta(x, x')`` and the curvature as for a plain stack
+    (:func:`propcalc.training.learning_rate.ceiling_from_kernel`).
+
+    Parameters
+    ----------
+    network : Network or mapping
+    loss : str
+        "mse" or "cross_entropy".
+    batch_size : int
+    n_classes : int, optional
+        Must equal the output width when given.
+    q0 : float
+    input_correlation : float or sequence of float
+        The inputs' pairwise correlation, or at most :data:`MAX_NETWORK_SAMPLES` samples of it.
+    momentum : float
+        Heavy-ball momentum in [0, 1).
+
+    Returns
+    -------
+    LearningRateCeiling
+        ``kernel`` holds the NetworkTangentKernel of the first correlation.
+    """
+    if loss not in LOSSES:
+        raise InvalidParameterError("loss", f"one of {', '.join(LOSSES)}", loss)
+    b = domains.check("batch_size", batch_size)
+    mu = domains.check("momentum", momentum)
+    cs = np.atleast_1d(np.asarray(input_correlation, dtype=float))
+    if cs.ndim != 1 or not 1 <= cs.size <= MAX_NETWORK_SAMPLES:
+        raise InvalidParameterError("input_correlation", "a correlation or at most "
+                                    f"{MAX_NETWORK_SAMPLES} samples of them",
+                                    f"an array of shape {cs.shape}")
+    net = network if isinstance(network, Network) else read_network(network)
+    kernels = [network_tangent_kernel(net, q0, float(c)) for c in cs]
+    k = kernels[0].output_width
+    if k is None:
+        raise UnsupportedKernelError("the network's output width is not given: set every "
+                                     "dense width")
+    if n_classes is not None and domains.check("n_classes", n_classes) != k:
+        raise InvalidParameterError("n_classes", f"equal to the output width ({k})", n_classes)
+    if loss == "cross_entropy" and k < 2:
+        raise InvalidParameterError("n_classes", ">= 2 for cross_entropy", k)
+    diag = kernels[0].diagonal
+    off = float(np.mean([kk.off_diagonal for kk in kernels]))
+    top = max(diag + (b - 1) * off, diag - off) if b > 1 else diag
+    c_out = float(np.mean([kk.output_c for kk in kernels]))
+    notes = (f"inputs summarised by q0 = {q0:g} and "
+             + (f"correlation {cs[0]:g}" if cs.size == 1 else
+                f"{cs.size} sampled correlations (mean {cs.mean():.3g})")
+             + ": the batch kernel's top eigenvalue is the lower bound Theta(x, x) + (B - 1) "
+             "mean Theta(x, x')",)
+    return ceiling_from_kernel(loss, k, b, mu, "correlation" if cs.size == 1 else "correlations",
+                               diag, off, top, kernels[0].output_q, c_out, seed, notes,
+                               kernels[0])
