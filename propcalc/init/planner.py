@@ -131,7 +131,9 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
     widths : sequence of int, optional
         ``[d_0, d_1, ..., d_L]``: a dense network with these widths.
     layers : sequence of Layer, optional
-        Explicit dense or convolutional layers (instead of widths).
+        Explicit dense or convolutional layers (instead of widths), taken as given: the
+        layers of a real module need not chain (projections, grouped convolutions); check
+        a plain stack with :meth:`Layer.chain` (the CLI and the service do).
     distribution : str
         "normal", "uniform", "truncated_normal" (cut at +-2 std) or "orthogonal".
     target : str
