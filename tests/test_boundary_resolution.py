@@ -66,6 +66,9 @@ CALLS: dict[str, tuple[str, Callable[[Any], Any]]] = {
     "finite_width": ("act", lambda a: propcalc.finite_width(a, 1.5, 0.1, [64] * 5)),
     "trainability": ("act", lambda a: propcalc.trainability(a, _REPORT, 5)),
     "layer_fluctuations": ("act", lambda a: propcalc.layer_fluctuations(a, [0.5, 1.0], 1.5)),
+    "tangent_kernel": ("act", lambda a: propcalc.tangent_kernel(a, [8, 16, 4], 1.5, 0.1)),
+    "learning_rate_ceiling": ("act", lambda a: propcalc.learning_rate_ceiling(
+        a, [8, 16, 4], 1.5, 0.1, loss="mse", batch_size=4)),
 }
 
 #: public functions whose activation argument is named otherwise, or that take none
