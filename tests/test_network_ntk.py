@@ -118,3 +118,15 @@ def test_network_ceiling_equals_the_plain_stack_ceiling():
     assert net.learning_rate_ceiling == pytest.approx(plain.learning_rate_ceiling, rel=1e-12)
     with pytest.raises(Exception, match="n_classes must be equal to the output width"):
         network_learning_rate_ceiling(desc, n_classes=7, **kw)
+
+
+def test_network_verdict_reads_the_network_ceiling():
+    import propcalc as pc
+    from propcalc.training.network_ntk import network_learning_rate_ceiling
+    result = pc.network_propagation(pc.network(RESIDUAL), q0=1.0, c0=0.3)
+    ceiling = network_learning_rate_ceiling(RESIDUAL, loss="mse", batch_size=16,
+                                            input_correlation=0.3)
+    v = pc.network_verdict(result, learning_rate=ceiling)
+    r = v.reason("learning rate")
+    assert r.passes is not None and r.value == pytest.approx(ceiling.learning_rate_ceiling)
+    assert pc.network_verdict(result).reason("learning rate").passes is None

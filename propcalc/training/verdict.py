@@ -407,7 +407,7 @@ def _assemble(depth: int, reasons: list[Reason]) -> Verdict:
                    "; ".join(parts), tuple(reasons))
 
 
-def network_verdict(result: NetworkPropagation) -> Verdict:
+def network_verdict(result: NetworkPropagation, learning_rate: Any = None) -> Verdict:
     """The same verdict for a network of blocks, from its propagation and summary.
 
     Reasons from :attr:`NetworkPropagation.summary <propcalc.networks.NetworkSummary>`:
@@ -422,6 +422,9 @@ def network_verdict(result: NetworkPropagation) -> Verdict:
     ----------
     result : NetworkPropagation
         From :func:`propcalc.network_propagation`.
+    learning_rate : LearningRateCeiling, optional
+        From :func:`propcalc.training.network_learning_rate_ceiling` (dense, activation and
+        residual blocks): the learning-rate reason then has its number.
 
     Returns
     -------
@@ -465,7 +468,9 @@ def network_verdict(result: NetworkPropagation) -> Verdict:
                       f"{GROWTH_LIMIT:.0f} either way, what 6 xi_c layers allow in the ordered "
                       "phase of a plain stack (Schoenholz et al. 2017)")
     plain = "computed for plain stacks: recommend(act, widths=..., loss=...)"
-    reasons = [corr, grow, _not_computed("learning rate", "ceiling 2 / lambda_max", plain)]
+    reasons = [corr, grow, _learning_rate(learning_rate) if learning_rate is not None else
+               _not_computed("learning rate", "ceiling 2 / lambda_max",
+                             plain + " or network_learning_rate_ceiling(network, loss=...)")]
     reasons += [_not_computed(name, quantity, plain + "; propcalc network --check measures a "
                               "network's finite-width deviations in seeded networks")
                 for name, quantity in (("finite-width spread", "sd of ln q at the top"),
