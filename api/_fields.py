@@ -347,6 +347,9 @@ class ActivationField(fields.Field):
             messages: Any = err.messages
             if shorthand and isinstance(messages, dict) and "name" in messages:
                 messages = messages["name"]  # "tanhh" is wrong at /activation itself
+                if canonical_name(value["name"], self.names) is None and not re.fullmatch(
+                        r"[A-Za-z0-9_\- ]*", value["name"]):  # a formula sent as a name
+                    messages = [f'{m} (a formula goes in {{"formula": ...}})' for m in messages]
             raise ValidationError(messages) from None
         if "spec" in out.get("params", {}):
             raise ValidationError({"params": {"spec": ["is a reserved name; call it otherwise"]}})

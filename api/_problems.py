@@ -314,6 +314,8 @@ def _engine_problem(exc: Exception, ctx: ErrorContext | None) -> Problem:
             _log.warning("engine refused a parameter the request does not have: %s", exc)
         detail = str(exc)
         short = f"must be {exc.constraint}, got {show_value(_jsonish(exc.value))}"
+        if getattr(exc, "hint", ""):  # "did you mean slope?", what to give instead
+            short += f"; {exc.hint}"
         return _invalid([ctx.entry(pointer, short if pointer else detail)])
     if isinstance(exc, FormulaError):
         text = str(exc)

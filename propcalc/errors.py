@@ -48,6 +48,8 @@ class InvalidParameterError(PropcalcError, ValueError):
         The rule that was broken, in words (``"> 0"``, ``"finite"``...).
     value : Any
         The value received.
+    hint : str
+        What to do instead, or the nearest choice ("did you mean normal?"); "" if none.
     """
 
     def __init__(self, field: str, constraint: str, value: Any, hint: str = "") -> None:
@@ -62,6 +64,7 @@ class InvalidParameterError(PropcalcError, ValueError):
             msg = f"{field} must be {constraint}, got {_short_repr(value)}"
         if not hint and isinstance(value, str) and constraint.startswith("one of "):
             hint = _nearest_choice(value, constraint[len("one of "):])
+        self.hint = hint
         if hint:
             msg += f"; {hint}"
         super().__init__(msg)

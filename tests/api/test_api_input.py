@@ -74,3 +74,23 @@ def test_zero_inputs_without_a_bias_are_refused(client) -> None:
                                              "sigma_b2": 0.1, "q_input": 0})
     assert r.status_code == 200
     assert r.get_json()["q_star"] == propcalc.propagation("tanh", 1.5, 0.1, q_input=0.0).q_star
+
+
+def test_engine_hints_reach_the_problem_entries(client) -> None:
+    # the engine's "did you mean slope?" was dropped from the service's entry
+    r = client.post("/v1/propagation", json={"activation": {"name": "leaky_relu",
+                                                            "params": {"slop": 0.1}},
+                                             "sigma_w2": 1.5})
+    [entry] = r.get_json()["errors"]
+    assert entry["pointer"] == "/activation/params/slop"
+    assert entry["detail"].endswith("got 0.1; did you mean slope?")
+
+
+def test_a_formula_sent_as_a_name_is_told_where_formulas_go(client) -> None:
+    r = client.post("/v1/propagation", json={"activation": "x * tanh(x)", "sigma_w2": 1.5})
+    [entry] = r.get_json()["errors"]
+    assert entry["pointer"] == "/activation"
+    assert '(a formula goes in {"formula": ...})' in entry["detail"]
+    r = client.post("/v1/propagation", json={"activation": {"formula": "x * tanh(x)"},
+                                             "sigma_w2": 1.5})
+    assert r.status_code == 200
