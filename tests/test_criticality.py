@@ -800,3 +800,36 @@ def test_gelu_marginal_zero_fixed_point_repels():
     q = 1e-4
     v = float(propcalc.meanfield.maps.variance_map(A("gelu"), q, 4.0, 0.0))
     assert v - q == pytest.approx(6 * q * q / math.pi, rel=1e-3)
+
+
+# ------------------------------------------------------------------------------------------
+# xi_c near the edge of chaos, on the chaotic side (issue 12, section 1)
+# ------------------------------------------------------------------------------------------
+#: (activation, sigma_w2, sigma_b2, 1 - c*, xi_c): the critical point at q* = 1 with sigma_w2
+#: raised by 1e-5 and 1e-7 (relative); mpmath at 40 digits with the inner expectation in closed
+#: form (clip, max(x, -0.5): truncated normal moments, Johnson, Kotz & Balakrishnan 1994,
+#: 10.1; erf: E[erf(m + s z)] = erf(m / sqrt(1 + 2 s^2)), Williams 1997), the fixed point of
+#: 1 - C(1 - e) = e by findroot and chi_c = d(1 - C)/de by a central difference at 40 digits.
+#: Before, xi_c here lost up to all its digits (hard_tanh 22%, max(x, -0.5) 96%).
+NEAR_EDGE = [
+    ("hard_tanh", 1.464809421439279, 0.2440801317356628, "5.442687038793189432911177e-10", "321523.3910957636895172222"),
+    ("hard_tanh", 1.4647949199710215, 0.2440801317356628, "5.442892266973699951976818e-14", "32152270.63007363797637688"),
+    ("max(x, -0.5)", 1.4462245689483866, 0.14302769020668737, "8.905434769711041115439099e-10", "349950.9597288487477982327"),
+    ("max(x, -0.5)", 1.4462102514683288, 0.14302769020668737, "8.905870820182084151676821e-14", "34994780.88935457848853706"),
+    ("erf", 1.7562212447970011, 0.18413967780745688, "0.00001276197340605452886305563", "195895.7585923602197663673"),
+    ("erf", 1.7562038583805417, 0.18413967780745688, "0.0000001276209273766237054424562", "19589264.98973769548212845"),
+]
+
+
+@pytest.mark.parametrize("name,sw,sb,gap,xi_c", NEAR_EDGE)
+def test_xi_c_near_the_edge_keeps_its_digits(name, sw, sb, gap, xi_c):
+    from propcalc.meanfield.core import propagate
+    p = propcalc.propagation(name, sw, sb)
+    gap, xi_c = float(gap), float(xi_c)
+    assert p.gap == pytest.approx(gap, rel=2e-7)
+    err = abs(p.xi_c - xi_c) / xi_c
+    core = propagate(A(name), np.array([sw]), np.array([sb]))
+    # the reported uncertainty covers the error, and is at most 1e-6
+    assert err <= float(core.xi_c_error[0]) <= 1e-6
+    if float(core.xi_c_error[0]) > propcalc.meanfield.report.XI_C_DIGITS_NOTE:
+        assert any("significant digits only" in n for n in p.notes)

@@ -528,3 +528,14 @@ def test_correlation_slope_of_a_jump_near_one(gap):
     assert act.jumps[0] == pytest.approx(0.56, rel=1e-15)
     got = float(maps.correlation_map_slope(act, c, 1.5, 0.1, 1.0))
     assert got == pytest.approx(ref, rel=3e-15)
+
+
+def test_correlation_map_never_leaves_the_unit_interval():
+    # issue 11: no correlation map may leave [-1, 1] (|E[phi(u1) phi(u2)]| <= E[phi^2], Cauchy-
+    # Schwarz); where(x > 0.7, x, 0.2 x) at q = 1e-6 gave C(-1) = -(1 + 2.2e-16) by rounding
+    cs = np.concatenate([np.linspace(-1, 1, 201), 1 - np.geomspace(1e-16, 1e-2, 15),
+                         -1 + np.geomspace(1e-16, 1e-2, 15)])
+    for name in ("where(x > 0.7, x, 0.2*x)", "tanh", "step", "hard_tanh", "x + 1"):
+        for q in (1e-6, 1.0, 30.0):
+            got = maps.correlation_map(A(name), cs, 1.5, 0.0, q)
+            assert np.all(np.abs(got) <= 1.0) and np.all(np.isfinite(got))

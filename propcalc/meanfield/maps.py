@@ -232,8 +232,16 @@ def correlation_map(act: Activation | str, c: Any, sigma_w2: float, sigma_b2: fl
     ca = _c_array(c)
     if (ca.size and qf > 0 and rule == DEFAULT_RULE and act.scale == 1.0 and act.reach == 0.0
             and not act.has_jumps and act.smoothing is None):
-        return (sw * _by_parity(act, ca, lambda cc: _pair_by_series(act, cc, qf, rule)) + sb) / vq
-    return (sw * _by_parity(act, ca, lambda cc: pair_expectation(act, cc, qf, rule)) + sb) / vq
+        return _unit((sw * _by_parity(act, ca, lambda cc: _pair_by_series(act, cc, qf, rule))
+                      + sb) / vq)
+    return _unit((sw * _by_parity(act, ca, lambda cc: pair_expectation(act, cc, qf, rule)) + sb)
+                 / vq)
+
+
+def _unit(values: Array) -> Array:
+    """C(c) within [-1, 1], where it lies exactly (|E[phi(u1) phi(u2)]| <= E[phi^2] by
+    Cauchy-Schwarz and sigma_b2 >= 0): only rounding can carry it past (by ~1e-16)."""
+    return np.clip(values, -1.0, 1.0)
 
 
 def correlation_map_and_slope(act: Activation, c: Any, sigma_w2: float, sigma_b2: float,
@@ -257,7 +265,7 @@ def correlation_map_and_slope(act: Activation, c: Any, sigma_w2: float, sigma_b2
     e_val, e_der = _pair_any(act, ("value", "derivative"), ca, qf, rule,
                              f"{act.label} at (u1, u2)")
     e_der = e_der + _jump_terms(act, ca, qf, rule)
-    return (sw * e_val + sb) / vq, sw * qf * e_der / vq
+    return _unit((sw * e_val + sb) / vq), sw * qf * e_der / vq
 
 
 def correlation_map_slope(act: Activation | str, c: Any, sigma_w2: float, sigma_b2: float,

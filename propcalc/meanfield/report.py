@@ -330,7 +330,7 @@ def _report(act: Activation, core: CoreResult, i: int, q_input: float, depth: in
         digits = max(0, int(math.floor(-math.log10(err))))
         notes.append(f"xi_c = {xi_c:.{max(digits, 1)}g} is known to about {digits} significant "
                      f"digits only: chi_c = 1 - {1.0 - float(core.chi_c[i]):.3g} sits near the "
-                     "rounding floor of double precision (within about 1e-9 of the edge of "
+                     "accuracy floor of the integrals and of double precision (close to the edge of "
                      "chaos, where xi_c ~ 1 / |chi_1 - 1|)")
     if phase != Phase.EDGE_OF_CHAOS or math.isfinite(xi_c):
         notes.append(f"trainable depth: {TRAINABLE_RULE}")
