@@ -270,7 +270,8 @@ def test_gelu_unbounded_boundary_is_the_computed_line():
     low = pts[pts[:, 1] < 0.1]
     assert low.shape[0] > 10
     # bisection leaves half an interval: a cell / 2^(BISECTION_STEPS + 1) along sigma_w2
-    np.testing.assert_allclose(low[:, 1], q_r - low[:, 0], atol=(sw[1] - sw[0]) / 2 ** BISECTION_STEPS)
+    np.testing.assert_allclose(low[:, 1], q_r - low[:, 0],
+                               atol=(sw[1] - sw[0]) / 2 ** BISECTION_STEPS)
 
 
 def test_gelu_edge_line_is_solid_only_where_it_is_the_edge():
@@ -404,3 +405,15 @@ def test_depth_scales_names_a_curve_below_its_axis():
     fig = plot_depth_scales(propcalc.activation("step"), sigma_b2=0.05, n_points=9)
     assert any("= 0 here (settled in one layer), below the axis" in t
                for t in legend_texts(fig))
+
+
+def test_wide_windows_are_sampled_and_drawn_on_a_log_axis():
+    # [1e-6, 1e4]: on a linear axis everything below sigma_w2 = 100 fell into one pixel column
+    ht = propcalc.activation("hard_tanh")
+    fig = plot_phase_diagram(ht, sigma_w2_range=(1e-6, 1e4), sigma_b2_range=(0, 1e4),
+                             n_grid=(9, 7))
+    assert fig.axes[0].get_xscale() == "log" and fig.axes[0].get_yscale() == "linear"
+    fig = plot_depth_scales(ht, sigma_b2=1e4, sigma_w2_range=(1e-6, 1e4), n_points=11)
+    assert fig.axes[0].get_xscale() == "log"
+    # the default window stays linear
+    assert plot_depth_scales(TANH, sigma_b2=0.05, n_points=9).axes[0].get_xscale() == "linear"

@@ -25,8 +25,9 @@ from ..meanfield.fixed_points import solve_variance
 from ..meanfield.sweep import sweep
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..vocabulary import VarianceStatus
-from .figure_tools import (DEPTH, EDGE, UNBOUNDED, PointLike, check_range, finish, fit_title,
-                           fmt, legend_below, mark_user, new_figure, resolve_point, wrap, xi_c_words)
+from .figure_tools import (DEPTH, EDGE, UNBOUNDED, PointLike, axis_points, check_range, finish,
+                           fit_title, fmt, legend_below, mark_user, new_figure, resolve_point, wide,
+                           wrap, xi_c_words)
 from .phase_regions import BISECTION_STEPS, on_reached_edge
 
 __all__ = ["plot_depth_scales"]
@@ -141,7 +142,7 @@ def plot_depth_scales(act: Activation, point: PointLike = None, *, sigma_b2: flo
             hi = max(hi, 1.15 * max(extra))
     else:
         lo, hi = check_range("sigma_w2_range", sigma_w2_range, True)
-    regular = np.linspace(lo, hi, n)
+    regular = axis_points(lo, hi, n)
     offsets = 10.0 ** -np.arange(1.0, 8.0)
     near = [e * (1 + s * offsets) for e in reached for s in (-1.0, 1.0)]
     bands, inside = _bands(act, regular, sb, qi, rule)
@@ -197,6 +198,8 @@ def plot_depth_scales(act: Activation, point: PointLike = None, *, sigma_b2: flo
                                              f"{xi_c_words(prop, 4)}", 48))
     ax.set_yscale("log")
     ax.set_ylim(bottom, top)
+    if wide(lo, hi):
+        ax.set_xscale("log")
     ax.set_xlim(lo, hi)
     ax.set_xlabel("sigma_w2  (weight variance x fan-in)")
     ax.set_ylabel("depth scale (layers)")

@@ -37,7 +37,8 @@ from ..numerics.quadrature import QuadratureRule
 
 __all__ = ["FORMATS", "USER_POINT_GID", "PointLike", "save_figure", "resolve_point", "fmt",
            "xi_c_words", "new_figure", "finish", "fit_title", "check_range", "grid_shape",
-           "mark_user", "wrap", "place_labels", "legend_below"]
+           "mark_user", "wrap", "place_labels", "legend_below", "wide", "axis_points",
+           "WIDE_RATIO"]
 
 #: Formats :func:`save_figure` writes.
 FORMATS = ("png", "svg")
@@ -63,6 +64,10 @@ _LEGEND_CHARS_PER_INCH = 14.0
 #: _LABEL_MIN_LENGTH inches inside that margin gets none.
 _LABEL_MARGIN = 0.35
 _LABEL_MIN_LENGTH = 0.8
+#: A positive sigma_w2 range at least this wide (hi / lo) is sampled geometrically and drawn
+#: on a log axis: on a linear one the window [1e-6, 1e4] squeezed everything below 100 into
+#: one pixel column.
+WIDE_RATIO = 100.0
 #: A title is cut after this many lines (formulas may be 500 characters long).
 _TITLE_LINES = 3
 
@@ -186,6 +191,16 @@ def legend_below(fig: Figure, handles: Sequence[Any] | None = None) -> None:
                frameon=False)
 
 
+def wide(lo: float, hi: float) -> bool:
+    """Whether a positive range spans enough decades (WIDE_RATIO) for a log axis."""
+    return lo > 0.0 and hi / lo >= WIDE_RATIO
+
+
+def axis_points(lo: float, hi: float, n: int) -> np.ndarray:
+    """n samples of [lo, hi]: evenly spaced, or geometrically for a wide positive range."""
+    return np.geomspace(lo, hi, n) if wide(lo, hi) else np.linspace(lo, hi, n)
+
+
 def check_range(name: str, value: Any, positive: bool) -> tuple[float, float]:
     """A (low, high) pair with 0 <= low (0 < low if positive) < high."""
     try:
@@ -245,10 +260,14 @@ def place_labels(ax: Any, contour_sets: Sequence[tuple[Any, Any, float]],
     wi = max(pos.width * fig.get_figwidth(), 1e-3)
     hi = max(pos.height * fig.get_figheight(), 1e-3)
 
-    def inches(xy: np.ndarray) -> np.ndarray:
-        return np.column_stack([(xy[:, 0] - x0) / (x1 - x0) * wi, (xy[:, 1] - y0) / (y1 - y0) * hi])
+    log_x = ax.get_xscale() == "log"
 
-    placed = [inches(np.array([p])) [0] for p in avoid]
+    def inches(xy: np.ndarray) -> np.ndarray:
+        x = xy[:, 0]
+        fx = np.log(x / x0) / np.log(x1 / x0) if log_x else (x - x0) / (x1 - x0)
+        return np.column_stack([fx * wi, (xy[:, 1] - y0) / (y1 - y0) * hi])
+
+    placed = [inches(np.array([p]))[0] for p in avoid]
     labelled: list[float] = []
     for cs, form, size in contour_sets:
         positions, levels = [], []

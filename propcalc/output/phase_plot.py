@@ -30,9 +30,10 @@ from ..meanfield.maps import variance_map_slope
 from ..meanfield.sweep import SweepResult, sweep
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..vocabulary import Phase
-from .figure_tools import (CHAOTIC, DEPTH, EDGE, ORDERED, UNBOUNDED, USER, XI, PointLike, check_range,
-                           finish, fit_title, fmt, grid_shape, legend_below, mark_user, new_figure,
-                           place_labels, resolve_point, wrap, xi_c_words)
+from .figure_tools import (CHAOTIC, DEPTH, EDGE, ORDERED, UNBOUNDED, USER, XI, PointLike,
+                           axis_points, check_range, finish, fit_title, fmt, grid_shape,
+                           legend_below, mark_user, new_figure, place_labels, resolve_point, wide,
+                           wrap, xi_c_words)
 from .phase_regions import CHAOTIC as CHAOTIC_CLASS
 from .phase_regions import locate_regions, on_reached_edge
 
@@ -135,7 +136,7 @@ def plot_phase_diagram(act: Activation, point: PointLike = None, *,
             if sigma_b2_range is None:
                 sb_hi = max(sb_hi, 1.15 * prop.sigma_b2)
         nw, nb = grid_shape(n_grid)
-        result = sweep(act, np.linspace(sw_lo, sw_hi, nw), np.linspace(sb_lo, sb_hi, nb),
+        result = sweep(act, axis_points(sw_lo, sw_hi, nw), np.linspace(sb_lo, sb_hi, nb),
                        q_input=q_input, executor=executor, progress=progress, rule=rule,
                        chunk_size=chunk_size)
     if act.label not in result.activations:
@@ -150,6 +151,9 @@ def plot_phase_diagram(act: Activation, point: PointLike = None, *,
 
     fig = new_figure()
     ax = fig.add_subplot()
+    if wide(float(sw[0]), float(sw[-1])) and np.allclose(
+            sw, np.geomspace(float(sw[0]), float(sw[-1]), sw.size), rtol=1e-9):
+        ax.set_xscale("log")  # a geometric axis (a wide window) drawn evenly
     ax.set_xlim(float(sw[0]), float(sw[-1]))
     ax.set_ylim(float(sb[0]), float(sb[-1]))
     handles = _regions(ax, sw, sb, regions, result.phase[a])
@@ -210,50 +214,92 @@ def _regions(ax: Any, sw: np.ndarray, sb: np.ndarray, regions: Any, phase: np.nd
 def _contours(ax: Any, sw: np.ndarray, sb: np.ndarray, xi_c: np.ndarray,
               xi_c_levels: Sequence[float], depth_levels: Sequence[float], depth: int | None,
               handles: list[Any]) -> list[tuple[Any, Any, float]]:
-    """Contours of xi_c and 6 xi_c (labels are placed once the layout is known)."""
-    # xi_c is inf on the edge (drawn as a large number) and NaN where undefined
-    xi_plot = np.ma.masked_invalid(np.where(np.isinf(xi_c), 1e12, xi_c))
-    td = np.asarray(6.0 * xi_plot.filled(np.nan))
+    """Contours of xi_c and 6 xi_c (labels are placed once the layout is known).
+
+    The lines are drawn as contours of the rate 1 / xi_c = -ln C'(c*) (Schoenholz
+    et al. 2017, eq. 9), which goes to 0 smoothly at the edge of chaos, where
+    xi_c itself diverges: interpolating xi_c between grid nodes drew diamonds
+    around the nodes beside the edge; the rate interpolates like a distance.
+    """
+    with np.errstate(divide="ignore"):
+        rate = np.where(np.isinf(xi_c), 0.0, 1.0 / np.where(xi_c > 0, xi_c, np.nan))
+    rate_plot = np.ma.masked_invalid(rate)
+    values = rate_plot.filled(np.nan)
     out: list[tuple[Any, Any, float]] = []
+
+    def draw(xi_levels: Sequence[float], factor: float, **kw: Any) -> tuple[Any, list[float]]:
+        # xi = v  <=>  rate = factor / v  (factor 6 for the trainable depth 6 xi_c = L)
+        shown = [v for v in sorted(set(float(x) for x in xi_levels)) if v > 0
+                 and _crosses(factor / v, values)]
+        if not shown:
+            return None, []
+        cs = ax.contour(sw, sb, rate_plot, levels=sorted(factor / v for v in shown), **kw)
+        _drop_specks(cs, sw, sb)
+        return cs, shown
+
     if depth is not None:
         d = check_int("depth", depth, 1)
-        levels = _levels_within([float(d)], td)
-        if levels:
-            cs = ax.contour(sw, sb, 6.0 * xi_plot, levels=levels, colors=DEPTH, linewidths=2.2,
-                            zorder=4)
-            out.append((cs, lambda v: f"L={v:g}", 9.0))
+        cs, shown = draw([float(d)], 6.0, colors=DEPTH, linewidths=2.2, zorder=4)
+        if shown:
+            out.append((cs, lambda u: f"L={6.0 / u:.4g}", 9.0))
             handles.append(Line2D([], [], color=DEPTH, linewidth=2.2,
                                   label=f"6 xi_c = your depth {d}"))
-    levels = _levels_within(sorted(set(xi_c_levels)), np.asarray(xi_plot.filled(np.nan)))
-    if levels:
-        cs = ax.contour(sw, sb, xi_plot, levels=levels, colors=XI, linewidths=0.8, zorder=3)
-        out.append((cs, lambda v: f"{v:g}", 8.0))
+    cs, shown = draw(xi_c_levels, 1.0, colors=XI, linewidths=0.8, zorder=3)
+    if shown:
+        out.append((cs, lambda u: f"{1.0 / u:.4g}", 8.0))
         handles.append(Line2D([], [], color=XI, linewidth=0.8,
-                              label="xi_c = " + ", ".join(f"{v:g}" for v in levels)))
+                              label="xi_c = " + ", ".join(f"{v:g}" for v in shown)))
     else:
         finite = xi_c[np.isfinite(xi_c)]
         if finite.size:
             handles.append(Line2D([], [], linestyle="none",
                                   label=f"xi_c from {fmt(float(finite.min()), 2)} to "
                                         f"{fmt(float(finite.max()), 2)} here: no level crossed"))
-    levels = _levels_within([v for v in sorted(set(depth_levels)) if v != depth], td)
-    if levels:
-        cs = ax.contour(sw, sb, 6.0 * xi_plot, levels=levels, colors=DEPTH, linewidths=1.1,
-                        linestyles="dashed", zorder=3)
-        out.append((cs, lambda v: f"L={v:g}", 8.0))
+    cs, shown = draw([v for v in depth_levels if v != depth], 6.0, colors=DEPTH,
+                     linewidths=1.1, linestyles="dashed", zorder=3)
+    if shown:
+        out.append((cs, lambda u: f"L={6.0 / u:.4g}", 8.0))
         handles.append(Line2D([], [], color=DEPTH, linewidth=1.1, linestyle="dashed",
-                              label="trainable depth 6 xi_c = " + ", ".join(f"{v:g}" for v in levels)
+                              label="trainable depth 6 xi_c = " + ", ".join(f"{v:g}" for v in shown)
                               + " (empirical)"))
     return out
 
 
-def _levels_within(levels: Sequence[float], values: np.ndarray) -> list[float]:
-    """The contour levels that the data cross (matplotlib warns about the others)."""
+def _crosses(level: float, values: np.ndarray) -> bool:
+    """Whether the data cross a contour level (matplotlib warns about the others)."""
     finite = values[np.isfinite(values)]
-    if finite.size == 0:
-        return []
-    lo, hi = float(finite.min()), float(finite.max())
-    return [float(v) for v in levels if lo < v < hi]
+    return bool(finite.size) and float(finite.min()) < level < float(finite.max())
+
+
+def _drop_specks(cs: Any, sw: np.ndarray, sb: np.ndarray) -> None:
+    """Remove closed contour loops within two grid cells (one node's value, not a shape).
+
+    Near the edge of chaos xi_c diverges faster than the grid resolves: a node
+    beside the edge holds a large xi_c between nodes with small ones, and the
+    contours of every level between draw a diamond around it. A loop that
+    small says nothing the grid can back, so it is not drawn.
+    """
+    from matplotlib.path import Path
+
+    iw, ib = np.arange(sw.size, dtype=float), np.arange(sb.size, dtype=float)
+    paths = []
+    for path in cs.get_paths():
+        keep = []
+        for seg in path.to_polygons(closed_only=False):
+            if len(seg) < 2:
+                continue
+            closed = np.allclose(seg[0], seg[-1])
+            gx, gy = np.interp(seg[:, 0], sw, iw), np.interp(seg[:, 1], sb, ib)
+            if closed and np.ptp(gx) <= 2.0 and np.ptp(gy) <= 2.0:
+                continue
+            keep.append(seg)
+        if keep:
+            verts = np.concatenate(keep)
+            codes = np.concatenate([[Path.MOVETO] + [Path.LINETO] * (len(k) - 1) for k in keep])
+            paths.append(Path(verts, codes.astype(np.uint8)))
+        else:
+            paths.append(Path(np.zeros((0, 2))))
+    cs.set_paths(paths)
 
 
 def _edge(ax: Any, act: Activation, q_input: float, rule: QuadratureRule) -> list[Any]:

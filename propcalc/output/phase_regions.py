@@ -127,7 +127,8 @@ def _crossings(act: Activation, sw: Array, sb: Array, classes: Array, q_input: f
     nw, nb = classes.shape
     edges = []  # (kind, i, j): "h" joins (i, j)-(i+1, j), "v" joins (i, j)-(i, j+1)
     ends = []
-    for kind, a, b in (("h", classes[:-1, :], classes[1:, :]), ("v", classes[:, :-1], classes[:, 1:])):
+    for kind, a, b in (("h", classes[:-1, :], classes[1:, :]),
+                       ("v", classes[:, :-1], classes[:, 1:])):
         ii, jj = np.nonzero(a != b)
         for i, j in zip(ii.tolist(), jj.tolist()):
             edges.append((kind, i, j))
