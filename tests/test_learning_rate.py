@@ -171,3 +171,16 @@ def test_apply_plan_sets_the_readout_as_planned():
 def test_bad_batches_are_refused_with_the_field_named(kwargs, match):
     with pytest.raises(PropcalcError, match=match):
         learning_rate_ceiling("tanh", WIDTHS, 1.5, 0.1, loss="mse", batch_size=4, **kwargs)
+
+
+def test_dense_layers_give_the_widths_and_convolutions_are_refused():
+    from propcalc.init.layers import Layer
+    from propcalc.training import UnsupportedKernelError
+    kw = dict(loss="cross_entropy", n_classes=10, batch_size=16)
+    by_widths = propcalc.recommend("tanh", widths=WIDTHS, **kw)
+    layers = [Layer.dense(a, b) for a, b in zip(WIDTHS[:-1], WIDTHS[1:])]
+    by_layers = propcalc.recommend("tanh", layers=layers, **kw)
+    assert by_layers.learning_rate_ceiling == pytest.approx(by_widths.learning_rate_ceiling,
+                                                            rel=1e-14)
+    with pytest.raises(UnsupportedKernelError, match=r"layers\[0\] is a convolution"):
+        propcalc.recommend("tanh", layers=[Layer.conv(3, 8, 3), Layer.dense(72, 10)], **kw)
