@@ -74,6 +74,10 @@ def network_components() -> dict[str, dict[str, Any]]:
             return [rewrite(v) for v in node]
         return node
 
+    # the number of blocks is bounded by the body size (MAX_CONTENT_LENGTH, 413) long before
+    # MAX_DESCRIBED_BLOCKS: the limit stays in the description text, not in maxItems (a list
+    # just over it cannot be sent as a body the service reads)
+    defs["blocks"].pop("maxItems", None)
     out = {DESCRIPTION_COMPONENT: rewrite(doc)}
     for kind, body in defs.items():
         out[_component(kind)] = rewrite(body)

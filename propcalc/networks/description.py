@@ -410,7 +410,7 @@ def network(description: Any) -> Network:
         raise NetworkDescriptionError("/blocks", "present (a non-empty list of blocks)", None)
     blocks = walk.blocks(description["blocks"], "/blocks", 0)
     input_width = None
-    if description.get("input_width") is not None:
+    if "input_width" in description:  # null is refused, as the JSON Schema says
         input_width = walk.integer(NETWORK_FIELDS[1], description["input_width"], "/input_width")
     net = Network(blocks, input_width)
     if net.n_positions > MAX_POSITIONS:

@@ -151,6 +151,8 @@ def test_non_gaussian_positions_come_from_the_simulation(client, strict_json):
      "must be a built-in activation or a"),
     ({"blocks": []}, "/network/blocks", "non-empty"),
     ({"layers": []}, "/network/layers", "top-level field"),
+    # null is not an absent width: the description's JSON Schema says integer (found by fuzzing)
+    ({"blocks": [dense(2.0)], "input_width": None}, "/network/input_width", "got None"),
 ])
 def test_bad_blocks_name_their_json_pointer(client, description, pointer, words):
     body = problem(client.post("/v1/network", json={"network": description}), 422, INVALID)
