@@ -221,3 +221,16 @@ def test_training_options_without_a_loss_are_refused(kwargs: dict, field: str) -
                                                              r"is given \(give loss=\)"):
         propcalc.recommend("tanh", widths=[4, 4], **kwargs)
     assert propcalc.recommend("tanh", widths=[4, 4], momentum=0.0, scale_output=True).loss is None
+
+
+@pytest.mark.parametrize("argv, start", [
+    # the engine's field names (sigma_w2, keep_rate) are spelled otherwise on the command line
+    (["report", "tanh", "-w", "-1"], "propcalc: error: --sigma-w2: sigma_w2 must be > 0, got -1.0"),
+    (["dropout", "tanh", "-w", "1", "--keep-rate", "0"],
+     "propcalc: error: --keep-rate: keep_rate must be in (0, 1]"),
+    (["report", "tanh", "-w", "1", "--depth", "0"],  # same spelling: no prefix
+     "propcalc: error: depth must be an integer >= 1, got 0"),
+])
+def test_engine_refusals_name_the_option_as_typed(argv: list[str], start: str) -> None:
+    code, _, err = run(*argv)
+    assert code == 2 and err.startswith(start)

@@ -94,6 +94,8 @@ def main(argv: Sequence[str] | None = None, out: TextIO | None = None,
     """Run the command line; returns the exit status."""
     out = sys.stdout if out is None else out
     err = sys.stderr if err is None else err
+    parser: Any = None
+    args: Any = None
     try:
         parser = build_parser()
         try:
@@ -116,5 +118,24 @@ def main(argv: Sequence[str] | None = None, out: TextIO | None = None,
         err.write(f"propcalc: computation failed: {exc}\n")
         return EXIT_COMPUTATION
     except PropcalcError as exc:  # bad parameters, unknown activations, refused formulas
-        err.write(f"propcalc: error: {exc}\n")
+        option = _option_of(exc, parser, args)
+        err.write(f"propcalc: error: {option}{exc}\n")
         return EXIT_USAGE
+
+
+def _option_of(exc: Exception, parser: Any, args: Any) -> str:
+    """``"--sigma-b2: "`` when the engine's field (``sigma_b2``) is an option spelled otherwise
+    on the command line, so the message names what the user typed; else ``""``."""
+    field = getattr(exc, "field", None)
+    command = getattr(args, "command", None)
+    if not isinstance(field, str) or parser is None or command is None:
+        return ""
+    sub = next((a for a in parser._actions if isinstance(a, argparse._SubParsersAction)), None)
+    chosen = sub.choices.get(command) if sub is not None else None
+    if chosen is None:
+        return ""
+    for action in chosen._actions:
+        if action.dest == field and action.option_strings:
+            typed = max(action.option_strings, key=len)  # the long form, e.g. --sigma-w2
+            return "" if typed == f"--{field}" else f"{typed}: "
+    return ""
