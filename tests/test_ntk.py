@@ -71,3 +71,28 @@ def test_bad_input_names_the_field(kwargs, match):
 def test_jumping_activation_is_unsupported():
     with pytest.raises(UnsupportedKernelError, match="infinite"):
         tangent_kernel("step", [3, 4, 2], 1.0)
+
+
+@pytest.mark.parametrize("name", ["gelu", "relu", "tanh", "swish"])
+@pytest.mark.parametrize("q", [0.3, 1.0, 14.1, 200.0])
+def test_pair_moments_are_the_engine_pair_expectations(name, q):
+    # the two moments against the engine's separate pair expectations (each checked against
+    # mpmath in tests/test_maps.py), at variances where E[phi phi] exceeds 1
+    import propcalc
+    from propcalc.meanfield.maps import derivative_pair_expectation, pair_expectation
+    from propcalc.training.ntk import pair_moments
+    act = propcalc.activation(name)
+    c = np.array([1.0, 0.9, 0.5, 0.0, -0.4])
+    e_val, e_der = pair_moments(act, c, q)
+    np.testing.assert_allclose(e_val, pair_expectation(act, c, q), rtol=1e-10, atol=1e-14 * q)
+    np.testing.assert_allclose(e_der, derivative_pair_expectation(act, c, q), rtol=1e-10,
+                               atol=1e-14)
+
+
+def test_relu_closed_form_at_a_large_variance():
+    ws = [10, 50, 60, 3]
+    c0 = np.array([1.0, 0.3])
+    k = tangent_kernel("relu", ws, 2.0, 0.5, 12.0, c0[1:])
+    ref = _arccos_relu(ws, 2.0, 0.5, 12.0, c0)
+    np.testing.assert_allclose(k.output_diagonal, ref[0], rtol=1e-11)
+    np.testing.assert_allclose(k.output_off_diagonal, ref[1:], rtol=1e-9)

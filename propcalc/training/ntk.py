@@ -42,7 +42,8 @@ import numpy as np
 from ..activations.base import Activation
 from ..activations.resolver import resolve
 from ..errors import InvalidParameterError, PropcalcError, check_int, check_nonnegative, check_positive
-from ..meanfield.maps import correlation_map_and_slope, variance_map
+from ..meanfield.maps import (correlation_map_and_slope, derivative_pair_expectation,
+                              second_moment, variance_map)
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..results import Result
 
@@ -126,16 +127,21 @@ def pair_moments(act: Activation, c: Any, q: float,
     """``E[phi(u1) phi(u2)]`` and ``E[phi'(u1) phi'(u2)]`` at variance q and correlations c.
 
     The engine's :func:`~propcalc.meanfield.maps.correlation_map_and_slope` with
-    ``sigma_w2 = 1``, ``sigma_b2 = 0`` and ``V(q)`` set to 1 returns exactly these two
-    (``C = E[phi phi]`` and ``C' = q E[phi' phi']``, Price's theorem), on shared nodes.
+    ``sigma_w2 = 1``, ``sigma_b2 = 0`` is ``C = E[phi phi] / E[phi^2]`` and
+    ``C' = q E[phi' phi'] / E[phi^2]`` (Price's theorem), on shared nodes; multiplying back by
+    ``E[phi^2]`` gives the two moments.
     """
     ca = np.asarray(c, dtype=float)
     if q == 0.0:
         d0 = float(np.asarray(act.derivative(np.array([0.0])))[0])
         v0 = float(np.asarray(act.value(np.array([0.0])))[0])
         return np.full_like(ca, v0 * v0), np.full_like(ca, d0 * d0)
-    e_val, slope = correlation_map_and_slope(act, ca, 1.0, 0.0, q, rule, v_q=1.0)
-    return np.asarray(e_val, dtype=float), np.asarray(slope, dtype=float) / q
+    m2 = float(second_moment(act, q, rule))
+    if m2 == 0.0:
+        return np.zeros_like(ca), np.asarray(derivative_pair_expectation(act, ca, q, rule),
+                                             dtype=float)
+    corr, slope = correlation_map_and_slope(act, ca, 1.0, 0.0, q, rule, v_q=m2)
+    return np.asarray(corr, dtype=float) * m2, np.asarray(slope, dtype=float) * m2 / q
 
 
 def _correlations(c0: float | Sequence[float] | np.ndarray) -> np.ndarray:
