@@ -234,3 +234,17 @@ def test_training_options_without_a_loss_are_refused(kwargs: dict, field: str) -
 def test_engine_refusals_name_the_option_as_typed(argv: list[str], start: str) -> None:
     code, _, err = run(*argv)
     assert code == 2 and err.startswith(start)
+
+
+@pytest.mark.parametrize("typed, name", [("Gelu", "gelu"), ("leaky-relu", "leaky_relu(slope=0.01)"),
+                                         ("Hard-Tanh", "hard_tanh")])
+def test_show_reads_builtin_names_in_any_spelling(typed: str, name: str) -> None:
+    # 'show Gelu' answered "did you mean elu?", 'show leaky-relu' a formula error about 'leaky'
+    code, out, err = run("show", typed)
+    assert code == 0 and err == ""
+    assert out.splitlines()[0].split() == ["activation", name]
+
+
+def test_show_suggests_the_nearest_builtin() -> None:
+    code, _, err = run("show", "gleu")
+    assert code == 2 and "unknown activation 'gleu' (did you mean gelu?)" in err
