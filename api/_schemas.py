@@ -297,8 +297,13 @@ def build_schemas(limits: Limits) -> Schemas:
             "edge (edge of chaos), variance (sigma_b2 = 0, variance preserving), bias (edge of "
             "chaos at the given sigma_b2), auto (bias if sigma_b2 is given, else edge, else "
             "variance)"))
-        sigma_b2 = sigma_b2_field(load_default=None, allow_none=True)
-        q_star = q_star_field(load_default=None, allow_none=True)
+        sigma_b2 = sigma_b2_field(
+            "the bias variance to fix (target bias, or auto); refused with target variance or "
+            "edge, which set it", load_default=None, allow_none=True)
+        q_star = q_star_field(
+            "the preferred q* on the edge of chaos (target edge, or auto without sigma_b2); "
+            "refused with target variance or bias, which set it", load_default=None,
+            allow_none=True)
         q_input = q_input_field(PLAN_Q_INPUT_MIN, load_default=1.0)
         # training (issue 15): the loss sets the readout's scale and the learning-rate ceiling
         loss = Choice(["cross_entropy", "mse"], load_default=None, allow_none=True, metadata=_d(
