@@ -539,3 +539,16 @@ def test_correlation_map_never_leaves_the_unit_interval():
         for q in (1e-6, 1.0, 30.0):
             got = maps.correlation_map(A(name), cs, 1.5, 0.0, q)
             assert np.all(np.abs(got) <= 1.0) and np.all(np.isfinite(got))
+
+
+@pytest.mark.parametrize("formula", ["where(sin(x/100) > 0, x, 0.5*x)",
+                                     "where(x > 1, 1, where(x < -1, -1, 0))", "step(x)"])
+def test_slope_at_one_of_a_jumping_phi_is_infinite_never_nan(formula):
+    # Price's theorem with phi' holding Dirac masses J_k delta(x - b_k) (Price 1958): at c = 1 the
+    # masses meet only on the diagonal b_k = b_l, where the density is infinite; pairs of jumps
+    # at different places contribute 0 there. Jumps of opposite signs once gave inf - inf = NaN
+    # (issue 11, the 500s of /v1/maps/correlation with_slope).
+    act = propcalc.activation(formula)
+    slope = maps.correlation_map_slope(act, [1.0, 1.0 - 1e-6, 0.5], 1.5, 0.0, q=1.0)
+    assert slope[0] == math.inf
+    assert np.all(np.isfinite(slope[1:])) and np.all(slope[1:] > 0)

@@ -254,7 +254,10 @@ def _jump_terms(act: Activation, ca: Array, qf: float, rule: QuadratureRule,
                 # b^2 - 2 c b b2 + b2^2 = (b - b2)^2 + 2 b b2 (1 - c): no cancellation near c = 1
                 quad_form = ((b - b2) ** 2 + 2 * b * b2 * one_minus_c) / (2 * qf * s2)
                 dens = np.exp(-quad_form) / (2 * math.pi * qf * np.sqrt(s2))
-                out = out + j * j2 * np.where(s2 > 0, dens, math.inf)
+                # at c = 1 the pair sits on the diagonal u1 = u2: the two masses meet (an
+                # infinite density) only when b = b2; apart, their joint density is 0
+                at_one = math.inf if b == b2 else 0.0
+                out = out + j * j2 * np.where(s2 > 0, dens, at_one)
     return out
 
 
