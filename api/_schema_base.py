@@ -10,6 +10,7 @@ from typing import Any
 
 from marshmallow import RAISE, Schema, ValidationError, fields
 
+from propcalc import DEFAULT_EDGE_Q_STARS as _ENGINE_EDGE_Q_STARS
 from propcalc import Distribution, Target, VarianceStatus
 from propcalc.domains import DOMAINS
 
@@ -38,8 +39,8 @@ __all__ = ["StrictSchema", "DISTRIBUTIONS", "TARGETS", "DEFAULT_EDGE_Q_STARS",
 DISTRIBUTIONS = tuple(d.value for d in Distribution)
 #: plan targets (the engine's names)
 TARGETS = tuple(t.value for t in Target)
-#: q* values of the edge-of-chaos line when none are given (the CLI's defaults)
-DEFAULT_EDGE_Q_STARS = (0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0)
+#: q* values of the edge-of-chaos line when none are given (the engine's, as the CLI's)
+DEFAULT_EDGE_Q_STARS = _ENGINE_EDGE_Q_STARS
 #: names of activation parameters
 PARAM_NAME_PATTERN = r"[A-Za-z_][A-Za-z0-9_]{0,31}"
 #: largest layer width / channel count

@@ -29,8 +29,7 @@ from propcalc import (
     dropout_sweep,
     dynamical_isometry,
     edge_of_chaos,
-    edge_of_chaos_at_bias,
-    edge_of_chaos_line,
+    edge_of_chaos_points,
     gains,
     initial_loss,
     jacobian_spectrum,
@@ -157,7 +156,7 @@ class Computations(NetworkComputations):
         if req.get("sigma_b2") is not None:
             self._budget(spec, COSTS["edge_at_bias"], "solving the edge of chaos at fixed sigma_b2")
             act = self.activation(spec)
-            points = edge_of_chaos_at_bias(act, req["sigma_b2"])
+            points = edge_of_chaos_points(act, sigma_b2=req["sigma_b2"])
             mode, sb = "sigma_b2", req["sigma_b2"]
         else:
             if req.get("q_star") is not None:
@@ -173,7 +172,7 @@ class Computations(NetworkComputations):
                          f"an edge-of-chaos line of {len(qs)} points", pointer,
                          f"send at most {fits} q* values")
             act = self.activation(spec)
-            points = edge_of_chaos_line(act, qs)
+            points = edge_of_chaos_points(act, q_star=qs)
             mode, sb = "q_star", None
         return jsonable({"activation": act.label, "mode": mode, "sigma_b2": sb,
                          "points": [p.to_dict() for p in points]})

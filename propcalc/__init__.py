@@ -24,7 +24,8 @@ from __future__ import annotations
 from . import domains
 from .activations import (Activation, ActivationProperties, builtin_names, canonical_name,
                           nearest_name, resolve)
-from .meanfield.edge import CriticalPoint, edge_of_chaos, edge_of_chaos_at_bias, edge_of_chaos_line
+from .meanfield.edge import (DEFAULT_EDGE_Q_STARS, CriticalPoint, edge_of_chaos,
+                             edge_of_chaos_at_bias, edge_of_chaos_line, edge_of_chaos_points)
 from .meanfield.report import (
     FixedPoint,
     Propagation,
@@ -217,6 +218,8 @@ __all__ = [
     "edge_of_chaos",
     "edge_of_chaos_at_bias",
     "edge_of_chaos_line",
+    "edge_of_chaos_points",
+    "DEFAULT_EDGE_Q_STARS",
     "formula_activation",
     "gains",
     "gaussian_expectation",

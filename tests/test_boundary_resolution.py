@@ -42,6 +42,7 @@ CALLS: dict[str, tuple[str, Callable[[Any], Any]]] = {
     "edge_of_chaos": ("act", lambda a: propcalc.edge_of_chaos(a)),
     "edge_of_chaos_at_bias": ("act", lambda a: propcalc.edge_of_chaos_at_bias(a, 0.05)),
     "edge_of_chaos_line": ("act", lambda a: propcalc.edge_of_chaos_line(a, [0.5, 1.0])),
+    "edge_of_chaos_points": ("act", lambda a: propcalc.edge_of_chaos_points(a, q_star=[1.0])),
     "gains": ("act", lambda a: propcalc.gains(a)),
     "recommend": ("act", lambda a: propcalc.recommend(a, 5)),
     "sweep": ("activations", lambda a: propcalc.sweep(a, [1.5], [0.1]).to_dict()),

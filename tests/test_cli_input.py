@@ -110,10 +110,22 @@ def test_version() -> None:
 
 
 def test_edge_refuses_q_star_with_sigma_b2() -> None:
-    # dropped --q-star before (exit 0)
+    # dropped --q-star before (exit 0); the refusal is the engine's, shared with the service
+    import propcalc
+
     code, out, err = run("edge", "tanh", "--q-star", "1", "--sigma-b2", "0.05")
     assert code == 2 and out == ""
-    assert "--q-star and --sigma-b2 exclude each other" in err
+    assert err.startswith("propcalc: error: --q-star: q_star must be absent when sigma_b2 is "
+                          "given (sigma_b2 fixes the points; their q* follow from it)")
+    with pytest.raises(propcalc.InvalidParameterError, match=r"^q_star must be absent when "
+                                                             r"sigma_b2 is given"):
+        propcalc.edge_of_chaos_points("tanh", q_star=1.0, sigma_b2=0.05)
+    # each alone takes effect, and equals the function it stands for
+    at_bias = propcalc.edge_of_chaos_points("tanh", sigma_b2=0.05)
+    assert [p.to_dict() for p in at_bias] == [p.to_dict() for p in
+                                               propcalc.edge_of_chaos_at_bias("tanh", 0.05)]
+    line = propcalc.edge_of_chaos_points("tanh")
+    assert [p.q_star for p in line] == list(propcalc.DEFAULT_EDGE_Q_STARS)
 
 
 def test_zero_inputs_without_a_bias_are_refused_everywhere() -> None:

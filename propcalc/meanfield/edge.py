@@ -26,7 +26,8 @@ from .fixed_points import collapse_rate
 from .maps import derivative_second_moment, second_moment, variance_map_slope
 
 __all__ = ["CriticalPoint", "edge_of_chaos", "edge_of_chaos_at_bias", "edge_of_chaos_line",
-           "edge_of_chaos_line_arrays", "edge_line", "ZERO_SNAP"]
+           "edge_of_chaos_line_arrays", "edge_line", "ZERO_SNAP", "DEFAULT_EDGE_Q_STARS",
+           "edge_of_chaos_points"]
 
 #: sigma_b2 = q* - sigma_w2 E[phi^2] within this many q* of 0 is a zero: the difference of two
 #: numbers near q* rounds to a few units of 2.2e-16 q* (64 of them, with the 1-D integral's
@@ -215,3 +216,48 @@ def edge_of_chaos_at_bias(act: Activation | str, sigma_b2: float,
         if cp.valid:
             out.append(cp)
     return tuple(out)
+
+
+#: the q* sampled along the edge-of-chaos line when none are given (the CLI's ``edge`` and the
+#: service's /v1/edge-of-chaos); a log grid over four decades around q* = 1 (common practice,
+#: no source)
+DEFAULT_EDGE_Q_STARS: tuple[float, ...] = (0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0)
+
+
+def edge_of_chaos_points(act: Activation | str, *, q_star: Any = None,
+                         sigma_b2: float | None = None,
+                         rule: QuadratureRule = DEFAULT_RULE) -> tuple[CriticalPoint, ...]:
+    """The edge-of-chaos points a front end asks for: at a fixed bias variance, or along the
+    line through the given q* (by default :data:`DEFAULT_EDGE_Q_STARS`).
+
+    One validation for the command line and the service (issue 12 section 2: ``edge --q-star 1
+    --sigma-b2 0.05`` dropped ``--q-star``): ``q_star`` and ``sigma_b2`` exclude each other.
+
+    Parameters
+    ----------
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
+    q_star : float or sequence of float, optional
+        Points of the line (:func:`edge_of_chaos_line`).
+    sigma_b2 : float, optional
+        The bias variance of the points (:func:`edge_of_chaos_at_bias`).
+
+    Returns
+    -------
+    tuple of CriticalPoint
+
+    Raises
+    ------
+    InvalidParameterError
+        If both ``q_star`` and ``sigma_b2`` are given.
+    """
+    act = resolve(act)
+    if q_star is not None and sigma_b2 is not None:
+        raise InvalidParameterError("q_star", "absent when sigma_b2 is given (sigma_b2 fixes the "
+                                    "points; their q* follow from it)",
+                                    q_star if np.ndim(q_star) == 0 else list(q_star))
+    if sigma_b2 is not None:
+        return tuple(edge_of_chaos_at_bias(act, sigma_b2, rule))
+    qs = DEFAULT_EDGE_Q_STARS if q_star is None else q_star
+    return tuple(edge_of_chaos_line(act, qs, rule))
+

@@ -7,7 +7,7 @@ from collections.abc import Sequence
 from types import ModuleType
 from typing import Any, TextIO
 
-from ... import edge_of_chaos_at_bias, edge_of_chaos_line, propagation
+from ... import edge_of_chaos_points, propagation
 from ..options import (
     EXIT_OK,
     UsageError,
@@ -90,16 +90,9 @@ def _report_plot(act: Any, p: Any, args: argparse.Namespace,
 def _cmd_edge(args: argparse.Namespace, out: TextIO) -> int:
     needs_plot(args, "--sigma-w2-range", "--sigma-b2-range", "--grid")
     target = start_plot(args)
-    if args.sigma_b2 is not None and args.q_star is not None:  # one would be dropped
-        raise UsageError("--q-star and --sigma-b2 exclude each other: --sigma-b2 solves for the "
-                         "edge-of-chaos points at that bias variance (their q* follow from it); "
-                         "--q-star samples the edge-of-chaos line at those q*")
     act = activation_of(args)
-    if args.sigma_b2 is not None:
-        points = edge_of_chaos_at_bias(act, args.sigma_b2)
-    else:
-        qs = args.q_star or [0.01, 0.03, 0.1, 0.3, 1.0, 3.0, 10.0, 30.0, 100.0]
-        points = edge_of_chaos_line(act, qs)
+    # --q-star and --sigma-b2 exclude each other: the engine refuses both (one validation)
+    points = edge_of_chaos_points(act, q_star=args.q_star, sigma_b2=args.sigma_b2)
     if args.json:
         emit_json([p.to_dict() for p in points], out)
     elif not points:
