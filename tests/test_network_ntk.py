@@ -130,3 +130,26 @@ def test_network_verdict_reads_the_network_ceiling():
     r = v.reason("learning rate")
     assert r.passes is not None and r.value == pytest.approx(ceiling.learning_rate_ceiling)
     assert pc.network_verdict(result).reason("learning rate").passes is None
+
+
+def test_network_plan_carries_the_learning_rate():
+    import propcalc as pc
+    from propcalc.training.network_ntk import network_learning_rate_ceiling
+    desc = {"input_width": 16, "blocks": [
+        {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 64}},
+        {"repeat": {"times": 3, "blocks": [{"residual": {"weight": 0.5, "branch": [
+            {"activation": "tanh"},
+            {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 64}}]}}]}},
+        {"activation": "tanh"},
+        {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 10}}]}
+    plan = pc.network_plan(desc, q0=1.0, c0=0.2, loss="cross_entropy", n_classes=10,
+                           batch_size=32)
+    ref = network_learning_rate_ceiling(plan.description, loss="cross_entropy", batch_size=32,
+                                        input_correlation=0.2)
+    assert plan.learning_rate_ceiling == pytest.approx(ref.learning_rate_ceiling, rel=1e-14)
+    assert plan.learning_rate == pytest.approx(ref.learning_rate_ceiling / 2, rel=1e-14)
+    assert pc.jsonable(plan.to_dict())["learning_rate"] == plan.learning_rate
+    assert plan.learning_rate_details.loss == "cross_entropy"
+    assert pc.network_plan(desc).learning_rate_ceiling is None
+    with pytest.raises(pc.PropcalcError, match="batch_size must be absent when no loss"):
+        pc.network_plan(desc, batch_size=4)

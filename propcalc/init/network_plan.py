@@ -25,7 +25,7 @@ written out before the repeat.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 from ..activations.base import Activation
@@ -47,7 +47,9 @@ from ..networks.rules import Stream
 from ..networks.summary import NetworkSummary
 from ..networks.targets import BranchWeight, branch_weight, with_branch_weight
 from ..networks.walk import Trace, trace
-from ..results import Result
+from ..results import OMIT, Result
+from ..training.learning_rate import LearningRateCeiling
+from ..training.network_ntk import network_learning_rate_ceiling
 from .plan import InitPlan
 from .planner import recommend
 
@@ -106,6 +108,13 @@ class NetworkPlan(Result):
         Correlation at the output and the input's gradient relative to the output's, for
         the planned network.
     notes : tuple of str
+    loss : str or None
+        The loss the learning rate is planned for (None without one).
+    learning_rate_ceiling, learning_rate : float or None
+        ``2 (1 + momentum) / lambda_max`` of the planned network and half of it
+        (:func:`propcalc.training.network_learning_rate_ceiling`); None without a loss.
+    learning_rate_details : LearningRateCeiling or None
+        The curvature behind them (Python only; the notes say the numbers).
     """
 
     blocks: tuple[BlockInit, ...]
@@ -115,6 +124,11 @@ class NetworkPlan(Result):
     output_c: float | None
     input_gradient: float | None
     notes: tuple[str, ...] = ()
+    loss: str | None = None
+    learning_rate_ceiling: float | None = None
+    learning_rate: float | None = None
+    learning_rate_details: LearningRateCeiling | None = field(default=None, repr=False,
+                                                             metadata=OMIT)
 
 
 class _Planner:
@@ -286,7 +300,10 @@ def _fan_ins(net: Network) -> dict[str, list[int | None]]:
 
 def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: float | None = None,
                  max_gradient: float | None = 10.0, distribution: str = "gaussian",
-                 convolution: str = "gaussian", q_star: float | None = None) -> NetworkPlan:
+                 convolution: str = "gaussian", q_star: float | None = None,
+                 loss: str | None = None, n_classes: int | None = None,
+                 batch_size: int | None = None, momentum: float = 0.0,
+                 input_correlation: float | None = None) -> NetworkPlan:
     """Plan the initialisation of every weight block of a network (and its residual weight).
 
     Parameters
@@ -306,6 +323,18 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
         "gaussian" or "delta_orthogonal" kernels.
     q_star : float, optional
         Preferred variance fixed point on the edge of chaos (as for recommend).
+    loss : str, optional
+        "cross_entropy" or "mse": the plan then carries the learning-rate ceiling of the
+        planned network (dense, activation and residual blocks only; others are refused by
+        path). The last layer is not rescaled here (unlike recommend).
+    n_classes : int, optional
+        Must equal the output width when given.
+    batch_size : int, optional
+        Required with a loss.
+    momentum : float
+        Heavy-ball momentum in [0, 1).
+    input_correlation : float, optional
+        The inputs' pairwise correlation for the batch kernel (default c0).
 
     Returns
     -------
@@ -336,8 +365,30 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
             notes.append("the residual weights are kept as described")
     planned, inits = _planned(net, q0, c0, distribution, convolution, q_star)
     result = network_propagation(planned, q0, c0, simulate=False)
+    ceiling = None
+    if loss is None:
+        for name, value in (("n_classes", n_classes), ("batch_size", batch_size),
+                            ("input_correlation", input_correlation)):
+            if value is not None:
+                raise InvalidParameterError(name, "absent when no loss is given (give loss=)",
+                                            value)
+        if momentum != 0.0:
+            raise InvalidParameterError("momentum", "0 when no loss is given (give loss=)",
+                                        momentum)
+    else:
+        if batch_size is None:
+            raise InvalidParameterError("batch_size", "given when a loss is given", None)
+        ceiling = network_learning_rate_ceiling(
+            planned, loss=loss, batch_size=batch_size, n_classes=n_classes, q0=q0,
+            input_correlation=c0 if input_correlation is None else input_correlation,
+            momentum=momentum)
+        notes.append(f"learning rate: ceiling {ceiling.learning_rate_ceiling:.4g} (2 (1 + "
+                     f"momentum) / lambda_max, lambda_max = {ceiling.lambda_max:.4g}); "
+                     f"recommended {ceiling.learning_rate:.4g} ({ceiling.learning_rate_rule})")
     return NetworkPlan(tuple(inits), found, planned.describe(), result.summary, result.c[-1],
-                       result.gradient[0], tuple(notes))
+                       result.gradient[0], tuple(notes), loss,
+                       None if ceiling is None else ceiling.learning_rate_ceiling,
+                       None if ceiling is None else ceiling.learning_rate, ceiling)
 
 
 def _planned(net: Network, q0: float, c0: float, distribution: str, convolution: str,
