@@ -417,3 +417,15 @@ def test_wide_windows_are_sampled_and_drawn_on_a_log_axis():
     assert fig.axes[0].get_xscale() == "log"
     # the default window stays linear
     assert plot_depth_scales(TANH, sigma_b2=0.05, n_points=9).axes[0].get_xscale() == "linear"
+
+
+def test_contours_keep_every_vertex():
+    # tanh's xi_c = 1 contour crosses every row of the grid: one vertex per row at least
+    # (a path simplified in data units had 4 vertices and drew polygons)
+    from matplotlib.contour import ContourSet
+
+    fig = plot_phase_diagram(TANH, n_grid=(21, 31))
+    sets = [c for c in fig.axes[0].collections if isinstance(c, ContourSet)]
+    (rates,) = [c for c in sets if np.any(np.isclose(c.levels, 1.0))]  # rate 1/xi_c = 1
+    k = int(np.flatnonzero(np.isclose(rates.levels, 1.0))[0])
+    assert len(rates.get_paths()[k].vertices) >= 31

@@ -19,7 +19,7 @@ import numpy as np
 from matplotlib.figure import Figure
 
 from ..activations.base import Activation
-from ..errors import check_int, check_nonnegative, check_positive
+from ..errors import ComputationError, check_int, check_nonnegative, check_positive
 from ..meanfield.edge import edge_of_chaos_at_bias
 from ..meanfield.fixed_points import solve_variance
 from ..meanfield.sweep import sweep
@@ -146,12 +146,29 @@ def plot_depth_scales(act: Activation, point: PointLike = None, *, sigma_b2: flo
     offsets = 10.0 ** -np.arange(1.0, 8.0)
     near = [e * (1 + s * offsets) for e in reached for s in (-1.0, 1.0)]
     bands, inside = _bands(act, regular, sb, qi, rule)
-    grid = np.unique(np.concatenate([regular, np.array(inside)] + near
-                                    + ([np.array(reached)] if reached else [])))
+    grid = np.unique(np.concatenate([regular] + near + ([np.array(reached)] if reached else [])))
     grid = grid[(grid >= lo) & (grid <= hi)]
     res = sweep(act, grid, [sb], q_input=qi, executor=executor, progress=progress, rule=rule,
                 chunk_size=chunk_size)
     xi_q, xi_c = res.xi_q[0, :, 0], res.xi_c[0, :, 0]
+    # the curves up to the band: the last points before it, each kept only when the engine can
+    # resolve it (close to a band c* may lie nearer to 1 than a double resolves: refused)
+    ends_w, ends_q, ends_c = [], [], []
+    for w in inside:
+        if not lo <= w <= hi or w in grid:
+            continue
+        try:
+            one = sweep(act, [w], [sb], q_input=qi, progress=False, rule=rule)
+        except ComputationError:
+            continue
+        ends_w.append(w)
+        ends_q.append(float(one.xi_q[0, 0, 0]))
+        ends_c.append(float(one.xi_c[0, 0, 0]))
+    if ends_w:
+        order = np.argsort(np.concatenate([grid, ends_w]), kind="stable")
+        grid = np.concatenate([grid, ends_w])[order]
+        xi_q = np.concatenate([xi_q, ends_q])[order]
+        xi_c = np.concatenate([xi_c, ends_c])[order]
     on_regular = np.isin(grid, regular)
     finite = np.concatenate([xi_q[on_regular & np.isfinite(xi_q)],
                              xi_c[on_regular & np.isfinite(xi_c)]])

@@ -18,7 +18,7 @@ from ..activations.base import Activation
 from ..errors import InvalidParameterError, check_int, check_positive
 from ..meanfield.maps import correlation_map, variance_map
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
-from .figure_tools import (PointLike, finish, fit_title, fmt, mark_user, new_figure,
+from .figure_tools import (USER, PointLike, finish, fit_title, fmt, mark_user, new_figure,
                            resolve_point, wrap, xi_c_words)
 
 __all__ = ["plot_variance_map", "plot_correlation_map", "NEAR_IDENTITY"]
@@ -254,15 +254,14 @@ def plot_correlation_map(act: Activation, point: PointLike, *, c_min: float = -1
                       f"{xi_c_words(prop, 4)})")
     ax.set_xlim(lo, 1.0)
     ax.set_ylim(min(lo, -0.05 if lo >= 0 else lo), 1.03)
-    if low is None:
+    if low is None or cm is None:  # the panel exists only when the map was computed
         ax.set_xlabel("c  (correlation of two inputs at layer l)")
     else:
-        assert cm is not None
         _distance_panel(low, c, cm - c, "C(c) - c", span)
         low.plot([1.0], [0.0], **kw)
         if prop.c_star is not None and lo <= prop.c_star < 1.0:
             low.plot([prop.c_star], [0.0], linestyle="none", marker="*", markersize=12,
-                     color="#e8a000", markeredgecolor="black", zorder=6, clip_on=False)
+                     color=USER, markeredgecolor="black", zorder=6, clip_on=False)
         low.set_xlim(lo, 1.0)
         low.set_xlabel("c  (correlation of two inputs at layer l)")
     ax.set_ylabel("C(c)  (correlation at layer l + 1)")

@@ -285,10 +285,23 @@ def _drop_specks(cs: Any, sw: np.ndarray, sb: np.ndarray) -> None:
     paths = []
     for path in cs.get_paths():
         keep = []
-        for seg in path.to_polygons(closed_only=False):
+        verts, codes = path.vertices, path.codes
+        if codes is None:
+            codes = np.full(len(verts), Path.LINETO, dtype=np.uint8)
+            if len(verts):
+                codes[0] = Path.MOVETO
+        starts = np.flatnonzero(codes == Path.MOVETO)
+        # split at each MOVETO, exactly (to_polygons would simplify in data units)
+        pieces = zip(np.split(verts, starts[1:]), np.split(codes, starts[1:])) \
+            if starts.size else []
+        for seg, kinds in pieces:
             if len(seg) < 2:
                 continue
-            closed = np.allclose(seg[0], seg[-1])
+            closed = bool(kinds[-1] == Path.CLOSEPOLY)
+            if closed:  # the vertex of CLOSEPOLY is ignored by matplotlib: close it explicitly
+                seg = seg.copy()
+                seg[-1] = seg[0]
+            closed = closed or bool(np.allclose(seg[0], seg[-1]))
             gx, gy = np.interp(seg[:, 0], sw, iw), np.interp(seg[:, 1], sb, ib)
             if closed and np.ptp(gx) <= 2.0 and np.ptp(gy) <= 2.0:
                 continue
