@@ -3,7 +3,13 @@ bundled handwritten digits.
 
 Run by hand (not collected by pytest)::
 
-    python tests/benchmarks/bench_training.py [--parts map lr defaults] [--out docs/figures]
+    python tests/benchmarks/bench_training.py [--parts map ceilings lr defaults]
+        [--out docs/figures] [--lr-seeds 0] [--defaults-lrs 0.001 plan] ...
+
+What the README shows was run part by part on a loaded 2-core machine (one core's share
+or less): ``--parts map``; ``--parts lr ceilings --lr-seeds 0``; ``--parts defaults
+--defaults-lrs 0.001``; about 25 minutes of CPU in all (the options trimmed to fit: one seed
+for the map and the sweeps, 300 and 500 steps).
 
 Each part trains plain multilayer perceptrons with torch (one thread, float32, seeded) and
 writes its numbers into ``OUT/training_results.json`` (the other parts' entries are kept)
@@ -11,22 +17,31 @@ and one PNG figure (matplotlib, Agg):
 
 * ``map`` (``trainability_map.png``): tanh networks over a grid of (sigma_w2, depth) at
   sigma_b2 = 0.05 (the plane of Schoenholz et al. 2017, Fig. 5), weights N(0, sigma_w2 /
-  fan_in) and biases N(0, sigma_b2) in every layer, the readout included. A cell *trains*
-  when the training accuracy after the given steps reaches ``--threshold`` (default 0.5;
-  chance is 0.1; our choice, common practice, no source). The prediction is propcalc's
-  trainable depth, 6 xi_c (``propcalc.propagation(...).trainable_depth``; the empirical rule
-  of Schoenholz et al. 2017): a cell is predicted to train when depth <= 6 xi_c. The
-  agreement is the fraction of cells where both say the same.
-* ``lr`` (``learning_rate.png``): accuracy against the learning rate at a fixed depth, plain
-  SGD without momentum (the optimiser of the ceiling), the network initialised by
-  ``propcalc.apply_plan`` from ``propcalc.recommend(act, widths=..., loss="cross_entropy",
-  n_classes=10, batch_size=B)``, with that plan's ``learning_rate_ceiling`` and
-  ``learning_rate`` marked.
-* ``defaults`` (``plan_vs_defaults.png``): propcalc's plan (``recommend`` + ``apply_plan``)
-  against the customary defaults: torch's default initialisation of ``nn.Linear`` and a
-  fixed gain (``torch.nn.init.calculate_gain``: 5/3 for tanh; for GELU, which it does not
-  list, the ReLU gain sqrt(2) of He et al. 2015; weights N(0, gain^2 / fan_in), zero
-  biases), at depth 100 (tanh) and 64 (GELU), width 128, three seeds each.
+  fan_in) and biases N(0, sigma_b2) in every layer, the readout included; SGD with momentum
+  0.9 at one learning rate (1e-3). A cell *trains* when the training accuracy after the
+  given steps reaches ``--threshold`` (default 0.5; chance is 0.1; our choice, common
+  practice, no source). The prediction is propcalc's trainable depth, 6 xi_c
+  (``propcalc.propagation(...).trainable_depth``; the empirical rule of Schoenholz et al.
+  2017): a cell is predicted to train when depth <= 6 xi_c. The agreement is the count of
+  cells where both say the same.
+* ``ceilings`` (no training): adds to every stored map cell the learning-rate ceiling of its
+  network for the map's optimiser (``propcalc.training.learning_rate_ceiling``, momentum
+  0.9) and redraws the map with the cells whose learning rate is above it marked.
+* ``lr`` (``learning_rate.png``): training accuracy against the learning rate at fixed
+  depths (tanh 20 and 100, GELU 64; multiples 2^-7 ... 2^2 of the ceiling), plain SGD
+  without momentum (the optimiser of the ceiling), the network initialised by
+  ``apply_plan`` (``propcalc.init.torch_adapter``) from ``propcalc.recommend(act,
+  widths=..., loss="cross_entropy", n_classes=10, batch_size=128, inputs=<the first 512
+  training inputs>)`` (readout scaled as planned), with that plan's
+  ``learning_rate_ceiling`` (2 / lambda_max), 4 / lambda_max (beyond it not even the
+  catapult phase converges, Lewkowycz et al. 2020) and ``learning_rate`` marked.
+* ``defaults`` (``plan_vs_defaults.png``): propcalc's plan (the same ``recommend`` for
+  momentum 0.9, + ``apply_plan``) against the customary defaults: torch's default
+  initialisation of ``nn.Linear`` and a fixed gain (``torch.nn.init.calculate_gain``: 5/3
+  for tanh; for GELU, which it does not list, the ReLU gain sqrt(2) of He et al. 2015;
+  weights N(0, gain^2 / fan_in), zero biases), at depth 100 (tanh) and 64 (GELU), width
+  128, three seeds each, SGD with momentum 0.9 at each learning rate of
+  ``--defaults-lrs`` ("plan": the plan's recommended ``learning_rate``).
 
 Data: ``sklearn.datasets.load_digits`` (1797 images of 8 x 8 pixels, 10 classes), split 80/20
 with a fixed permutation (numpy seed 0), each pixel standardised with the training part's
@@ -244,45 +259,123 @@ def part_map(data: dict[str, Any], args: argparse.Namespace) -> dict[str, Any]:
     return entry
 
 
+def loss_plan(act: str, depth: int, data: dict[str, Any], args: argparse.Namespace,
+              momentum: float) -> Any:
+    """``recommend`` for softmax cross-entropy on 10 classes at this harness's batch size,
+    with the first ``--kernel-inputs`` training inputs as the batch the kernel is computed on."""
+    x = data["x_train"][:args.kernel_inputs].numpy().astype(np.float64)
+    return plan_for(act, depth, args.width, data["q_input"], loss="cross_entropy",
+                    n_classes=N_CLASSES, batch_size=args.batch, momentum=momentum, inputs=x)
+
+
+def _ceiling_fields(plan: Any) -> dict[str, Any]:
+    return {"learning_rate_ceiling": plan.learning_rate_ceiling,
+            "learning_rate": plan.learning_rate,
+            "lambda_max": plan.learning_rate_details.lambda_max,
+            "catapult_limit": plan.learning_rate_details.catapult_limit,
+            "learning_rate_rule": plan.learning_rate_details.learning_rate_rule,
+            "readout_sigma_w2": plan.layers[-1].sigma_w2}
+
+
+def part_ceilings(data: dict[str, Any], args: argparse.Namespace,
+                  results: dict[str, Any]) -> dict[str, Any]:
+    """Add to every cell of the stored map the learning-rate ceiling of its network for the
+    map's optimiser (``propcalc.training.learning_rate_ceiling``, heavy-ball momentum, the
+    batch of ``--kernel-inputs`` training inputs) and the map's lr over it; no training."""
+    from propcalc.training import learning_rate_ceiling
+
+    entry = results["map"]
+    x = data["x_train"][:args.kernel_inputs].numpy().astype(np.float64)
+    for cell in entry["cells"]:
+        ceiling = learning_rate_ceiling(
+            "tanh", widths_of(cell["depth"], entry["width"]), cell["sigma_w2"], entry["sigma_b2"],
+            loss="cross_entropy", batch_size=entry["batch"], n_classes=N_CLASSES, inputs=x,
+            momentum=entry["momentum"])
+        cell["learning_rate_ceiling"] = ceiling.learning_rate_ceiling
+        cell["lr_over_ceiling"] = entry["lr"] / ceiling.learning_rate_ceiling
+        print(f"ceiling sigma_w2 {cell['sigma_w2']:5.2f} depth {cell['depth']:4d} "
+              f"{ceiling.learning_rate_ceiling:.4g} (map lr / ceiling "
+              f"{cell['lr_over_ceiling']:.3g}) trains {cell['trains']}", flush=True)
+    _draw_map(entry, Path(args.out) / "trainability_map.png")
+    return entry
+
+
 def part_defaults(data: dict[str, Any], args: argparse.Namespace) -> dict[str, Any]:
     import torch
 
     runs = []
+    plans = {}
     t_all = time.process_time()
     for act, depth, gain, gain_source in (
             ("tanh", args.tanh_depth, 5.0 / 3.0, "torch.nn.init.calculate_gain('tanh')"),
             ("gelu", args.gelu_depth, math.sqrt(2.0),
              "torch.nn.init.calculate_gain('relu') (He et al. 2015; gelu is not listed)")):
-        plan = plan_for(act, depth, args.width, data["q_input"])
-        lr = args.defaults_lr
+        plan = loss_plan(act, depth, data, args, args.defaults_momentum)
+        plans[act] = {"depth": depth, **_ceiling_fields(plan)}
         inits: list[tuple[str, Callable[[Any, int], Any]]] = [
             ("torch default", lambda m, s: m),
             (f"fixed gain {gain:.4g}", lambda m, s, g=gain: init_fixed_gain(m, g, s)),
             ("propcalc plan", lambda m, s, pl=plan: init_plan(m, pl, s)),
         ]
-        for name, init in inits:
-            for seed in args.seeds:
+        for lr_spec in args.defaults_lrs:
+            lr = plan.learning_rate if lr_spec == "plan" else float(lr_spec)
+            for name, init in inits:
+                for seed in args.seeds:
+                    torch.manual_seed(seed)
+                    model = init(plain_network(act, depth, args.width), seed)
+                    t0 = time.process_time()
+                    res = train(model, data, steps=args.defaults_steps, lr=lr,
+                                momentum=args.defaults_momentum, batch=args.batch, seed=seed,
+                                record_every=args.record_every)
+                    run = {"activation": act, "depth": depth, "init": name, "seed": seed,
+                           "lr": lr, "lr_from": lr_spec, "cpu_seconds": time.process_time() - t0,
+                           **res}
+                    if name.startswith("fixed gain"):
+                        run["gain_source"] = gain_source
+                    runs.append(run)
+                    acc = "diverged" if res["diverged"] else \
+                        f"{res['train_acc']:.3f} (test {res['test_acc']:.3f})"
+                    print(f"defaults {act} depth {depth} lr {lr:.4g} {name:16s} seed {seed} "
+                          f"initial loss {res['initial_loss']:.3f} train acc {acc} "
+                          f"({run['cpu_seconds']:.0f} s)", flush=True)
+    entry = {"width": args.width, "steps": args.defaults_steps, "lrs": args.defaults_lrs,
+             "momentum": args.defaults_momentum, "batch": args.batch, "seeds": args.seeds,
+             "q_input": data["q_input"], "plans": plans, "runs": runs,
+             "cpu_seconds": time.process_time() - t_all}
+    _draw_defaults(entry, Path(args.out) / "plan_vs_defaults.png")
+    return entry
+
+
+def part_lr(data: dict[str, Any], args: argparse.Namespace) -> dict[str, Any]:
+    import torch
+
+    runs = []
+    plans = {}
+    t_all = time.process_time()
+    for act, depth in zip(args.lr_acts, args.lr_depths):
+        plan = loss_plan(act, depth, data, args, 0.0)
+        plans[f"{act} {depth}"] = {"activation": act, "depth": depth, **_ceiling_fields(plan)}
+        for factor in args.lr_factors:
+            lr = factor * plan.learning_rate_ceiling
+            for seed in args.lr_seeds:
                 torch.manual_seed(seed)
-                model = init(plain_network(act, depth, args.width), seed)
+                model = init_plan(plain_network(act, depth, args.width), plan, seed)
                 t0 = time.process_time()
-                res = train(model, data, steps=args.defaults_steps, lr=lr,
-                            momentum=args.defaults_momentum, batch=args.batch, seed=seed,
-                            record_every=args.record_every)
-                run = {"activation": act, "depth": depth, "init": name, "seed": seed,
-                       "lr": lr, "cpu_seconds": time.process_time() - t0, **res}
-                if name.startswith("fixed gain"):
-                    run["gain_source"] = gain_source
+                res = train(model, data, steps=args.lr_steps, lr=lr, momentum=0.0,
+                            batch=args.batch, seed=seed)
+                run = {"activation": act, "depth": depth, "seed": seed, "lr": lr,
+                       "lr_over_ceiling": factor, "cpu_seconds": time.process_time() - t0,
+                       **res}
                 runs.append(run)
                 acc = "diverged" if res["diverged"] else \
                     f"{res['train_acc']:.3f} (test {res['test_acc']:.3f})"
-                print(f"defaults {act} depth {depth} {name:16s} seed {seed} initial loss "
-                      f"{res['initial_loss']:.3f} train acc {acc} ({run['cpu_seconds']:.0f} s)",
-                      flush=True)
-    entry = {"width": args.width, "steps": args.defaults_steps, "lr": args.defaults_lr,
-             "momentum": args.defaults_momentum, "batch": args.batch, "seeds": args.seeds,
-             "q_input": data["q_input"], "runs": runs,
-             "cpu_seconds": time.process_time() - t_all}
-    _draw_defaults(entry, Path(args.out) / "plan_vs_defaults.png")
+                print(f"lr {act} depth {depth} lr {lr:.4g} = {factor:g} x ceiling seed {seed} "
+                      f"train acc {acc} ({run['cpu_seconds']:.0f} s)", flush=True)
+    entry = {"width": args.width, "steps": args.lr_steps, "momentum": 0.0,
+             "batch": args.batch, "seeds": args.lr_seeds, "threshold": args.threshold,
+             "q_input": data["q_input"], "kernel_inputs": args.kernel_inputs,
+             "plans": plans, "runs": runs, "cpu_seconds": time.process_time() - t_all}
+    _draw_lr(entry, Path(args.out) / "learning_rate.png")
     return entry
 
 
@@ -320,7 +413,14 @@ def _draw_map(entry: dict[str, Any], path: Path) -> None:
     limits = [propcalc.propagation("tanh", s, entry["sigma_b2"],
                                    q_input=entry["q_input"]).trainable_depth for s in grid]
     ax.plot(grid, limits, "k-", label="predicted trainable depth 6 xi_c (propcalc)")
-    ax.set_ylim(0, 1.15 * max(c["depth"] for c in cells))
+    edge = propcalc.edge_of_chaos_at_bias("tanh", entry["sigma_b2"])[0].sigma_w2
+    ax.axvline(edge, color="k", ls=":", lw=1, label=f"edge of chaos, sigma_w2 = {edge:.3f}")
+    over = [c for c in cells if c.get("lr_over_ceiling", 0.0) > 1.0]
+    if over:
+        ax.scatter([c["sigma_w2"] for c in over], [c["depth"] for c in over], s=12, c="k",
+                   marker="^", label="lr above the predicted ceiling (momentum %g)"
+                   % entry["momentum"])
+    ax.set_ylim(0, 1.35 * max(c["depth"] for c in cells))
     ax.set_xlabel("sigma_w2 (sigma_b2 = %g)" % entry["sigma_b2"])
     ax.set_ylabel("depth (hidden layers)")
     ax.set_title(f"tanh, width {entry['width']}, digits: o trains (train acc >= "
@@ -332,27 +432,62 @@ def _draw_map(entry: dict[str, Any], path: Path) -> None:
 
 def _draw_defaults(entry: dict[str, Any], path: Path) -> None:
     acts = sorted({r["activation"] for r in entry["runs"]}, reverse=True)
-    fig, axes = _figure(1, len(acts), (5.2 * len(acts), 4.2))
+    specs = list(entry["lrs"])
+    fig, axes = _figure(len(specs), len(acts), (5.2 * len(acts), 3.9 * len(specs)))
     colours = {"torch default": "tab:gray", "propcalc plan": "tab:blue"}
-    for ax, act in zip(axes[0], acts):
-        runs = [r for r in entry["runs"] if r["activation"] == act]
-        seen = set()
-        for r in runs:
-            colour = colours.get(r["init"], "tab:orange")
-            steps, losses = zip(*r["curve"]) if r["curve"] else ((0,), (float("nan"),))
-            label = None
-            if r["init"] not in seen:
-                seen.add(r["init"])
-                accs = [x["train_acc"] or 0.0 for x in runs if x["init"] == r["init"]]
-                label = f"{r['init']}: train acc {np.mean(accs):.2f} (3 seeds)"
-            ax.plot(steps, losses, color=colour, lw=1, alpha=0.8, label=label)
-        ax.axhline(math.log(N_CLASSES), color="k", ls=":", lw=1, label="ln 10")
-        ax.set_yscale("log")
-        ax.set_xlabel("SGD step")
-        ax.set_ylabel("minibatch loss")
-        ax.set_title(f"{act}, depth {runs[0]['depth']}, width {entry['width']}, lr {entry['lr']:g}",
-                     fontsize=9)
-        ax.legend(fontsize=7)
+    for row, spec in zip(axes, specs):
+        for ax, act in zip(row, acts):
+            runs = [r for r in entry["runs"] if r["activation"] == act and r["lr_from"] == spec]
+            seen = set()
+            for r in runs:
+                colour = colours.get(r["init"], "tab:orange")
+                steps, losses = zip(*r["curve"]) if r["curve"] else ((0,), (float("nan"),))
+                label = None
+                if r["init"] not in seen:
+                    seen.add(r["init"])
+                    accs = [x["train_acc"] or 0.0 for x in runs if x["init"] == r["init"]]
+                    label = f"{r['init']}: train acc {np.mean(accs):.2f} ({len(accs)} seeds)"
+                ax.plot(steps, losses, color=colour, lw=1, alpha=0.8, label=label)
+            ax.axhline(math.log(N_CLASSES), color="k", ls=":", lw=1, label="ln 10")
+            ax.set_yscale("log")
+            ax.set_xlabel("SGD step (momentum %g)" % entry["momentum"])
+            ax.set_ylabel("minibatch loss")
+            source = "the plan's learning_rate" if spec == "plan" else "fixed"
+            ax.set_title(f"{act}, depth {runs[0]['depth']}, width {entry['width']}, "
+                         f"lr {runs[0]['lr']:.3g} ({source})", fontsize=9)
+            ax.legend(fontsize=7)
+    _save(fig, path)
+
+
+def _draw_lr(entry: dict[str, Any], path: Path) -> None:
+    keys = list(entry["plans"])
+    fig, axes = _figure(1, len(keys), (5.2 * len(keys), 4.2))
+    for ax, key in zip(axes[0], keys):
+        plan = entry["plans"][key]
+        runs = [r for r in entry["runs"] if f"{r['activation']} {r['depth']}" == key]
+        lrs = sorted({r["lr"] for r in runs})
+        means = []
+        for lr in lrs:
+            accs = [0.0 if r["train_acc"] is None else r["train_acc"]
+                    for r in runs if r["lr"] == lr]
+            means.append(np.mean(accs))
+            for r, a in zip([r for r in runs if r["lr"] == lr], accs):
+                ax.scatter(lr, a, marker="x" if r["diverged"] else "o", c="tab:blue", s=25)
+        ax.plot(lrs, means, "-", color="tab:blue", lw=1, label="training accuracy (x: diverged)")
+        ax.axvline(plan["learning_rate_ceiling"], color="tab:red",
+                   label=f"ceiling 2 / lambda_max = {plan['learning_rate_ceiling']:.3g}")
+        ax.axvline(plan["catapult_limit"], color="tab:red", ls="--",
+                   label=f"4 / lambda_max = {plan['catapult_limit']:.3g}")
+        ax.axvline(plan["learning_rate"], color="tab:green", ls=":",
+                   label=f"recommended {plan['learning_rate']:.3g}")
+        ax.axhline(entry["threshold"], color="k", ls=":", lw=0.8)
+        ax.set_xscale("log")
+        ax.set_ylim(0, 1.02)
+        ax.set_xlabel("learning rate (SGD, no momentum)")
+        ax.set_ylabel(f"training accuracy after {entry['steps']} steps")
+        ax.set_title(f"{plan['activation']}, depth {plan['depth']}, width {entry['width']}, "
+                     f"propcalc plan, seeds {entry['seeds']}", fontsize=9)
+        ax.legend(fontsize=7, loc="lower left")
     _save(fig, path)
 
 
@@ -360,7 +495,7 @@ def _draw_defaults(entry: dict[str, Any], path: Path) -> None:
 
 def _parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    p.add_argument("--parts", nargs="+", choices=("map", "lr", "defaults"),
+    p.add_argument("--parts", nargs="+", choices=("map", "ceilings", "lr", "defaults"),
                    default=["map", "defaults", "lr"])
     p.add_argument("--out", default="docs/figures")
     p.add_argument("--width", type=int, default=128)
@@ -377,9 +512,20 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--tanh-depth", type=int, default=100)
     p.add_argument("--gelu-depth", type=int, default=64)
     p.add_argument("--defaults-steps", type=int, default=500)
-    p.add_argument("--defaults-lr", type=float, default=1e-3)
+    p.add_argument("--defaults-lrs", nargs="+", default=["0.001", "plan"],
+                   help="learning rates for all three initialisations; 'plan': the plan's "
+                        "recommended learning_rate (for the momentum used)")
     p.add_argument("--defaults-momentum", type=float, default=0.9)
     p.add_argument("--record-every", type=int, default=10)
+    p.add_argument("--kernel-inputs", type=int, default=512,
+                   help="training inputs given to recommend(..., inputs=) for the ceiling")
+    p.add_argument("--lr-acts", nargs="+", default=["tanh", "tanh", "gelu"])
+    p.add_argument("--lr-depths", type=int, nargs="+", default=[20, 100, 64])
+    p.add_argument("--lr-factors", type=float, nargs="+",
+                   default=[2.0 ** k for k in range(-7, 3)],
+                   help="learning rates as multiples of the plan's ceiling")
+    p.add_argument("--lr-steps", type=int, default=300)
+    p.add_argument("--lr-seeds", type=int, nargs="+", default=[0, 1])
     return p
 
 
@@ -391,12 +537,13 @@ def main(argv: Sequence[str] | None = None) -> None:
     data = digits_data()
     path = Path(args.out) / "training_results.json"
     results = json.loads(path.read_text()) if path.exists() else {}
-    parts = {"map": part_map, "defaults": part_defaults}
+    parts = {"map": part_map, "defaults": part_defaults, "lr": part_lr}
     for name in args.parts:
-        if name not in parts:
-            print(f"part {name}: not available yet")
-            continue
-        results[name] = parts[name](data, args)
+        if name == "ceilings":
+            results["map"] = part_ceilings(data, args, results)
+            name = "map"
+        else:
+            results[name] = parts[name](data, args)
         results[name]["torch"] = torch.__version__
         path.parent.mkdir(parents=True, exist_ok=True)
         path.write_text(json.dumps(results, indent=1, sort_keys=True) + "\n")
