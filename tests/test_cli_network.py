@@ -151,8 +151,8 @@ def test_simulated_positions_show_their_band(tmp_path):
 
 
 def test_positions_without_numbers_say_so(tmp_path):
-    # max pooling: the maximum of correlated units is not Gaussian; the simulation of a 2-D
-    # convolution needs a grid the CLI does not give, so those positions have no number
+    # max pooling: the maximum of correlated units is not Gaussian; a 1-D pooling window after
+    # 2-D convolutions fits no simulated grid, so those positions have no number
     conv = {"convolution": {"sigma_w2": 2.0, "sigma_b2": 0.0, "kernel": [3, 3]}}
     desc = {"blocks": [conv, {"activation": "relu"}, {"pooling": {"kind": "max", "window": 2}},
                        conv, {"activation": "relu"}]}
@@ -160,7 +160,21 @@ def test_positions_without_numbers_say_so(tmp_path):
     assert code == 0, err
     rows = table_rows(out)
     assert rows[2][6] == "mean field" and rows[3][6] == "no number" and rows[3][3] == "-"
-    assert "nan" not in out
+    assert "nan" not in out and "the pooling window has 1 spatial dimensions" in out
+
+
+def test_max_pooling_after_2d_convolutions_is_simulated(tmp_path):
+    # the simulation's grid fits the 2-D kernels and windows (propcalc.networks.sim_grid)
+    conv = {"convolution": {"sigma_w2": 2.0, "sigma_b2": 0.0, "kernel": [3, 3], "width": 32}}
+    desc = {"input_width": 8, "blocks": [conv, {"activation": "relu"},
+                                         {"pooling": {"kind": "max", "window": [2, 2]}},
+                                         conv, {"activation": "relu"}]}
+    code, out, err = run("network", write(tmp_path, desc), "--no-plan")
+    assert code == 0, err
+    rows = table_rows(out)
+    assert rows[2][6] == "mean field"
+    assert all(rows[i][6] == "simulation" and "+-" in rows[i][3] for i in (3, 4, 5))
+    assert "no number" not in out and "nan" not in out
 
 
 def test_long_tables_are_thinned_but_keep_flagged_positions(tmp_path):

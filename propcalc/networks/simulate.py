@@ -41,6 +41,7 @@ from ..results import OMIT, Result
 from .blocks import Attention, Block, Convolution, Dense, Network, Pooling, Repeat, Residual
 from .description import network as parse_network
 from .sim_blocks import Field, forward_block
+from .sim_grid import default_grid
 
 __all__ = [
     "MAX_NETWORK_SIMULATION_WORK",
@@ -283,7 +284,9 @@ def measure_network(description: Any, *, q0: float = 1.0, c0: float = 0.5,
         Units per position where the description gives no width (default 256).
     grid : int or sequence of int, optional
         The input's positions: a spatial grid for convolutions and pooling, the
-        tokens for attention (default: the first attention block's tokens, else 1).
+        tokens for attention (default: :func:`propcalc.networks.sim_grid.default_grid`, one
+        position for dense networks, the tokens of the first attention block, a grid that fits
+        the convolutions, pooling windows and strides).
     inputs : int
         Inputs in the batch (>= 2).
     repetitions : int
@@ -365,17 +368,7 @@ def _run_all(net: Network, root: np.random.SeedSequence, reps: int, n: int, n_in
 
 def _grid(net: Network, grid: Any) -> tuple[int, ...]:
     if grid is None:
-        def first(blocks: tuple[Block, ...]) -> int | None:
-            for b in blocks:
-                if isinstance(b, Attention):
-                    return b.tokens
-                inner = b.blocks if isinstance(b, Repeat) else (
-                    b.branch if isinstance(b, Residual) else ())
-                found = first(inner)
-                if found:
-                    return found
-            return None
-        return (first(net.blocks) or 1,)
+        return default_grid(net)
     sizes = [grid] if not isinstance(grid, (list, tuple)) else list(grid)
     if not 1 <= len(sizes) <= 3:
         raise InvalidParameterError("grid", "an integer or a list of 1 to 3 integers", grid)
