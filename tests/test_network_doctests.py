@@ -6,10 +6,10 @@ import doctest
 
 import pytest
 
-from propcalc.networks import description, propagate
+from propcalc.networks import description, propagate, sim_grid
 
 
-@pytest.mark.parametrize("module", [description, propagate])
+@pytest.mark.parametrize("module", [description, propagate, sim_grid])
 def test_docstring_examples(module):
     result = doctest.testmod(module, optionflags=doctest.ELLIPSIS)
     assert result.attempted > 0 and result.failed == 0
