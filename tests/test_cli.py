@@ -300,6 +300,9 @@ USAGE_ERRORS = [
     (["report", "leaky_relu", "-w", "1", "--param", "slope"], "--param must look like name=value"),
     (["report", "leaky_relu", "-w", "1", "--param", "slope=x"], "--param slope must be a number"),
     (["report", "leaky_relu", "-w", "1", "--param", "slope=inf"], "--param slope must be finite"),
+    # issue 11 section 5: a repeated parameter was silently the last one
+    (["report", "leaky_relu", "-w", "1", "--param", "slope=1", "--param", "slope=2"],
+     "--param slope is given twice (1 and 2)"),
     (["report", "exp(x)", "-w", "1"], "exp"),        # refused formula: not finite on the range
     (["report", "tanh(", "-w", "1"], "column"),      # refused formula: syntax
     (["show"], "the following arguments are required: activation"),

@@ -93,6 +93,7 @@ class Parser(argparse.ArgumentParser):
 
 
 def activation_params(items: Sequence[str] | None) -> dict[str, float]:
+    """The ``--param NAME=VALUE`` items as a dict: finite numbers, each name once."""
     out: dict[str, float] = {}
     for item in items or ():
         name, sep, text = item.partition("=")
@@ -104,6 +105,9 @@ def activation_params(items: Sequence[str] | None) -> dict[str, float]:
             raise UsageError(f"--param {name.strip()} must be a number, got {text!r}") from None
         if not math.isfinite(value):
             raise UsageError(f"--param {name.strip()} must be finite, got {text!r}")
+        if name.strip() in out:
+            raise UsageError(f"--param {name.strip()} is given twice ({out[name.strip()]:g} and "
+                             f"{value:g}): give each parameter once")
         out[name.strip()] = value
     return out
 
