@@ -40,13 +40,8 @@ def test_residual_network_against_the_empirical_kernel():
     torch = pytest.importorskip("torch")
     torch.set_num_threads(1)
     q0, c0 = 1.3, 0.4
-    rng = np.random.default_rng(0)
-    a, b = rng.standard_normal((2, 16))
-    a /= np.linalg.norm(a)
-    b -= (b @ a) * a
-    b /= np.linalg.norm(b)
-    r = np.sqrt(q0 * 16)
-    x = torch.tensor(np.stack([r * a, r * (c0 * a + np.sqrt(1 - c0 * c0) * b)]))
+    from torch_helpers import kernel_pair, pair_inputs
+    x = torch.tensor(pair_inputs(16, q0, c0))
 
     class Net(torch.nn.Module):
         def __init__(self) -> None:
@@ -71,13 +66,9 @@ def test_residual_network_against_the_empirical_kernel():
                     sw = 2.0 if m in net.branches else 1.0
                     m.weight.normal_(0.0, np.sqrt(sw / m.in_features))
                     m.bias.zero_()
-        params = list(net.parameters())
-        out = net(x)
-        g = [torch.cat([t.reshape(-1) for t in torch.autograd.grad(out[i, 0], params,
-                                                                   retain_graph=True)])
-             for i in range(2)]
-        diag.append(float(g[0] @ g[0]))
-        off.append(float(g[0] @ g[1]))
+        d, o = kernel_pair(net, x)
+        diag.append(d)
+        off.append(o)
     k = network_tangent_kernel(RESIDUAL, q0, c0)
     for emp, pred in ((diag, k.diagonal), (off, k.off_diagonal)):
         se = np.std(emp, ddof=1) / np.sqrt(len(emp))

@@ -44,9 +44,9 @@ heavy-ball momentum mu (torch's ``SGD(momentum=mu)``, ``dampening=0``) moves the
 ``2 (1 + mu) / lambda_max`` (Polyak 1964; from memory of the standard two-step analysis). For
 SGD the batch's curvature is the one that matters, hence B in lambda_max. The recommended value
 is half the ceiling: for mu = 0 that is ``1 / lambda_max``, the step of the classic analysis of a
-function with Lipschitz gradient (Nesterov 2004, Introductory Lectures on Convex Optimization,
-section 2.1.5; from memory of the section number); for mu > 0 the factor 1/2 is common practice,
-no source.
+function with Lipschitz gradient (Nesterov 2004, the textbook on convex optimization, section
+2.1.5; from memory of the section number); for mu > 0 the factor 1/2 is common practice, no
+source.
 """
 
 from __future__ import annotations

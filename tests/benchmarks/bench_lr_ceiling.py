@@ -20,7 +20,9 @@ from __future__ import annotations
 
 import argparse
 import os
+import sys
 import time
+from pathlib import Path
 
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
@@ -33,7 +35,9 @@ from sklearn.preprocessing import StandardScaler  # noqa: E402
 import propcalc  # noqa: E402
 from propcalc.init.torch_adapter import apply_plan  # noqa: E402
 
-ACTS = {"tanh": torch.nn.Tanh, "relu": torch.nn.ReLU, "gelu": torch.nn.GELU}
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+from torch_helpers import stack, top_hessian_eigenvalue  # noqa: E402
+
 
 GRID = [  # (act, depth, width, loss, scale_output, batch)
     ("tanh", 5, 128, "cross_entropy", True, 32),
@@ -50,44 +54,6 @@ GRID = [  # (act, depth, width, loss, scale_output, batch)
     ("gelu", 64, 128, "cross_entropy", True, 32),
 ]
 QUICK = [GRID[0], GRID[3], GRID[7], GRID[10]]
-
-
-def stack(act: str, widths: list[int]) -> torch.nn.Sequential:
-    mods: list[torch.nn.Module] = []
-    for i, (a, b) in enumerate(zip(widths[:-1], widths[1:])):
-        mods.append(torch.nn.Linear(a, b))
-        if i < len(widths) - 2:
-            mods.append(ACTS[act]())
-    return torch.nn.Sequential(*mods).double()
-
-
-def top_hessian_eigenvalue(net, x, y, loss: str, tol: float = 1e-5) -> float:
-    """The largest (algebraic) eigenvalue of the mean loss's Hessian in the parameters.
-
-    Hessian-vector products by double backward, fed to scipy's Lanczos solver
-    (``scipy.sparse.linalg.eigsh``, ``which="LA"``): deep networks at initialisation also have
-    large negative curvature, which plain power iteration would find instead.
-    """
-    from scipy.sparse.linalg import LinearOperator, eigsh
-    params = list(net.parameters())
-    out = net(x)
-    if loss == "mse":
-        target = torch.nn.functional.one_hot(y, out.shape[1]).to(out.dtype)
-        value = torch.nn.functional.mse_loss(out, target)
-    else:
-        value = torch.nn.functional.cross_entropy(out, y)
-    grads = torch.autograd.grad(value, params, create_graph=True)
-    flat = torch.cat([g.reshape(-1) for g in grads])
-    size = flat.numel()
-
-    def hvp(v: np.ndarray) -> np.ndarray:
-        vt = torch.from_numpy(np.ascontiguousarray(v.reshape(-1))).to(flat.dtype)
-        hv = torch.autograd.grad(flat, params, grad_outputs=vt, retain_graph=True)
-        return torch.cat([h.reshape(-1) for h in hv]).detach().numpy()
-
-    op = LinearOperator((size, size), matvec=hvp, dtype=np.float64)
-    v0 = np.random.default_rng(0).standard_normal(size)
-    return float(eigsh(op, k=1, which="LA", tol=tol, v0=v0, return_eigenvectors=False)[0])
 
 
 def top_gauss_newton_eigenvalue(net, x, y, loss: str, tol: float = 1e-5) -> float:
