@@ -3,6 +3,7 @@
 :mod:`~propcalc.training.finite_width` (spread and drift at finite widths, first order in 1/n);
 :mod:`~propcalc.training.ntk` (the tangent kernel of a plain stack, standard parametrisation) ->
 :mod:`~propcalc.training.learning_rate` (the top curvature of the loss and 2 / lambda_max);
+:mod:`~propcalc.training.network_finite_width` (the same laws along a chain of dense blocks);
 :mod:`~propcalc.training.network_ntk` (the tangent kernel of dense / activation / residual blocks);
 :mod:`~propcalc.training.verdict` (every reason that decides trainability, one structure).
 Above :mod:`propcalc.meanfield` and :mod:`propcalc.variants`, below :mod:`propcalc.init`.
@@ -10,6 +11,7 @@ Above :mod:`propcalc.meanfield` and :mod:`propcalc.variants`, below :mod:`propca
 
 from .finite_width import FiniteWidth, LayerFluctuations, finite_width, layer_fluctuations
 from .learning_rate import LOSSES, LearningRateCeiling, learning_rate_ceiling, output_hessian
+from .network_finite_width import FiniteWidthUnsupportedError, network_finite_width
 from .network_ntk import NetworkTangentKernel, network_learning_rate_ceiling, network_tangent_kernel
 from .ntk import TangentKernel, UnsupportedKernelError, tangent_kernel
 from .verdict import Reason, Verdict, network_verdict, trainability
@@ -18,4 +20,4 @@ __all__ = ["FiniteWidth", "LOSSES", "LayerFluctuations", "LearningRateCeiling", 
            "UnsupportedKernelError", "finite_width", "layer_fluctuations",
            "learning_rate_ceiling", "output_hessian", "tangent_kernel", "Reason", "Verdict",
            "network_verdict", "trainability", "NetworkTangentKernel", "network_learning_rate_ceiling",
-           "network_tangent_kernel"]
+           "network_tangent_kernel", "FiniteWidthUnsupportedError", "network_finite_width"]

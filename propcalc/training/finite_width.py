@@ -80,6 +80,8 @@ __all__ = [
     "FiniteWidth",
     "layer_fluctuations",
     "finite_width",
+    "chain_laws",
+    "check_widths",
 ]
 
 #: largest standard deviation of ln q at the top that counts as small (ours, no source:
@@ -293,6 +295,31 @@ def _trajectory(act: Activation, sw: float, sb: float, q0: float, n_layers: int,
     return ks
 
 
+def _chain_trajectory(layers: list[tuple[Activation, float, float]], q0: float,
+                      rule: QuadratureRule) -> np.ndarray:
+    """K_0 .. K_L through transitions that differ (each layer's own length map)."""
+    ks = np.empty(len(layers) + 1)
+    ks[0] = q0
+    for layer, (act, sw, sb) in enumerate(layers, start=1):
+        ks[layer] = _trajectory(act, sw, sb, float(ks[layer - 1]), 1, rule)[1]
+    return ks
+
+
+def _chain_coefficients(layers: list[tuple[Activation, float, float]], k: np.ndarray,
+                        rule: QuadratureRule) -> dict[str, np.ndarray]:
+    """Every coefficient at K_l with layer l's own (activation, sigma_w2, sigma_b2)."""
+    groups: dict[tuple[int, float, float], list[int]] = {}
+    for i, (act, sw, sb) in enumerate(layers):
+        groups.setdefault((id(act), sw, sb), []).append(i)
+    out: dict[str, np.ndarray] = {}
+    for idx in groups.values():
+        act, sw, sb = layers[idx[0]]
+        uniq, inverse = np.unique(k[idx], return_inverse=True)
+        for name, val in _coefficients(act, uniq, sw, sb, rule).items():
+            out.setdefault(name, np.empty(k.size))[idx] = val[inverse]
+    return out
+
+
 def _sums(co: dict[str, np.ndarray], k: np.ndarray, inv_n: np.ndarray
           ) -> dict[str, np.ndarray]:
     """First-order sums for weights inv_n (1/n_l for real widths, 1 for unit width)."""
@@ -356,7 +383,12 @@ def finite_width(act: Any, sigma_w2: float, sigma_b2: float, widths: Sequence[in
     act = resolve(act)
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
-    qi = check_positive("q0", q0)
+    ws = check_widths(widths)
+    return chain_laws([(act, sw, sb)] * (len(ws) - 1), ws, check_positive("q0", q0), rule)
+
+
+def check_widths(widths: Any) -> list[int]:
+    """Validated widths n_0 .. n_L (each >= 2 but the top one, >= 1)."""
     if isinstance(widths, (str, bytes)) or not isinstance(widths, Sequence):
         raise InvalidParameterError("widths", "a list of integers", widths)
     ws = [check_int(f"widths[{i}]", w, 2 if i < len(widths) - 1 else 1)
@@ -365,10 +397,28 @@ def finite_width(act: Any, sigma_w2: float, sigma_b2: float, widths: Sequence[in
         raise InvalidParameterError("widths", "at least 2 layers (n_0 and n_1)", list(widths))
     if len(ws) > MAX_LAYERS + 1:
         raise InvalidParameterError("widths", f"at most {MAX_LAYERS + 1} layers", len(ws))
+    return ws
+
+
+def chain_laws(layers: list[tuple[Activation, float, float]], ws: list[int], qi: float,
+             rule: QuadratureRule) -> FiniteWidth:
+    """The first-order laws for validated transitions ``layers`` (one per width but the last).
+
+    Transition l (layer l to l + 1) has its own activation, sigma_w2 and sigma_b2: every sum
+    of the module docstring is taken layer by layer, and the derivation nowhere uses that the
+    layers are equal. ``activation`` of the result lists the distinct activations;
+    ``sigma_w2`` and ``sigma_b2`` are the first transition's.
+    """
     n_layers = len(ws) - 1
-    k = _trajectory(act, sw, sb, qi, n_layers, rule)
-    uniq, inverse = np.unique(k, return_inverse=True)
-    co = {name: val[inverse] for name, val in _coefficients(act, uniq, sw, sb, rule).items()}
+    uniform = len(set((id(a), sw, sb) for a, sw, sb in layers)) == 1
+    if uniform:
+        act, sw, sb = layers[0]
+        k = _trajectory(act, sw, sb, qi, n_layers, rule)
+    else:
+        k = _chain_trajectory(layers, qi, rule)
+    co = _chain_coefficients(layers + [layers[-1]], k, rule)
+    act, sw, sb = layers[0]
+    label = act.label if uniform else ", ".join(dict.fromkeys(a.label for a, _, _ in layers))
     inv_n = 1.0 / np.asarray(ws, dtype=float)
     real = _sums(co, k, inv_n)
     unit = _sums(co, k, np.ones(n_layers + 1))
@@ -410,7 +460,7 @@ def finite_width(act: Any, sigma_w2: float, sigma_b2: float, widths: Sequence[in
     msg = _message(n_layers, ws, k[-1], math.sqrt(top_var), top_drift, top_typ,
                    math.sqrt(g_var), spread_ok, gradient_ok, drift_ok, width_needed, within)
     tup = lambda arr: tuple(float(x) for x in arr)  # noqa: E731
-    return FiniteWidth(act.label, sw, sb, qi, tuple(ws), beta, tup(k), tup(q_mean), tup(q_typ),
+    return FiniteWidth(label, sw, sb, qi, tuple(ws), beta, tup(k), tup(q_mean), tup(q_typ),
                        tup(np.sqrt(q_var)), tup(g_mf), tup(g_typ),
                        tup(np.sqrt(real["var_g"])), math.sqrt(top_var), top_drift, top_typ,
                        math.sqrt(g_var), spread_ok, gradient_ok, drift_ok, width_needed,

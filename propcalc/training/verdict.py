@@ -45,6 +45,7 @@ from ..variants.output_layer import initial_loss, output_layer_scale
 from ..vocabulary import NEUTRAL_TOLERANCE
 from .finite_width import (DRIFT_LIMIT, GRADIENT_SPREAD_LIMIT, SPREAD_LIMIT, FiniteWidth,
                            finite_width)
+from .network_finite_width import FiniteWidthUnsupportedError, network_finite_width
 
 __all__ = ["GROWTH_LIMIT", "MSE_OUTPUT_LIMIT", "REASONS", "WARNINGS", "Reason", "Verdict",
            "network_verdict",
@@ -413,10 +414,12 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None) -> Ve
     Reasons from :attr:`NetworkPropagation.summary <propcalc.networks.NetworkSummary>`:
     ``correlation depth`` (two inputs that merge, 1 - c <= 1e-3, or lose their correlation, the
     power law along repeated blocks otherwise), ``gradient growth`` (the input's gradient against
-    the output's, within GROWTH_LIMIT either way). The learning-rate ceiling, the finite-width laws
-    and the output layer are computed for plain stacks (:func:`propcalc.recommend` with
-    ``widths=`` and ``loss=``); here they are "not computed" and say so (``propcalc network
-    --check`` measures a network's finite-width deviations in seeded networks).
+    the output's, within GROWTH_LIMIT either way). The finite-width reasons come from
+    :func:`propcalc.training.network_finite_width` where the network is a chain of dense blocks
+    with widths and activations between them; for other networks they are "not computed" with
+    the block and the reason (``propcalc network --check`` measures a network's finite-width
+    deviations in seeded networks). The output layer is computed for plain stacks
+    (:func:`propcalc.recommend` with ``loss=``).
 
     Parameters
     ----------
@@ -471,11 +474,16 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None) -> Ve
     reasons = [corr, grow, _learning_rate(learning_rate) if learning_rate is not None else
                _not_computed("learning rate", "ceiling 2 / lambda_max",
                              plain + " or network_learning_rate_ceiling(network, loss=...)")]
-    reasons += [_not_computed(name, quantity, plain + "; propcalc network --check measures a "
-                              "network's finite-width deviations in seeded networks")
-                for name, quantity in (("finite-width spread", "sd of ln q at the top"),
-                                       ("finite-width gradient spread",
-                                        "sd of ln |gradient|^2 at the bottom"),
-                                       ("finite-width drift", "relative drift of typical q"))]
+    fw: FiniteWidth | None = None
+    why = None
+    try:
+        if result.network is None:
+            raise FiniteWidthUnsupportedError("the propagation carries no network")
+        fw = network_finite_width(result.network, result.q0)
+    except PropcalcError as err:  # FiniteWidthUnsupportedError names the block and the reason
+        why = (f"{err}; the finite-width laws cover chains of dense blocks with widths and "
+               "activations between them; propcalc network --check measures a network's "
+               "finite-width deviations in seeded networks")
+    reasons += _finite_width(fw, why)
     reasons.append(_not_computed("output layer", "expected initial loss above ln K", plain))
     return _assemble(n, reasons)
