@@ -126,3 +126,16 @@ def test_regenerating_weights_gives_the_same_networks(monkeypatch):
     stored = simulate(tanh, 1.4, 0.1, **kw).to_dict()
     monkeypatch.setattr(sim_mod, "_STORE_BYTES", 0)
     assert simulate(tanh, 1.4, 0.1, **kw).to_dict() == stored
+
+
+@pytest.mark.parametrize("q0,c0,needle", [
+    (-1.0, 0.5, "q0 must be finite and >= 0, got -1"),
+    (float("nan"), 0.5, "q0 must be finite and >= 0, got nan"),
+    (1.0, 2.0, r"c0 must be in \[-1, 1\], got 2.0"),
+    (1.0, float("nan"), r"c0 must be in \[-1, 1\], got nan"),
+])
+def test_trajectory_refuses_bad_inputs_naming_them(q0, c0, needle):
+    # the project's error contract (PREAMBLE): the field as the caller spelled it, the
+    # constraint and the value (these said 'q' and 'c', the maps' names, before)
+    with pytest.raises(propcalc.PropcalcError, match=needle):
+        mean_field_trajectory("tanh", 1.5, 0.05, 3, q0, c0)

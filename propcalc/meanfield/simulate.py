@@ -46,6 +46,7 @@ from typing import Any
 
 import numpy as np
 
+from .. import domains
 from ..activations.base import Activation
 from ..activations.resolver import resolve
 from ..errors import (
@@ -185,8 +186,34 @@ def mean_field_trajectory(act: Activation | str, sigma_w2: float, sigma_b2: floa
                           ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Layer-by-layer mean-field q_l, c_l (l = 0..L) and G_l = prod_{m>=l} chi_1(q_m).
 
+    q_l by the variance map, c_l by the correlation map (Poole et al. 2016), G_l the
+    product of chi_1 from layer l to the top (Schoenholz et al. 2017).
+
+    Parameters
+    ----------
+    act : str, Activation or formula
+        Resolved once here.
+    sigma_w2 : float
+        > 0.
+    sigma_b2 : float
+        >= 0.
+    depth : int
+        L >= 1.
+    q0 : float
+        The layer-0 pre-activation variance (the domain ``q`` of :mod:`propcalc.domains`).
+    c0 : float
+        The layer-0 correlation of the two inputs, in [-1, 1].
+    rule : QuadratureRule
+
+    Returns
+    -------
+    q, c, gradient : numpy.ndarray
+        Each of length L + 1; ``gradient[L] = 1``.
+
     Raises
     ------
+    InvalidParameterError
+        For an input outside its domain, naming it (``q0``, ``c0``, ...).
     ComputationError
         If the predicted variance leaves (0, 1e12] (an exploding network) or
         phi jumps (chi_1 infinite).
@@ -195,6 +222,8 @@ def mean_field_trajectory(act: Activation | str, sigma_w2: float, sigma_b2: floa
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
     n = check_int("depth", depth, 1)
+    q0 = float(domains.check("q", q0, "q0"))
+    c0 = float(domains.check("c", c0, "c0"))
     if act.has_jumps:
         raise ComputationError(f"{act.label} jumps: its mean-field chi_1 is infinite while the "
                                "back-propagated gradient is 0 almost surely; nothing to compare")
