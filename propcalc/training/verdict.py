@@ -46,6 +46,7 @@ from ..vocabulary import NEUTRAL_TOLERANCE
 from .finite_width import (DRIFT_LIMIT, GRADIENT_SPREAD_LIMIT, SPREAD_LIMIT, FiniteWidth,
                            finite_width)
 from .network_finite_width import FiniteWidthUnsupportedError, network_finite_width
+from .network_readout import network_readout
 
 __all__ = ["GROWTH_LIMIT", "MSE_OUTPUT_LIMIT", "REASONS", "WARNINGS", "Reason", "Verdict",
            "network_verdict",
@@ -408,7 +409,10 @@ def _assemble(depth: int, reasons: list[Reason]) -> Verdict:
                    "; ".join(parts), tuple(reasons))
 
 
-def network_verdict(result: NetworkPropagation, learning_rate: Any = None) -> Verdict:
+def network_verdict(result: NetworkPropagation, learning_rate: Any = None, *,
+                    loss: str | None = None, n_classes: int | None = None,
+                    output_margin: float | None = None,
+                    rule: QuadratureRule = DEFAULT_RULE) -> Verdict:
     """The same verdict for a network of blocks, from its propagation and summary.
 
     Reasons from :attr:`NetworkPropagation.summary <propcalc.networks.NetworkSummary>`:
@@ -418,8 +422,8 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None) -> Ve
     :func:`propcalc.training.network_finite_width` where the network is a chain of dense blocks
     with widths and activations between them; for other networks they are "not computed" with
     the block and the reason (``propcalc network --check`` measures a network's finite-width
-    deviations in seeded networks). The output layer is computed for plain stacks
-    (:func:`propcalc.recommend` with ``loss=``).
+    deviations in seeded networks). The output layer: with ``loss`` and a dense last block (the
+    readout, :mod:`propcalc.training.network_readout`), as for a plain plan.
 
     Parameters
     ----------
@@ -428,6 +432,9 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None) -> Ve
     learning_rate : LearningRateCeiling, optional
         From :func:`propcalc.training.network_learning_rate_ceiling` (dense, activation and
         residual blocks): the learning-rate reason then has its number.
+    loss : {"cross_entropy", "mse"}, optional
+    n_classes, output_margin : optional
+        Classes (default: the readout's width) and the allowed excess over ln K (1% of ln K).
 
     Returns
     -------
@@ -485,5 +492,8 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None) -> Ve
                "activations between them; propcalc network --check measures a network's "
                "finite-width deviations in seeded networks")
     reasons += _finite_width(fw, why)
-    reasons.append(_not_computed("output layer", "expected initial loss above ln K", plain))
+    out = network_readout(result, loss, n_classes)
+    reasons.append(_output(loss, out.n_classes, out.logit_variance, out.penultimate,
+                           output_margin, rule) if out.why is None else
+                   _not_computed("output layer", "expected initial loss above ln K", out.why))
     return _assemble(n, reasons)
