@@ -8,11 +8,14 @@ standard errors of the mean plus 2% for the O(depth / width) finite-width bias).
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 
+import propcalc
 from propcalc.training import UnsupportedKernelError, tangent_kernel
-from propcalc.training.network_ntk import network_tangent_kernel
+from propcalc.training.network_ntk import network_learning_rate_ceiling, network_tangent_kernel
 
 
 def test_a_plain_stack_written_as_blocks_gives_the_plain_kernel():
@@ -144,3 +147,22 @@ def test_network_plan_carries_the_learning_rate():
     assert pc.network_plan(desc).learning_rate_ceiling is None
     with pytest.raises(pc.PropcalcError, match="batch_size must be absent when no loss"):
         pc.network_plan(desc, batch_size=4)
+
+
+@pytest.mark.parametrize("q0,c0,needle", [
+    (-1.0, 0.3, "q0 must be > 0"), (float("nan"), 0.3, "q0 must be a finite real number"),
+    (1.0, 2.0, r"c0 must be in \[-1, 1\], got 2.0"), (1.0, 1e300, r"c0 must be in \[-1, 1\]"),
+    (1.0, float("nan"), "c0 must be a finite real number"),
+])
+def test_the_input_pair_is_checked_like_network_propagation(q0, c0, needle):
+    # the project's error contract (PREAMBLE): c0 = 2 gave a kernel, a NaN a message about an
+    # exploded signal at /blocks/0; now the refusal of propcalc.network_propagation
+    desc = {"input_width": 4, "blocks": [{"dense": {"sigma_w2": 1.5, "sigma_b2": 0.05,
+                                                    "width": 8}}, {"activation": "tanh"},
+                                         {"dense": {"sigma_w2": 1.5, "sigma_b2": 0.0,
+                                                    "width": 3}}]}
+    with pytest.raises(propcalc.PropcalcError, match=needle):
+        network_tangent_kernel(desc, q0, c0)
+    if math.isfinite(q0) and q0 > 0:
+        with pytest.raises(propcalc.PropcalcError, match="input_correlation must be in"):
+            network_learning_rate_ceiling(desc, loss="mse", batch_size=4, input_correlation=c0)

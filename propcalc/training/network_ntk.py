@@ -31,6 +31,7 @@ from .. import domains
 from ..errors import InvalidParameterError
 from ..networks.blocks import ActivationBlock, Dense, Repeat, Residual
 from ..networks.description import Network, network as read_network
+from ..networks.propagate import check_inputs
 from ..networks.rules import Step, Stream
 from ..networks.walk import trace
 from ..results import Result
@@ -147,6 +148,7 @@ def network_tangent_kernel(network: Any, q0: float = 1.0, c0: float = 0.0
         For another block kind, a missing width, or a stream whose law is unknown.
     """
     net = network if isinstance(network, Network) else read_network(network)
+    q0, c0, _, _ = check_inputs(q0, c0, 0.0, 0.0, False)
     tr = trace(net, q0, c0, derivative_pairs=True)
     carry = _Carry(iter(v.step for v in tr.visits), tr.start)
     theta = carry.run(net.blocks, (0.0, 0.0), "/blocks")
@@ -193,6 +195,7 @@ def network_learning_rate_ceiling(network: Any, *, loss: str, batch_size: int,
         raise InvalidParameterError("input_correlation", "a correlation or at most "
                                     f"{MAX_NETWORK_SAMPLES} samples of them",
                                     f"an array of shape {cs.shape}")
+    cs = domains.check_array("c", cs, "input_correlation")
     net = network if isinstance(network, Network) else read_network(network)
     kernels = [network_tangent_kernel(net, q0, float(c)) for c in cs]
     k = kernels[0].output_width
