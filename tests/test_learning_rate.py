@@ -166,7 +166,8 @@ def test_apply_plan_sets_the_readout_as_planned():
     ({"inputs": np.zeros((4, 16))}, "inputs must be rows that are not all zero"),
     ({"inputs": np.ones((3, 16))}, "inputs must be at least batch_size = 4 rows"),
     ({"input_correlation": np.zeros(1001)}, "input_correlation must be a correlation or at most"),
-    ({"input_correlation": 1.5}, r"c0 must be in \[-1, 1\]"),
+    ({"input_correlation": 1.5}, r"input_correlation must be in \[-1, 1\], got 1.5"),
+    ({"input_correlation": []}, "input_correlation must be a correlation or at most"),
 ])
 def test_bad_batches_are_refused_with_the_field_named(kwargs, match):
     with pytest.raises(PropcalcError, match=match):

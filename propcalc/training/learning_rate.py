@@ -367,10 +367,11 @@ def learning_rate_ceiling(act: Any, widths: Sequence[int], sigma_w2: float | Seq
                      "homogeneous phi with sigma_b2 = 0 and no biases)")
     else:
         cs = np.atleast_1d(np.asarray(input_correlation, dtype=float))
-        if cs.ndim != 1 or cs.size > MAX_CORRELATION_SAMPLES:
+        if cs.ndim != 1 or not 1 <= cs.size <= MAX_CORRELATION_SAMPLES:
             raise InvalidParameterError("input_correlation", "a correlation or at most "
                                         f"{MAX_CORRELATION_SAMPLES} samples of them",
                                         f"an array of shape {cs.shape}")
+        cs = domains.check_array("c", cs, "input_correlation")
         kern = tangent_kernel(act, ws, sigma_w2, sigma_b2, q0, cs, biases=biases, rule=rule)
         diag = kern.output_diagonal
         off = float(np.mean(kern.output_off_diagonal))
