@@ -7,10 +7,12 @@ Run by hand (not collected by pytest)::
         [--out docs/figures] [--lr-seeds 0] [--defaults-lrs 0.001 plan] ...
 
 What the README shows was run part by part on a loaded 2-core machine (one core's share
-or less): ``--parts map``; ``--parts lr ceilings --lr-seeds 0``; ``--parts defaults
---defaults-lrs 0.001``. CPU time measured: map 5.5 min, lr 3.2 min, defaults 4.4 min, the
-ceilings 2-3 min (the options trimmed to fit: one seed for the map and the sweeps, 300
-and 500 steps); the wall time was 3-5 times longer at a load average of 9-10.
+or less): ``--parts map``; ``--parts lr ceilings --lr-seeds 0 1`` (run as seed 0, then
+seed 1 merged: every run seeds its own draws, so the order does not matter); ``--parts
+defaults --defaults-lrs 0.001``. CPU time measured: map 5.5 min, lr 3.2 min per seed,
+defaults 4.4 min, the ceilings 2-3 min (the options trimmed to fit: one seed for the map, two
+for the sweeps, 300 and 500 steps); the wall time was 3-5 times longer at a load average of
+9-10.
 
 Each part trains plain multilayer perceptrons with torch (one thread, float32, seeded) and
 writes its numbers into ``OUT/training_results.json`` (the other parts' entries are kept)
@@ -461,20 +463,22 @@ def _draw_defaults(entry: dict[str, Any], path: Path) -> None:
 
 
 def _draw_lr(entry: dict[str, Any], path: Path) -> None:
-    keys = list(entry["plans"])
+    keys = list(dict.fromkeys(f"{r['activation']} {r['depth']}" for r in entry["runs"]))
     fig, axes = _figure(1, len(keys), (5.2 * len(keys), 4.2))
     for ax, key in zip(axes[0], keys):
         plan = entry["plans"][key]
         runs = [r for r in entry["runs"] if f"{r['activation']} {r['depth']}" == key]
-        lrs = sorted({r["lr"] for r in runs})
+        factors = sorted({r["lr_over_ceiling"] for r in runs})
+        lrs = [f * plan["learning_rate_ceiling"] for f in factors]
         means = []
-        for lr in lrs:
-            accs = [0.0 if r["train_acc"] is None else r["train_acc"]
-                    for r in runs if r["lr"] == lr]
+        for f, lr in zip(factors, lrs):
+            same = [r for r in runs if r["lr_over_ceiling"] == f]
+            accs = [0.0 if r["train_acc"] is None else r["train_acc"] for r in same]
             means.append(np.mean(accs))
-            for r, a in zip([r for r in runs if r["lr"] == lr], accs):
+            for r, a in zip(same, accs):
                 ax.scatter(lr, a, marker="x" if r["diverged"] else "o", c="tab:blue", s=25)
-        ax.plot(lrs, means, "-", color="tab:blue", lw=1, label="training accuracy (x: diverged)")
+        ax.plot(lrs, means, "-", color="tab:blue", lw=1,
+                label="training accuracy, line: mean of the seeds (x: diverged)")
         ax.axvline(plan["learning_rate_ceiling"], color="tab:red",
                    label=f"ceiling 2 / lambda_max = {plan['learning_rate_ceiling']:.3g}")
         ax.axvline(plan["catapult_limit"], color="tab:red", ls="--",
@@ -488,7 +492,7 @@ def _draw_lr(entry: dict[str, Any], path: Path) -> None:
         ax.set_ylabel(f"training accuracy after {entry['steps']} steps")
         ax.set_title(f"{plan['activation']}, depth {plan['depth']}, width {entry['width']}, "
                      f"propcalc plan, seeds {entry['seeds']}", fontsize=9)
-        ax.legend(fontsize=7, loc="lower left")
+        ax.legend(fontsize=7, loc="best", framealpha=0.7)
     _save(fig, path)
 
 
