@@ -119,3 +119,28 @@ def test_max_pooling_second_moment_against_order_statistics():
                             0.0, np.inf)[0] * 2.0
     p = r.simulation.positions[3]
     assert abs(r.q[3] - second) <= 3 * p.q_se + 0.05 * second
+
+
+def test_a_grid_beyond_the_work_budget_falls_back_to_the_fewest_positions(monkeypatch):
+    # two 3x3 convolutions and three 2x2 max poolings: the default grid is 16 x 16; with the
+    # budget set between its work and the 8 x 8 grid's, the simulation takes 8 x 8 (each pooling
+    # window still sees distinct positions) instead of giving no number
+    import importlib
+
+    simulate = importlib.import_module("propcalc.networks.simulate")
+
+    conv = {"convolution": {"sigma_w2": 2.0, "sigma_b2": 0.0, "kernel": [3, 3], "width": 16}}
+    pool = {"pooling": {"kind": "max", "window": [2, 2]}}
+    desc = {"input_width": 8, "blocks": [conv, {"activation": "relu"}, pool, pool, conv,
+                                         {"activation": "relu"}, pool]}
+    net = network(desc)
+    big, small = default_grid(net), default_grid(net, smallest=True)
+    assert big == (16, 16) and small == (8, 8)
+    work_big = simulate.simulation_work(net, 256, 4, 256) * 6
+    work_small = simulate.simulation_work(net, 256, 4, 64) * 6
+    monkeypatch.setattr(simulate, "MAX_NETWORK_SIMULATION_WORK", (work_big + work_small) / 2)
+    r = propcalc.network_propagation(desc, 1.0, 0.0)
+    assert r.simulation is not None and r.simulation.grid == small
+    assert all(v is not None for v in r.q)
+    with pytest.raises(propcalc.InvalidParameterError, match="multiply-adds"):
+        simulate.measure_network(desc, grid=[16, 16], repetitions=6)  # a given grid is kept

@@ -14,7 +14,9 @@ grid there to sizes ``k`` with product equal to that number (as balanced as
 possible); the input grid is ``k * S``. Without such a block, every dimension
 gets ``S * m`` positions with ``m`` the smallest number that leaves at least two
 positions after the last stride and covers the largest kernel or window, doubled
-while the grid stays within :data:`SMALL_GRID` positions. Input positions are
+while the grid stays within :data:`SMALL_GRID` positions; when that is beyond the
+simulation's work budget, ``m`` falls to the smallest number that gives every
+pooling window distinct positions. Input positions are
 exchangeable and convolutions pad circularly, so the law at one position does
 not depend on the grid's size: a larger grid only adds positions to average over.
 """
@@ -57,18 +59,22 @@ class _Walk:
         self.dims: int | None = None
         self.stride: list[int] = []
         self.reach: list[int] = []
+        self.window: list[int] = []  # the largest pooling window, in input positions
         self.pin: tuple[int, list[int]] | None = None  # (positions, strides before the pin)
         self.total = 1  # product of the strides so far, over all dimensions
 
-    def spatial(self, sizes: tuple[int, ...], stride: tuple[int, ...]) -> None:
+    def spatial(self, sizes: tuple[int, ...], stride: tuple[int, ...], pool: bool) -> None:
         if self.dims is None:
             self.dims = len(sizes)
             self.stride, self.reach = [1] * self.dims, [1] * self.dims
+            self.window = [1] * self.dims
         if len(sizes) != self.dims:
             return  # the simulation names the mismatch when it meets the block
         for d, (k, s) in enumerate(zip(sizes, stride if len(stride) == len(sizes)
                                        else stride * len(sizes))):
             self.reach[d] = max(self.reach[d], k * self.stride[d])
+            if pool:
+                self.window[d] = max(self.window[d], k * self.stride[d])
             if self.stride[d] * s <= MAX_GRID_SIZE:
                 self.stride[d] *= s
 
@@ -82,17 +88,22 @@ class _Walk:
             elif isinstance(b, Residual):
                 self.blocks(b.branch)
             elif isinstance(b, Convolution):
-                self.spatial(b.kernel, b.stride)
+                self.spatial(b.kernel, b.stride, False)
             elif isinstance(b, Pooling) and b.window is not None:
-                self.spatial(b.window, b.stride or b.window)
+                self.spatial(b.window, b.stride or b.window, True)
             elif isinstance(b, Pooling):
                 self.pin = (int(b.positions or 1), list(self.stride))
             elif isinstance(b, Attention):
                 self.pin = (b.tokens, list(self.stride))
 
 
-def default_grid(net: Network) -> tuple[int, ...]:
+def default_grid(net: Network, smallest: bool = False) -> tuple[int, ...]:
     """The input grid for a simulation of ``net`` (see the module docstring).
+
+    ``smallest``: without a pinning block, the fewest positions that still give every pooling
+    window distinct positions at its resolution (a kernel wider than the grid wraps around
+    circularly: its taps still have independent weights); what a simulation falls back to when
+    the default grid is beyond its work budget.
 
     Examples
     --------
@@ -113,7 +124,8 @@ def default_grid(net: Network) -> tuple[int, ...]:
         positions, stride = walk.pin
         sizes = _balanced(positions, walk.dims)
         return tuple(min(MAX_GRID_SIZE, k * s) for k, s in zip(sizes, stride))
-    m = max([2] + [math.ceil(r / s) for r, s in zip(walk.reach, walk.stride)])
-    while math.prod(s * 2 * m for s in walk.stride) <= SMALL_GRID:
+    reach = walk.window if smallest else walk.reach
+    m = max([1 if smallest else 2] + [math.ceil(r / s) for r, s in zip(reach, walk.stride)])
+    while not smallest and math.prod(s * 2 * m for s in walk.stride) <= SMALL_GRID:
         m *= 2
     return tuple(min(MAX_GRID_SIZE, s * m) for s in walk.stride)

@@ -321,6 +321,10 @@ def measure_network(description: Any, *, q0: float = 1.0, c0: float = 0.5,
     shape = _grid(net, grid)
     n_pos = int(np.prod(shape))
     work = simulation_work(net, n, n_inputs, n_pos) * reps
+    if work > MAX_NETWORK_SIMULATION_WORK and grid is None:  # the fewest positions that fit
+        shape = default_grid(net, smallest=True)
+        n_pos = int(np.prod(shape))
+        work = simulation_work(net, n, n_inputs, n_pos) * reps
     if work > MAX_NETWORK_SIMULATION_WORK:
         raise InvalidParameterError("width", f"small enough for at most "
                                              f"{MAX_NETWORK_SIMULATION_WORK:g} multiply-adds "
