@@ -418,7 +418,7 @@ def _elu_pair_mpmath(alpha, lam, c, q):
 
 
 @pytest.mark.parametrize("name", ["elu", "selu"])
-@pytest.mark.parametrize("q", [1e-10, 1e-20, 1e-40, 1e-100, 1e-200])
+@pytest.mark.parametrize("q", [1e-2, 1e-4, 1e-6, 1e-10, 1e-20, 1e-40, 1e-100, 1e-200])
 def test_correlation_map_at_tiny_variance(name, q):
     # issue 11: correlation_map(elu, [0.5], 1.5, 0, q=1e-40) returned 0.25 (the limit is 0.5:
     # elu is linear near 0); selu was off from q ~ 1e-24. Reference: mpmath at 60 digits;

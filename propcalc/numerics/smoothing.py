@@ -213,6 +213,10 @@ def _eval_pieces(pieces: Sequence[Piece], x: Array) -> Array:
     return out
 
 
+#: |a m| + |a| s below which C exp(a x) - C is smoothed in the cancellation-free form.
+EXPM1_REGION = 1e-2
+
+
 def _interval_mass(t: Array, h: Array) -> Array:
     """Phi(t) - Phi(t - h), keeping its relative digits for small h.
 
@@ -287,11 +291,15 @@ def _smooth_pieces(pieces: tuple[Piece, ...]) -> SmoothFn:
             for coef, rate in pairs:
                 plain = (_piece_term(Term(coef, 0, rate), p.lo, p.hi, bd)
                          + _piece_term(Term(-coef), p.lo, p.hi, bd))
-                # where exp(rate X) is near 1 on the mass, the two terms cancel: the exact form
-                small = (np.abs(rate * bd.m) + np.abs(rate) * bd.s) < 1.0
+                # where exp(rate X) is within EXPM1_REGION of 1 on the mass the two terms cancel
+                # (losing ~1e-16 / EXPM1_REGION relative at its edge): the exact form there
+                small = (np.abs(rate * bd.m) + np.abs(rate) * bd.s) < EXPM1_REGION
                 if np.any(small):
+                    plain = np.array(plain, dtype=float)
+                    sub = _Boundaries(np.broadcast_to(bd.m, small.shape)[small],
+                                      np.broadcast_to(bd.s, small.shape)[small])
                     with np.errstate(over="ignore", invalid="ignore"):
-                        plain = np.where(small, _expm1_term(coef, rate, p.lo, p.hi, bd), plain)
+                        plain[small] = _expm1_term(coef, rate, p.lo, p.hi, sub)
                 total += plain
         return total if pos else np.where(s > 0.0, total, _eval_pieces(pieces, m))
     return smooth
