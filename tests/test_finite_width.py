@@ -265,3 +265,13 @@ def test_varying_widths_relu_bookkeeping_and_sampling():
     se_mean = sd / math.sqrt(reps)
     want = math.log(r.q_typical[-1])
     assert abs(logs.mean() - want) <= 3 * se_mean + 0.1 * abs(want)
+
+
+def test_variances_beyond_the_documented_q_domain_are_refused_by_name():
+    # the project's error contract (PREAMBLE) and propcalc.domains' q range: q = 1e300 gave
+    # gradient_noise 3.9e150 with an overflow warning, finite_width's q0 = 1e300 a refusal
+    # naming 'q'
+    with pytest.raises(InvalidParameterError, match=r"q must be 0 or in \[1e-200, 1e12\], got 1e\+300"):
+        layer_fluctuations("tanh", 1e300, 1.5, 0.05)
+    with pytest.raises(InvalidParameterError, match=r"q0 must be 0 or in \[1e-200, 1e12\]"):
+        finite_width("tanh", 1.5, 0.05, [8, 8, 8], 1e300)

@@ -271,6 +271,7 @@ def layer_fluctuations(act: Any, q: Any, sigma_w2: float, sigma_b2: float = 0.0,
     qa = np.atleast_1d(np.asarray(q, dtype=float))
     if qa.ndim != 1 or not np.all(np.isfinite(qa)) or np.any(qa <= 0):
         raise InvalidParameterError("q", "finite and > 0", q)
+    qa = domains.check_array("q", qa, "q")
     co = _coefficients(act, qa, sw, sb, rule)
     return LayerFluctuations(tuple(qa.tolist()), tuple(co["v"].tolist()),
                              tuple((co["v"] / co["V"] ** 2).tolist()), tuple(co["kg"].tolist()))
@@ -384,7 +385,7 @@ def finite_width(act: Any, sigma_w2: float, sigma_b2: float, widths: Sequence[in
     sw = check_positive("sigma_w2", sigma_w2)
     sb = check_nonnegative("sigma_b2", sigma_b2)
     ws = check_widths(widths)
-    return chain_laws([(act, sw, sb)] * (len(ws) - 1), ws, check_positive("q0", q0), rule)
+    return chain_laws([(act, sw, sb)] * (len(ws) - 1), ws, float(domains.check("q", check_positive("q0", q0), "q0")), rule)
 
 
 def check_widths(widths: Any) -> list[int]:

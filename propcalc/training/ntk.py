@@ -39,6 +39,7 @@ from typing import Any
 
 import numpy as np
 
+from .. import domains
 from ..activations.base import Activation
 from ..activations.resolver import resolve
 from ..errors import InvalidParameterError, PropcalcError, check_int, check_nonnegative, check_positive
@@ -200,7 +201,7 @@ def tangent_kernel(act: Any, widths: Sequence[int], sigma_w2: float | Sequence[f
             "E[phi'(u) phi'(u)] is infinite: no learning-rate ceiling from it")
     sw = layer_scales("sigma_w2", sigma_w2, n_layers, positive=True)
     sb = layer_scales("sigma_b2", sigma_b2, n_layers, positive=False)
-    q0f = check_positive("q0", q0)
+    q0f = float(domains.check("q", check_positive("q0", q0), "q0"))
     cs = _correlations(c0)
     one = 1.0 if biases else 0.0
     # layer 1 (the input is data): Theta^1 = x.x' + 1, k^1 = sigma_w2 q0 c0 + sigma_b2
