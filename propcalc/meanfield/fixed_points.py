@@ -128,18 +128,22 @@ def _grid_index(q: Array, up: bool) -> Array:
     return (np.ceil(k) if up else np.floor(k)).astype(int)
 
 
-def _few(fn, act: Activation, q: Array, rule: QuadratureRule) -> Array:  # type: ignore[no-untyped-def]
+def _few(fn, act: Activation, q: Array, rule: QuadratureRule, **kw) -> Array:  # type: ignore[no-untyped-def]
     """A moment of :mod:`propcalc.meanfield.maps` at a few q, each by the scalar fast path."""
     qa = np.asarray(q, dtype=float)
     if qa.size > _FEW:
-        return np.asarray(fn(act, qa, rule), dtype=float)
-    return np.array([float(fn(act, float(x), rule)) for x in qa.ravel()]).reshape(qa.shape)
+        return np.asarray(fn(act, qa, rule, **kw), dtype=float)
+    return np.array([float(fn(act, float(x), rule, **kw)) for x in qa.ravel()]).reshape(qa.shape)
 
 
-def _gap(act: Activation, rule: QuadratureRule):  # type: ignore[no-untyped-def]
-    """g(q) = sigma_w2 E[phi(sqrt(q) z)^2] + sigma_b2 - q, elementwise in (q, sw, sb)."""
+def _gap(act: Activation, rule: QuadratureRule, checked: bool = True):  # type: ignore[no-untyped-def]
+    """g(q) = sigma_w2 E[phi(sqrt(q) z)^2] + sigma_b2 - q, elementwise in (q, sw, sb).
+
+    ``checked=False`` skips the quadrature's tail check (same values): for the polish
+    inside brackets of the scan grid, whose points were all checked by the scan.
+    """
     def gap(q: Array, sw: Array, sb: Array) -> Array:
-        return sw * _few(second_moment, act, q, rule) + sb - q
+        return sw * _few(second_moment, act, q, rule, check_tails=checked) + sb - q
     return gap
 
 
@@ -205,12 +209,14 @@ def _solve_block(act: Activation, sw: Array, sb: Array, q_input: Array,
     rows, cols = roots.grid_brackets(g, resolved)
     keep = ~neutral[rows]
     rows, cols = rows[keep], cols[keep]
-    polished = roots.find_roots(gap, grid[cols], grid[cols + 1], (sw[rows], sb[rows]))
+    # the polish stays inside the scanned grid, whose every point passed the tail check
+    inner = _gap(act, rule, checked=False)
+    polished = roots.find_roots(inner, grid[cols], grid[cols + 1], (sw[rows], sb[rows]))
     found += zip(rows.tolist(), polished.tolist())
     for i, c in zip(*roots.grid_zeros(g, resolved)):
         if not neutral[i]:
             def scalar(q: float, i: int = int(i)) -> float:
-                return float(gap(np.float64(q), sw[i], sb[i]))
+                return float(inner(np.float64(q), sw[i], sb[i]))
             a, b = float(grid[c - 1]), float(grid[c + 1])
             fa, fb = scalar(a), scalar(b)
             found.append((int(i), roots.brent(scalar, a, b, fa, fb) if fa * fb < 0
@@ -218,7 +224,7 @@ def _solve_block(act: Activation, sw: Array, sb: Array, q_input: Array,
     for i, c, side in zip(*roots.grid_dips(grid, g, resolved)):
         if not neutral[i]:
             def scalar(q: float, i: int = int(i)) -> float:
-                return float(gap(np.float64(q), sw[i], sb[i]))
+                return float(inner(np.float64(q), sw[i], sb[i]))
             found += [(int(i), r) for r in roots.hidden_pair(
                 scalar, float(grid[c - 1]), float(grid[c + 1]), float(side), float(g[i, c]))]
 

@@ -62,11 +62,18 @@ def first_moment(act: Activation, q: Any, rule: QuadratureRule = DEFAULT_RULE) -
                                 what=f"{act.label}(x)")
 
 
-def second_moment(act: Activation, q: Any, rule: QuadratureRule = DEFAULT_RULE) -> Array:
-    """E[phi(sqrt(q) z)^2], vectorised over q."""
+def second_moment(act: Activation, q: Any, rule: QuadratureRule = DEFAULT_RULE, *,
+                  check_tails: bool = True) -> Array:
+    """E[phi(sqrt(q) z)^2], vectorised over q.
+
+    ``check_tails=False`` skips the truncation check of
+    :func:`~propcalc.numerics.quadrature.gaussian_expectation` (the value is the same), for
+    callers that already checked the range of q they evaluate in (a root polish inside a
+    scanned bracket).
+    """
     rule = _scaled(act, rule)
     return gaussian_expectation(lambda x: act.value(x) ** 2, _q_array(q), act.breakpoints,
-                                rule=rule, what=f"{act.label}(x)^2")
+                                rule=rule, what=f"{act.label}(x)^2", check_tails=check_tails)
 
 
 def derivative_second_moment(act: Activation, q: Any, rule: QuadratureRule = DEFAULT_RULE) -> Array:

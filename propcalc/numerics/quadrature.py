@@ -224,9 +224,10 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
     # zero-width panels (coinciding edges) put weight-0 nodes on breakpoints: ignore them
     f = np.where(w > 0, f, 0.0)
     _check_finite(f, x, what)
-    out = np.sum(w * f, axis=-1)
+    wf = w * f
+    out = np.sum(wf, axis=-1)
     if check_tails:
-        _check_tails(fn, mean_b, q_b, np.max(np.abs(f), axis=-1), np.sum(np.abs(w * f), axis=-1),
+        _check_tails(fn, mean_b, q_b, np.max(np.abs(f), axis=-1), np.sum(np.abs(wf), axis=-1),
                      rule, what, with_z)
     return out
 
