@@ -267,3 +267,25 @@ def test_network_verdict_in_the_cli_and_the_service():
     for name, body in (("NetworkAnalysis", resp.get_json()), ("InitPlan", plan)):
         jsonschema.Draft202012Validator({**doc, "$ref": f"#/components/schemas/{name}"}
                                         ).validate(body)
+
+
+@pytest.mark.parametrize("kwargs,needle", [
+    ({"depth": 0}, "depth must be an integer >= 1, got 0"),
+    ({"depth": float("nan")}, "depth must be an integer >= 1, got nan"),
+    ({"depth": 5, "widths": [8, 8]}, "widths must be 5 widths"),
+    ({"depth": 5, "loss": "hinge"}, "loss must be one of mse, cross_entropy"),
+    ({"depth": 5, "loss": "cross_entropy", "n_classes": 1}, "n_classes must be an integer in"),
+    ({"depth": 5, "loss": "mse", "logit_variance": float("nan")},
+     "logit_variance must be a finite real number"),
+    ({"depth": 5, "loss": "cross_entropy", "n_classes": 10, "logit_variance": 1.0,
+      "output_margin": float("nan")}, "output_margin must be a finite real number"),
+])
+def test_trainability_refuses_bad_arguments_by_name(kwargs, needle):
+    # the project's error contract (PREAMBLE): depth 0 read '0 layers is within ...', a NaN
+    # depth raised TypeError, loss 'hinge' and n_classes 1 were ignored, a NaN logit variance
+    # failed the output layer with 'nan'
+    p = pc.propagation("tanh", 1.5, 0.05)
+    with pytest.raises(pc.PropcalcError, match=needle):
+        trainability("tanh", p, **kwargs)
+    with pytest.raises(pc.PropcalcError, match="propagation must be a Propagation"):
+        trainability("tanh", "tanh", 5)

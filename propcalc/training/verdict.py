@@ -33,9 +33,10 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+from .. import domains
 from ..activations.base import Activation
 from ..activations.resolver import resolve
-from ..errors import PropcalcError
+from ..errors import InvalidParameterError, PropcalcError, check_nonnegative, check_positive
 from ..meanfield.maps import second_moment
 from ..meanfield.report import Propagation
 from ..networks.propagate import NetworkPropagation
@@ -45,6 +46,7 @@ from ..variants.output_layer import initial_loss, output_layer_scale
 from ..vocabulary import NEUTRAL_TOLERANCE
 from .finite_width import (DRIFT_LIMIT, GRADIENT_SPREAD_LIMIT, SPREAD_LIMIT, FiniteWidth,
                            finite_width)
+from .learning_rate import LOSSES
 from .network_finite_width import FiniteWidthUnsupportedError, network_finite_width
 from .network_readout import network_readout
 
@@ -315,6 +317,26 @@ def _output(loss: str | None, n_classes: int | None, logit_variance: float | Non
                   "common practice, no source)")
 
 
+def _check_arguments(propagation: Any, depth: Any, widths: Any, loss: Any, n_classes: Any,
+                     logit_variance: Any, output_margin: Any) -> int:
+    """Refuse what trainability cannot use, naming the argument; return the depth."""
+    if not isinstance(propagation, Propagation):
+        raise InvalidParameterError("propagation", "a Propagation (propcalc.propagation(...))",
+                                    type(propagation).__name__)
+    n = int(domains.check("depth", depth))
+    if widths is not None and (isinstance(widths, (str, bytes)) or len(widths) != n):
+        raise InvalidParameterError("widths", f"{n} widths, of layers 1..{n}", widths)
+    if loss is not None and loss not in LOSSES:
+        raise InvalidParameterError("loss", f"one of {', '.join(LOSSES)}", loss)
+    if n_classes is not None and loss == "cross_entropy":  # mse: any number of outputs
+        domains.check("n_classes", n_classes)
+    if logit_variance is not None:
+        check_nonnegative("logit_variance", logit_variance)
+    if output_margin is not None:
+        check_positive("output_margin", output_margin)
+    return n
+
+
 def trainability(act: Activation | str, propagation: Propagation, depth: int, *,
                  widths: Sequence[int] | None = None, widths_missing: str | None = None,
                  learning_rate: Any = None, loss: str | None = None,
@@ -351,6 +373,8 @@ def trainability(act: Activation | str, propagation: Propagation, depth: int, *,
     Verdict
     """
     act = resolve(act)
+    depth = _check_arguments(propagation, depth, widths, loss, n_classes, logit_variance,
+                             output_margin)
     reasons = [_correlation(propagation, depth), _growth(propagation, depth),
                _learning_rate(learning_rate)]
     fw: FiniteWidth | None = None
