@@ -289,3 +289,19 @@ def test_trainability_refuses_bad_arguments_by_name(kwargs, needle):
         trainability("tanh", p, **kwargs)
     with pytest.raises(pc.PropcalcError, match="propagation must be a Propagation"):
         trainability("tanh", "tanh", 5)
+
+
+def test_network_verdict_refuses_bad_arguments_by_name():
+    # the project's error contract (PREAMBLE): a NaN or negative margin failed the output layer
+    # silently, a wrong type raised AttributeError
+    desc = {"input_width": 4, "blocks": [
+        {"dense": {"sigma_w2": 1.5, "sigma_b2": 0.05, "width": 8}}, {"activation": "tanh"},
+        {"dense": {"sigma_w2": 1.5, "sigma_b2": 0.0, "width": 3}}]}
+    r = pc.network_propagation(desc, 1.0, 0.3)
+    for kwargs, needle in (({"output_margin": float("nan")}, "output_margin must be a finite"),
+                           ({"output_margin": -1.0}, "output_margin must be > 0"),
+                           ({"learning_rate": "x"}, "learning_rate must be a LearningRate")):
+        with pytest.raises(pc.PropcalcError, match=needle):
+            pc.network_verdict(r, loss="cross_entropy", n_classes=3, **kwargs)
+    with pytest.raises(pc.PropcalcError, match="result must be a NetworkPropagation"):
+        pc.network_verdict("x")

@@ -318,7 +318,7 @@ def _output(loss: str | None, n_classes: int | None, logit_variance: float | Non
 
 
 def _check_arguments(propagation: Any, depth: Any, widths: Any, loss: Any, n_classes: Any,
-                     logit_variance: Any, output_margin: Any) -> int:
+                     logit_variance: Any, learning_rate: Any, output_margin: Any) -> int:
     """Refuse what trainability cannot use, naming the argument; return the depth."""
     if not isinstance(propagation, Propagation):
         raise InvalidParameterError("propagation", "a Propagation (propcalc.propagation(...))",
@@ -332,9 +332,17 @@ def _check_arguments(propagation: Any, depth: Any, widths: Any, loss: Any, n_cla
         domains.check("n_classes", n_classes)
     if logit_variance is not None:
         check_nonnegative("logit_variance", logit_variance)
+    _check_options(learning_rate, output_margin)
+    return n
+
+
+def _check_options(learning_rate: Any, output_margin: Any) -> None:
+    """The options both verdicts take: a ceiling object and a positive margin."""
+    if learning_rate is not None and not hasattr(learning_rate, "learning_rate_ceiling"):
+        raise InvalidParameterError("learning_rate", "a LearningRateCeiling (the plan's "
+                                    "learning_rate_details)", type(learning_rate).__name__)
     if output_margin is not None:
         check_positive("output_margin", output_margin)
-    return n
 
 
 def trainability(act: Activation | str, propagation: Propagation, depth: int, *,
@@ -374,7 +382,7 @@ def trainability(act: Activation | str, propagation: Propagation, depth: int, *,
     """
     act = resolve(act)
     depth = _check_arguments(propagation, depth, widths, loss, n_classes, logit_variance,
-                             output_margin)
+                             learning_rate, output_margin)
     reasons = [_correlation(propagation, depth), _growth(propagation, depth),
                _learning_rate(learning_rate)]
     fw: FiniteWidth | None = None
@@ -464,6 +472,10 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None, *,
     -------
     Verdict
     """
+    if not isinstance(result, NetworkPropagation):
+        raise InvalidParameterError("result", "a NetworkPropagation (propcalc."
+                                    "network_propagation(...))", type(result).__name__)
+    _check_options(learning_rate, output_margin)
     s = result.summary
     n = len(result.q) - 1
     corr_findings = [f for f in s.findings if f.topic == "correlation"]
