@@ -114,9 +114,10 @@ def _with_verdict(plan: InitPlan, act: Activation, plan_layers: Sequence[Layer |
     return dataclasses.replace(plan, verdict=verdict)
 
 
-def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int] | None = None,
-              layers: Sequence[Layer] | None = None, distribution: str = "normal",
-              target: str = "auto", sigma_b2: float | None = None, q_star: float | None = None,
+def recommend(act: Activation | str, depth: int | None = None, *,
+              widths: Sequence[int] | None = None, layers: Sequence[Layer] | None = None,
+              distribution: str = "normal", target: str = "auto",
+              sigma_b2: float | None = None, q_star: float | None = None,
               q_input: float = 1.0, loss: str | None = None, n_classes: int | None = None,
               batch_size: int | None = None, momentum: float = 0.0,
               input_correlation: float | Sequence[float] | None = None, inputs: Any = None,
@@ -125,7 +126,8 @@ def recommend(act: Activation, depth: int | None = None, *, widths: Sequence[int
 
     Parameters
     ----------
-    act : Activation
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
     depth : int, optional
         Number of weight layers; implied by ``widths`` or ``layers`` if given.
     widths : sequence of int, optional
