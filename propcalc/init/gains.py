@@ -74,12 +74,13 @@ def _finite_inverse_sqrt(value: float, what: str, act: Activation) -> float:
     return 1.0 / math.sqrt(value)
 
 
-def gains(act: Activation, rule: QuadratureRule = DEFAULT_RULE) -> Gains:
+def gains(act: Activation | str, rule: QuadratureRule = DEFAULT_RULE) -> Gains:
     """Forward and backward gains, and what a common fixed gain implies.
 
     Parameters
     ----------
-    act : Activation
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
 
     Returns
     -------

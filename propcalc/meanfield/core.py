@@ -226,13 +226,14 @@ def check_axis(name: str, values: Any, positive: bool) -> Array:
     return arr
 
 
-def propagation_arrays(act: Activation, sigma_w2: Any, sigma_b2: Any, q_input: float = 1.0,
+def propagation_arrays(act: Activation | str, sigma_w2: Any, sigma_b2: Any, q_input: float = 1.0,
                        rule: QuadratureRule = DEFAULT_RULE) -> dict[str, Array]:
     """The quantities of :func:`propcalc.propagation` for arrays of (sigma_w2, sigma_b2) pairs.
 
     Parameters
     ----------
-    act : Activation
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
     sigma_w2, sigma_b2 : array_like
         Broadcast together; sigma_w2 > 0, sigma_b2 >= 0, finite.
     q_input : float
