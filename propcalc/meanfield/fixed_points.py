@@ -211,7 +211,12 @@ def _solve_block(act: Activation, sw: Array, sb: Array, q_input: Array,
     rows, cols = rows[keep], cols[keep]
     # the polish stays inside the scanned grid, whose every point passed the tail check
     inner = _gap(act, rule, checked=False)
-    polished = roots.find_roots(inner, grid[cols], grid[cols + 1], (sw[rows], sb[rows]))
+    # many brackets: their ends' values are the scan's (the same sum, sw m2 + sb - q); a few
+    # go to Brent one by one, which re-evaluates its ends by the scalar path
+    many = rows.size > roots.SCALAR_LIMIT
+    polished = roots.find_roots(inner, grid[cols], grid[cols + 1], (sw[rows], sb[rows]),
+                                fa=g[rows, cols] if many else None,
+                                fb=g[rows, cols + 1] if many else None)
     found += zip(rows.tolist(), polished.tolist())
     for i, c in zip(*roots.grid_zeros(g, resolved)):
         if not neutral[i]:

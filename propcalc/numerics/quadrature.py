@@ -222,7 +222,8 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
         else:
             f = np.asarray(fn(x), dtype=float)
     # zero-width panels (coinciding edges) put weight-0 nodes on breakpoints: ignore them
-    f = np.where(w > 0, f, 0.0)
+    if not np.all(w > 0):
+        f = np.where(w > 0, f, 0.0)
     _check_finite(f, x, what)
     wf = w * f
     out = np.sum(wf, axis=-1)
