@@ -67,8 +67,9 @@ from ..results import OMIT, Result
 from .ntk import layer_scales, tangent_kernel
 
 __all__ = ["FINITE_WIDTH_NOTE", "LOSSES", "MAX_BATCH_SIZE", "MAX_CORRELATION_SAMPLES",
-           "MAX_INPUT_ROWS", "MAX_SAMPLED_CLASSES", "ceiling_from_kernel", "RECOMMENDED_FRACTION", "LearningRateCeiling",
-           "learning_rate_ceiling", "output_hessian"]
+           "MAX_INPUT_ROWS", "MAX_SAMPLED_CLASSES", "RECOMMENDED_FRACTION", "LearningRateCeiling",
+           "ceiling_from_kernel", "correlation_samples", "learning_rate_ceiling",
+           "output_hessian"]
 
 #: most rows of an explicit batch of inputs (it forms N x N matrices)
 MAX_INPUT_ROWS = 2048
@@ -260,6 +261,21 @@ def _kernel_matrix(cos: np.ndarray, diag: np.ndarray, ratio_at: Any) -> np.ndarr
     return mat
 
 
+def correlation_samples(input_correlation: Any, limit: int) -> np.ndarray:
+    """``input_correlation`` as a 1-D array of 1 to ``limit`` correlations in [-1, 1].
+
+    Raises
+    ------
+    InvalidParameterError
+        Naming ``input_correlation``, for another shape or size, or a value outside [-1, 1].
+    """
+    cs = np.atleast_1d(np.asarray(input_correlation, dtype=float))
+    if cs.ndim != 1 or not 1 <= cs.size <= limit:
+        raise InvalidParameterError("input_correlation", f"a correlation or at most {limit} "
+                                    "samples of them", f"an array of shape {cs.shape}")
+    return domains.check_array("c", cs, "input_correlation")
+
+
 def learning_rate_ceiling(act: Any, widths: Sequence[int], sigma_w2: float | Sequence[float],
                           sigma_b2: float | Sequence[float] = 0.0, *, loss: str,
                           batch_size: int, n_classes: int | None = None, q0: float = 1.0,
@@ -366,12 +382,7 @@ def learning_rate_ceiling(act: Any, widths: Sequence[int], sigma_w2: float | Seq
                      "pre-activations would have at the mean square (exact for positively "
                      "homogeneous phi with sigma_b2 = 0 and no biases)")
     else:
-        cs = np.atleast_1d(np.asarray(input_correlation, dtype=float))
-        if cs.ndim != 1 or not 1 <= cs.size <= MAX_CORRELATION_SAMPLES:
-            raise InvalidParameterError("input_correlation", "a correlation or at most "
-                                        f"{MAX_CORRELATION_SAMPLES} samples of them",
-                                        f"an array of shape {cs.shape}")
-        cs = domains.check_array("c", cs, "input_correlation")
+        cs = correlation_samples(input_correlation, MAX_CORRELATION_SAMPLES)
         kern = tangent_kernel(act, ws, sigma_w2, sigma_b2, q0, cs, biases=biases, rule=rule)
         diag = kern.output_diagonal
         off = float(np.mean(kern.output_off_diagonal))

@@ -35,7 +35,7 @@ from ..networks.propagate import check_inputs
 from ..networks.rules import Step, Stream
 from ..networks.walk import trace
 from ..results import Result
-from .learning_rate import LOSSES, LearningRateCeiling, ceiling_from_kernel
+from .learning_rate import LOSSES, LearningRateCeiling, ceiling_from_kernel, correlation_samples
 from .ntk import UnsupportedKernelError
 
 __all__ = ["MAX_NETWORK_SAMPLES", "NetworkTangentKernel", "network_learning_rate_ceiling",
@@ -190,12 +190,7 @@ def network_learning_rate_ceiling(network: Any, *, loss: str, batch_size: int,
         raise InvalidParameterError("loss", f"one of {', '.join(LOSSES)}", loss)
     b = domains.check("batch_size", batch_size)
     mu = domains.check("momentum", momentum)
-    cs = np.atleast_1d(np.asarray(input_correlation, dtype=float))
-    if cs.ndim != 1 or not 1 <= cs.size <= MAX_NETWORK_SAMPLES:
-        raise InvalidParameterError("input_correlation", "a correlation or at most "
-                                    f"{MAX_NETWORK_SAMPLES} samples of them",
-                                    f"an array of shape {cs.shape}")
-    cs = domains.check_array("c", cs, "input_correlation")
+    cs = correlation_samples(input_correlation, MAX_NETWORK_SAMPLES)
     net = network if isinstance(network, Network) else read_network(network)
     kernels = [network_tangent_kernel(net, q0, float(c)) for c in cs]
     k = kernels[0].output_width
