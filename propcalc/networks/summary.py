@@ -33,13 +33,14 @@ from .walk import Trace
 __all__ = ["DISTANCE", "DECORRELATED", "GRADIENT_FACTOR", "SIGNAL_FACTOR", "Finding",
            "DepthLaw", "NetworkSummary", "summarise"]
 
-#: Two inputs count as indistinguishable when 1 - c is at most this.
+#: Two inputs count as indistinguishable when 1 - c is at most this (ours: common practice,
+#: no source).
 DISTANCE = 1e-3
-#: Two inputs count as uncorrelated when |c| is at most this.
+#: Two inputs count as uncorrelated when |c| is at most this (ours: common practice, no source).
 DECORRELATED = 0.05
-#: Gradients "grow" or "shrink" beyond this factor.
+#: Gradients "grow" or "shrink" beyond this factor (ours: common practice, no source).
 GRADIENT_FACTOR = 10.0
-#: The forward signal "grows" or "shrinks" beyond this factor.
+#: The forward signal "grows" or "shrinks" beyond this factor (ours: common practice, no source).
 SIGNAL_FACTOR = 100.0
 #: Copies of a block needed for a depth law.
 _MIN_COPIES = 16
@@ -220,16 +221,17 @@ def summarise(net: Network, tr: Trace, q: list[float | None], c: list[float | No
         if merged is not None:
             findings.append(Finding(
                 "correlation", merged, c[merged],
-                f"two inputs at c0 = {c0:.3g} become indistinguishable (1 - c <= {DISTANCE:g}) "
-                f"at position {merged} of {n} ({_where(records, merged)})", fix_corr))
+                f"two inputs at c0 = {c0:.3g} become indistinguishable (1 - c <= {DISTANCE:g}, "
+                f"ours) at position {merged} of {n} ({_where(records, merged)})", fix_corr))
     lost = None
     if abs(c0) > 2 * DECORRELATED:
         lost = _first(c, lambda v: abs(v) <= DECORRELATED)
         if lost is not None:
             findings.append(Finding(
                 "correlation", lost, c[lost],
-                f"two inputs at c0 = {c0:.3g} lose their correlation (|c| <= {DECORRELATED:g}) "
-                f"at position {lost} ({_where(records, lost)}): similar inputs end up unrelated",
+                f"two inputs at c0 = {c0:.3g} lose their correlation (|c| <= {DECORRELATED:g}, "
+                f"ours) at position {lost} ({_where(records, lost)}): similar inputs end up "
+                "unrelated",
                 "batch norm decorrelates every pair of a batch; prefer layer norm" if batch else
                 "lower sigma_w2 or the branch weight (the chaotic phase separates inputs)"))
     cl = c[n]

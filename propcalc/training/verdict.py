@@ -498,7 +498,8 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None, *,
         corr = Reason("correlation depth", "1 - c at the output", None if cl is None else 1 - cl,
                       s.distance, True, None, None,
                       f"{n} positions: two inputs neither merge (1 - c <= {s.distance:g}) nor "
-                      f"lose their correlation (|c| <= {s.decorrelated:g}){law_text}")
+                      f"lose their correlation (|c| <= {s.decorrelated:g}; both thresholds "
+                      f"ours, no source){law_text}")
     g0 = s.gradient_input
     if g0 is None or not math.isfinite(g0):
         grow = _not_computed("gradient growth", "input gradient / output gradient",
