@@ -27,6 +27,8 @@ and one PNG figure (matplotlib, Agg):
   (``propcalc.propagation(...).trainable_depth``; the empirical rule of Schoenholz et al.
   2017): a cell is predicted to train when depth <= 6 xi_c. The agreement is the count of
   cells where both say the same.
+  With ``--map-seed N`` (N > 0) the map is stored as ``map_seedN`` and drawn into
+  ``trainability_map_seedN.png``, beside seed 0's.
 * ``ceilings`` (no training): adds to every stored map cell the learning-rate ceiling of its
   network for the map's optimiser (``propcalc.training.learning_rate_ceiling``, momentum
   0.9) and redraws the map with the cells whose learning rate is above it marked.
@@ -258,7 +260,8 @@ def part_map(data: dict[str, Any], args: argparse.Namespace) -> dict[str, Any]:
         "cpu_seconds": time.process_time() - t_all,
     }
     print(f"map: prediction and training agree in {agree} of {len(cells)} cells")
-    _draw_map(entry, Path(args.out) / "trainability_map.png")
+    suffix = "" if args.map_seed == 0 else f"_seed{args.map_seed}"
+    _draw_map(entry, Path(args.out) / f"trainability_map{suffix}.png")
     return entry
 
 
@@ -547,6 +550,10 @@ def main(argv: Sequence[str] | None = None) -> None:
         if name == "ceilings":
             results["map"] = part_ceilings(data, args, results)
             name = "map"
+        elif name == "map" and args.map_seed != 0:
+            # another seed's map is kept beside seed 0's
+            name = f"map_seed{args.map_seed}"
+            results[name] = part_map(data, args)
         else:
             results[name] = parts[name](data, args)
         results[name]["torch"] = torch.__version__
