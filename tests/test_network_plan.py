@@ -140,3 +140,13 @@ def test_a_block_after_an_unknown_stream_is_kept_not_nan():
     after = next(b for b in plan.blocks if b.path == "/blocks/3")
     assert after.sigma_w2 == 1.7 and "not known" in after.rule
     assert all(math.isfinite(b.sigma_w2) and math.isfinite(b.sigma_b2) for b in plan.blocks)
+
+
+@pytest.mark.parametrize("bound", [0.0, 1.0, float("nan")])
+def test_max_gradient_is_checked_even_without_a_target(bound):
+    # every option takes effect or is refused (issue 12 section 2): max_gradient = 0 or NaN
+    # without a target was read and ignored
+    desc = {"input_width": 4, "blocks": [{"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 8}},
+                                         {"activation": "tanh"}]}
+    with pytest.raises(propcalc.PropcalcError, match="max_gradient must be"):
+        propcalc.network_plan(desc, max_gradient=bound)

@@ -45,7 +45,8 @@ from ..networks.description import network as parse_network
 from ..networks.propagate import check_inputs, network_propagation
 from ..networks.rules import Stream
 from ..networks.summary import NetworkSummary
-from ..networks.targets import BranchWeight, branch_weight, with_branch_weight
+from ..networks.targets import (BranchWeight, branch_weight, check_max_gradient,
+                                with_branch_weight)
 from ..networks.walk import Trace, trace
 from ..results import OMIT, Result
 from ..training.learning_rate import LearningRateCeiling
@@ -347,6 +348,7 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
         raise InvalidParameterError("convolution", 'one of "gaussian", "delta_orthogonal"',
                                     convolution)
     q0, c0, _, _ = check_inputs(q0, c0, 0.0, 0.0, net.uses_positions())
+    check_max_gradient(max_gradient)  # checked even without a target (where it is unused)
     notes: list[str] = []
     found: BranchWeight | None = None
     if target is not None:

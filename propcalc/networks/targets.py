@@ -30,7 +30,8 @@ from .propagate import backward, check_inputs
 from .rules import UNKNOWN
 from .walk import trace
 
-__all__ = ["BranchWeight", "branch_weight", "with_branch_weight", "residual_count"]
+__all__ = ["BranchWeight", "branch_weight", "check_max_gradient", "with_branch_weight",
+           "residual_count"]
 
 _GRID = np.geomspace(1e-4, 1e2, 25)
 
@@ -115,6 +116,14 @@ def _evaluate(net: Network, weight: float, q0: float, c0: float, cw: float,
     return s.c, (math.inf if g is None else g)
 
 
+def check_max_gradient(max_gradient: Any) -> float | None:
+    """The bound on the gradient factor: None (no bound) or a finite number > 1."""
+    bound = None if max_gradient is None else check_finite("max_gradient", max_gradient)
+    if bound is not None and bound <= 1.0:
+        raise InvalidParameterError("max_gradient", "> 1", max_gradient)
+    return bound
+
+
 def branch_weight(network: Any, target: float = 0.9, *, max_gradient: float | None = None,
                   q0: float = 1.0, c0: float = 0.0, c0_within: float = 0.0,
                   c0_between: float = 0.0) -> BranchWeight:
@@ -145,9 +154,7 @@ def branch_weight(network: Any, target: float = 0.9, *, max_gradient: float | No
     t = check_finite("target", target)
     if not -1.0 < t < 1.0:
         raise InvalidParameterError("target", "in (-1, 1)", target)
-    bound = None if max_gradient is None else check_finite("max_gradient", max_gradient)
-    if bound is not None and bound <= 1.0:
-        raise InvalidParameterError("max_gradient", "> 1", max_gradient)
+    bound = check_max_gradient(max_gradient)
     q0, c0, cw, cb = check_inputs(q0, c0, c0_within, c0_between, net.uses_positions())
     n = residual_count(net.blocks)
     if n == 0:
