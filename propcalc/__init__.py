@@ -64,11 +64,10 @@ from .meanfield.simulate import LayerMeasurement, Simulation, mean_field_traject
 from .variants.spectrum import (
     IsometryAdvice,
     JacobianSpectrum,
-    SampledSpectrum,
     dynamical_isometry,
     jacobian_spectrum,
-    sample_jacobian_spectrum,
 )
+from .variants.spectrum_sampling import SampledSpectrum, sample_jacobian_spectrum
 from .init.draw import LayerArrays, PlanArrays, draw_plan
 from .meanfield.core import propagation_arrays
 from .meanfield.sweep import EdgeSweepResult, SweepResult, sweep, sweep_edge

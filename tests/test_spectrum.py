@@ -129,7 +129,7 @@ def test_orthogonal_weights_are_haar():
     # Haar measure on O(n): E[tr Q] = 0, E[(tr Q)^2] = 1 (n >= 2), E[Q_11^2] = 1/n,
     # E[Q_11^4] = 3 / (n (n + 2)) (Diaconis & Shahshahani 1994; moments of a uniform unit
     # vector), det = +-1 with probability 1/2 each
-    from propcalc.variants.spectrum import _haar_orthogonal
+    from propcalc.variants.spectrum_sampling import _haar_orthogonal
     rng = np.random.default_rng(0)
     n, reps = 6, 10_000
     mats = [_haar_orthogonal(rng, n) for _ in range(reps)]
