@@ -154,7 +154,21 @@ def _critical(act: Activation, q: float, rule: QuadratureRule,
 
 def edge_of_chaos_line(act: Activation | str, q_star: Any,
                        rule: QuadratureRule = DEFAULT_RULE) -> tuple[CriticalPoint, ...]:
-    """The edge-of-chaos line sampled at several q* values (see :func:`edge_of_chaos`)."""
+    """The edge-of-chaos line sampled at several q* values (see :func:`edge_of_chaos`).
+
+    Parameters
+    ----------
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
+    q_star : float or array_like
+        The fixed points q* > 0 to place on the line.
+    rule : QuadratureRule
+
+    Returns
+    -------
+    tuple of CriticalPoint
+        One per q*, in the order given.
+    """
     act = resolve(act)
     qs = np.atleast_1d(np.asarray(q_star, dtype=float))
     return tuple(edge_of_chaos(act, float(q), rule) for q in qs)

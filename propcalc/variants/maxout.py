@@ -242,6 +242,20 @@ def maxout_layer(k: int, fan_in: int, fan_out: int, sigma_w2: float | None = Non
 
     The recommended weight variance is ``c_k / fan_in`` with
     ``c_k = 1 / E[X_k^2]`` (Tseran & Montufar 2023).
+
+    Parameters
+    ----------
+    k : int
+        The rank: pieces per maxout unit.
+    fan_in, fan_out : int
+        Inputs and units of the layer, >= 1.
+    sigma_w2 : float, optional
+        The weight variance times fan_in; default the recommended ``c_k``.
+    rule : QuadratureRule
+
+    Returns
+    -------
+    MaxoutLayer
     """
     mom = max_moments(k, rule)
     fi = check_int("fan_in", fan_in, 1)

@@ -197,7 +197,20 @@ class InitialLoss(Result):
 
 def initial_loss(n_classes: int, logit_variance: float,
                  rule: QuadratureRule = DEFAULT_RULE) -> InitialLoss:
-    """The expected initial loss against ln K (see :func:`expected_initial_loss`)."""
+    """The expected initial loss against ln K (see :func:`expected_initial_loss`).
+
+    Parameters
+    ----------
+    n_classes : int
+        K >= 2.
+    logit_variance : float
+        Variance of each of the K independent logits at initialisation, >= 0.
+    rule : QuadratureRule
+
+    Returns
+    -------
+    InitialLoss
+    """
     k = _classes(n_classes)
     s2 = _variance(logit_variance)
     val = expected_initial_loss(k, s2, rule)

@@ -175,6 +175,16 @@ def mean_variance_jacobian(act: Activation | str, mu: Any, nu: Any, omega: float
                            tau: float = 1.0, rule: QuadratureRule = DEFAULT_RULE) -> np.ndarray:
     """Jacobian of (mu~, nu~) with respect to (mu, nu), by Stein's identities (no differences).
 
+    Parameters
+    ----------
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
+    mu, nu : float or array_like
+        Mean and variance of the incoming activations (broadcast together).
+    omega, tau : float
+        ``sum_i w_i`` and ``sum_i w_i^2`` of a unit's incoming weights (module docstring).
+    rule : QuadratureRule
+
     Returns
     -------
     ndarray of shape ``broadcast(mu, nu).shape + (2, 2)``
@@ -349,7 +359,7 @@ def self_normalization(act: Activation | str, omega: float = 0.0, tau: float = 1
     --------
     >>> import propcalc
     >>> r = self_normalization(propcalc.activation("selu"))
-    >>> round(r.nearest.mu, 9), round(r.nearest.nu, 9), r.self_normalizing
+    >>> abs(round(r.nearest.mu, 9)), round(r.nearest.nu, 9), r.self_normalizing
     (0.0, 1.0, True)
     """
     act = resolve(act)
