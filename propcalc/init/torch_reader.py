@@ -254,7 +254,7 @@ def read_module(module: Any, example: Any, *, scales: str = "measured") -> Modul
     Examples
     --------
     >>> import torch.nn as nn                                         # doctest: +SKIP
-    >>> mlp = nn.Sequential(nn.Linear(64, 256), nn.Tanh(), nn.Linear(256, 10))
+    >>> mlp = nn.Sequential(nn.Linear(64, 256), nn.Tanh(), nn.Linear(256, 10))  # doctest: +SKIP
     >>> r = read_module(mlp, (8, 64))                                 # doctest: +SKIP
     >>> [next(iter(b)) for b in r.description["blocks"]]              # doctest: +SKIP
     ['dense', 'activation', 'dense']

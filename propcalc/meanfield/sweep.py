@@ -348,7 +348,7 @@ def sweep(activations: str | Activation | Sequence[str | Activation], sigma_w2: 
     Examples
     --------
     >>> import numpy as np
-    >>> from propcalc.sweep import sweep
+    >>> from propcalc import sweep
     >>> res = sweep("tanh", np.linspace(0.5, 3.0, 6), [0.0, 0.05], progress=False)
     >>> str(res.grid("phase")[0, 0]), str(res.grid("phase")[-1, -1])
     ('ordered', 'chaotic')
