@@ -53,6 +53,7 @@ from ..training.learning_rate import LearningRateCeiling
 from ..training.network_ntk import network_learning_rate_ceiling
 from .plan import InitPlan
 from .planner import recommend
+from .training_plan import refuse_without_loss
 
 __all__ = ["BlockInit", "NetworkPlan", "network_plan"]
 
@@ -369,14 +370,8 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
     result = network_propagation(planned, q0, c0, simulate=False)
     ceiling = None
     if loss is None:
-        for name, value in (("n_classes", n_classes), ("batch_size", batch_size),
-                            ("input_correlation", input_correlation)):
-            if value is not None:
-                raise InvalidParameterError(name, "absent when no loss is given (give loss=)",
-                                            value)
-        if momentum != 0.0:
-            raise InvalidParameterError("momentum", "0 when no loss is given (give loss=)",
-                                        momentum)
+        refuse_without_loss(momentum, n_classes=n_classes, batch_size=batch_size,
+                            input_correlation=input_correlation)
     else:
         if batch_size is None:
             raise InvalidParameterError("batch_size", "given when a loss is given", None)

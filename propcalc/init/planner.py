@@ -39,7 +39,7 @@ from ..training.verdict import trainability
 from ..vocabulary import NEUTRAL_TOLERANCE
 from .layers import DISTRIBUTIONS, Layer, layer_init
 from .plan import MAX_DEPTH, TARGETS, InitPlan
-from .training_plan import plan_for_loss
+from .training_plan import plan_for_loss, refuse_without_loss
 
 __all__ = ["ATTRACTION_MARGIN", "recommend"]
 
@@ -287,14 +287,8 @@ def recommend(act: Activation | str, depth: int | None = None, *,
     inits = tuple(layer_init(i + 1, layer, first_sw if i == 0 else sw, sb, distribution)
                   for i, layer in enumerate(plan_layers))
     if loss is None:
-        for name, value in (("n_classes", n_classes), ("batch_size", batch_size),
-                            ("inputs", inputs), ("input_correlation", input_correlation)):
-            if value is not None:
-                raise InvalidParameterError(name, "absent when no loss is given (give loss=)",
-                                            value if name != "inputs" else "an array")
-        if momentum != 0.0:  # it would be ignored (issue 12 section 2)
-            raise InvalidParameterError("momentum", "0 when no loss is given (give loss=)",
-                                        momentum)
+        refuse_without_loss(momentum, n_classes=n_classes, batch_size=batch_size,
+                            inputs=inputs, input_correlation=input_correlation)
         if scale_output is not True:
             raise InvalidParameterError("scale_output", "True when no loss is given (give loss=)",
                                         scale_output)

@@ -31,7 +31,7 @@ from ..training.ntk import UnsupportedKernelError
 from ..variants.output_layer import OutputLayerScale, output_layer_scale
 from .layers import Layer
 
-__all__ = ["MSE_OUTPUT_VARIANCE", "LossPlan", "plan_for_loss"]
+__all__ = ["MSE_OUTPUT_VARIANCE", "LossPlan", "plan_for_loss", "refuse_without_loss"]
 
 #: the planned variance of each output for MSE (common practice, no source)
 MSE_OUTPUT_VARIANCE = 0.01
@@ -68,6 +68,20 @@ def _widths(layers: Sequence[Layer | None], widths: Sequence[int] | None) -> lis
             raise InvalidParameterError(f"layers[{i}]", "fan_in equal to the previous fan_out",
                                         layers[i].fan_in)  # type: ignore[union-attr]
     return out
+
+
+def refuse_without_loss(momentum: float, **options: Any) -> None:
+    """Without a loss, refuse every loss option given (it would be read and ignored).
+
+    ``options`` maps each option's name to its value (None: not given); ``momentum`` must be 0.
+    Every option takes effect or is refused (issue 12 section 2).
+    """
+    for name, value in options.items():
+        if value is not None:
+            raise InvalidParameterError(name, "absent when no loss is given (give loss=)",
+                                        "an array" if name == "inputs" else value)
+    if momentum != 0.0:
+        raise InvalidParameterError("momentum", "0 when no loss is given (give loss=)", momentum)
 
 
 def plan_for_loss(act: Activation, layers: Sequence[Layer | None], widths: Sequence[int] | None,
