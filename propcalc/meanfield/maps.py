@@ -103,6 +103,21 @@ def variance_map_slope(act: Activation | str, q: Any, sigma_w2: float,
     At q = 0 the limit ``sigma_w2 (phi'(0)^2 + phi(0) phi''(0))`` is returned (with
     phi(0) = 0 and a kink at 0, ``sigma_w2 (phi'(0-)^2 + phi'(0+)^2) / 2``, the rate of
     collapse towards zero variance).
+
+    Parameters
+    ----------
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
+    q : array_like
+        Pre-activation variances, >= 0.
+    sigma_w2 : float
+        > 0.
+    rule : QuadratureRule
+
+    Returns
+    -------
+    ndarray
+        V'(q), the shape of q.
     """
     act = resolve(act)
     rule = _scaled(act, rule)
@@ -191,6 +206,21 @@ def chi_1(act: Activation | str, q: Any, sigma_w2: float,
 
     The mean squared singular value of one layer's input-output Jacobian at
     variance q: gradients grow like chi_1^L. Infinite if phi jumps.
+
+    Parameters
+    ----------
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
+    q : array_like
+        Pre-activation variances, >= 0 (``propagation(...).q_star`` for chi_1 at the fixed point).
+    sigma_w2 : float
+        > 0.
+    rule : QuadratureRule
+
+    Returns
+    -------
+    ndarray
+        chi_1, the shape of q.
     """
     act = resolve(act)
     rule = _scaled(act, rule)
@@ -273,6 +303,22 @@ def correlation_map_slope(act: Activation | str, c: Any, sigma_w2: float, sigma_
     """C'(c) = sigma_w2 q E[phi'(u1) phi'(u2)] / V(q) (Price's theorem).
 
     At c = 1 and q = q* this equals chi_1; infinite there for a jumping phi.
+
+    Parameters
+    ----------
+    act : str or Activation
+        A built-in name, a formula in x, or an Activation (resolved once here).
+    c : array_like
+        Correlations in [-1, 1].
+    sigma_w2, sigma_b2 : float
+    q : float
+        Common pre-activation variance of the two inputs (as :func:`correlation_map`).
+    rule : QuadratureRule
+
+    Returns
+    -------
+    ndarray
+        C'(c), the shape of c.
     """
     act = resolve(act)
     rule = _scaled(act, rule)
