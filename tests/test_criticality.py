@@ -833,3 +833,14 @@ def test_xi_c_near_the_edge_keeps_its_digits(name, sw, sb, gap, xi_c):
     assert err <= float(core.xi_c_error[0]) <= 1e-6
     if float(core.xi_c_error[0]) > propcalc.meanfield.report.XI_C_DIGITS_NOTE:
         assert any("significant digits only" in n for n in p.notes)
+
+
+def test_a_fixed_point_lost_in_rounding_is_said_so_not_called_a_collapse():
+    # tanh(x)^2 = x^2 - 2 x^4 / 3 + ... (Taylor series), so at sigma_w2 = 1 the variance map is
+    # V(q) = q - 2 q^2 + O(q^3) + sigma_b2 and q* ~ sqrt(sigma_b2 / 2) = 7e-51 for
+    # sigma_b2 = 1e-100: V(q) - q ~ 1e-100 there, far below the rounding of V(q) (~q * 1e-16).
+    # The variance cannot fall below sigma_b2, so "falls below 1e-101" was wrong.
+    with pytest.raises(propcalc.ComputationError,
+                       match="cannot be resolved in double precision") as err:
+        propcalc.propagation("tanh", 1.0, 1e-100)
+    assert "falls below" not in str(err.value)

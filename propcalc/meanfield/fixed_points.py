@@ -355,7 +355,16 @@ def check_reached(sol: VarianceSolution, sw: Array, sb: Array, where: str = "") 
     bad = np.flatnonzero(sol.falls_below)
     if bad.size:
         i = int(bad[0])
+        point = f"sigma_w2 = {sw[i]:.3g}, sigma_b2 = {sb[i]:.3g}"
+        if sb[i] > 0.0:
+            # V(q) >= sigma_b2 > 0, so the variance cannot fall to 0: its fixed point is there,
+            # but V(q) - q stays within the rounding of V(q) over the whole scanned range
+            raise ComputationError(
+                f"{where}the variance fixed point cannot be resolved in double precision at "
+                f"{point}: V(q) - q is lost in the rounding of V(q) over the scanned range down "
+                f"to q = {sol.q_floor[i]:.3g} (with a bias the variance stays >= sigma_b2, so the "
+                "fixed point exists, very close to the map's identity); raise sigma_b2 or "
+                "change sigma_w2")
         raise ComputationError(
             f"{where}the pre-activation variance falls below {sol.q_floor[i]:.3g}, the smallest "
-            f"value resolved here (sigma_w2 = {sw[i]:.3g}, sigma_b2 = {sb[i]:.3g}); rescale the "
-            "inputs or sigma_w2")
+            f"value resolved here ({point}); rescale the inputs or sigma_w2")
