@@ -1,6 +1,6 @@
 """The OpenAPI 3.1 document, generated with apispec from the app's marshmallow schemas.
 
-Generated once per app (in ``create_app``) from :data:`~propcalc_api._routes.ENDPOINTS`
+Generated once per app (in ``create_app``) from :data:`~propcalc_api._endpoints.ENDPOINTS`
 and the same schema classes that validate requests, so the limits it states
 are the ones the service enforces. Every operation lists its error
 responses; all of them are ``application/problem+json``.
@@ -18,11 +18,12 @@ from flask import Flask
 import propcalc
 
 from ._config import Limits
+from ._endpoints import ENDPOINTS
 from ._fields import openapi_attribute_function
 from ._json import canonical_dumps
 from ._network_schemas import network_components
 from ._problems import TYPE_COMPUTATION, TYPE_INVALID_FIELDS, TYPE_WORK_BUDGET
-from ._routes import BLUEPRINT, ENDPOINTS
+from ._routes import BLUEPRINT
 from ._schemas import Schemas
 
 __all__ = ["build_openapi", "DESCRIPTION", "IMAGE_CONTENT"]
