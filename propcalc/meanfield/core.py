@@ -42,7 +42,8 @@ from .fixed_points import (VarianceSolution, check_reached, collapse_rate, large
 from .maps import derivative_second_moment
 
 __all__ = ["QUANTITIES", "TRAINABLE_DEPTH_FACTOR", "TRAINABLE_RULE", "CoreResult", "propagate",
-           "propagation_arrays", "depth_scale", "depth_scales", "check_axis", "checked"]
+           "propagation_arrays", "depth_scale", "depth_scales", "check_axis", "checked",
+           "reached_chi_1", "phases"]
 
 Array = np.ndarray
 
@@ -129,22 +130,13 @@ def propagate(act: Activation, sigma_w2: Array, sigma_b2: Array, q_input: Array 
     unbounded = status == VarianceStatus.UNBOUNDED.value
     collapse = status == VarianceStatus.COLLAPSE.value
     q = var.q_star
-    c1 = np.empty(n)
+    c1 = reached_chi_1(act, sw, var, rule)
     if np.any(unbounded):  # the large-variance limit, where the variance is headed
         c1[unbounded] = sw[unbounded] * float(derivative_second_moment(
             act, large_variance(act, rule), rule))
-    c1[collapse] = collapse_rate(act, sw[collapse])
-    rest = np.flatnonzero(~unbounded & ~collapse)
-    if rest.size:
-        c1[rest] = sw[rest] * _moment(act, q[rest], rule)
-
-    phase = np.full(n, Phase.CHAOTIC.value, dtype=_TEXT)
+    phase = phases(c1, unbounded)
     finite = np.isfinite(c1)
     edge = finite & (np.abs(c1 - 1.0) <= EDGE_TOLERANCE)  # chi_1 = 1 to the integrals' accuracy
-    band = finite & (np.abs(c1 - 1.0) <= EDGE_BAND)  # the verdict (vocabulary.EDGE_BAND)
-    phase[finite & ~band & (c1 < 1.0)] = Phase.ORDERED.value
-    phase[band] = Phase.EDGE_OF_CHAOS.value
-    phase[unbounded] = Phase.UNBOUNDED.value
 
     c_star = np.ones(n)
     chi_c = np.where(edge, 1.0, c1)
@@ -175,6 +167,41 @@ def propagate(act: Activation, sigma_w2: Array, sigma_b2: Array, q_input: Array 
     return CoreResult(sigma_w2=sw, sigma_b2=sb, status=status.astype(_TEXT), phase=phase,
                       gap=np.where(unbounded, np.nan, gap),
                       xi_c_error=np.where(unbounded, np.nan, xi_err), variance=var, **out)
+
+
+def reached_chi_1(act: Activation, sw: Array, var: VarianceSolution,
+                  rule: QuadratureRule = DEFAULT_RULE) -> Array:
+    """chi_1 at the variance fixed point each point reached (NaN where it is unbounded).
+
+    chi_1 = sigma_w2 E[phi'(sqrt(q*) z)^2] (Schoenholz et al. 2017, eq. 8); at a collapsed
+    variance (q* = 0) its q -> 0 limit, :func:`~propcalc.meanfield.fixed_points.collapse_rate`.
+    """
+    status = var.status
+    unbounded = status == VarianceStatus.UNBOUNDED.value
+    collapse = status == VarianceStatus.COLLAPSE.value
+    c1 = np.full(sw.shape, np.nan)
+    c1[collapse] = collapse_rate(act, sw[collapse])
+    rest = np.flatnonzero(~unbounded & ~collapse)
+    if rest.size:
+        c1[rest] = sw[rest] * _moment(act, var.q_star[rest], rule)
+    return c1
+
+
+def phases(chi_1: Array, unbounded: Array) -> Array:
+    """The phase of each point from chi_1 (Poole et al. 2016; Schoenholz et al. 2017).
+
+    Ordered below ``1 - EDGE_BAND``, the edge of chaos within ``EDGE_BAND`` of 1 (the verdict's
+    band, :mod:`propcalc.vocabulary`), chaotic above it; unbounded where the variance has no
+    finite fixed point. The one phase rule: the report, the sweeps and the phase diagram's
+    borders (:mod:`propcalc.output.phase_regions`) all use it.
+    """
+    phase = np.full(chi_1.shape, Phase.CHAOTIC.value, dtype=_TEXT)
+    finite = np.isfinite(chi_1)
+    band = finite & (np.abs(chi_1 - 1.0) <= EDGE_BAND)
+    phase[finite & ~band & (chi_1 < 1.0)] = Phase.ORDERED.value
+    phase[band] = Phase.EDGE_OF_CHAOS.value
+    phase[unbounded] = Phase.UNBOUNDED.value
+    return phase
 
 
 def _moment(act: Activation, q: Array, rule: QuadratureRule) -> Array:

@@ -14,13 +14,11 @@ cell units) to those segments: positive inside the region, so that
 ``contourf(..., levels=[0, ...])`` fills the region up to the located
 boundary (exact for a straight boundary, whatever the cell).
 
-The phase rule is the one of :func:`propcalc.meanfield.core.propagate`
-(Poole et al. 2016; Schoenholz et al. 2017): the variance is unbounded when
-its flow from ``q_input`` has no finite fixed point
-(:func:`propcalc.meanfield.fixed_points.solve_variance`); otherwise chi_1 =
-sigma_w2 E[phi'(sqrt(q*) z)^2] (Schoenholz et al. 2017, eq. 8), at a collapsed
-variance its q -> 0 limit, and the network is ordered when chi_1 < 1 - EDGE_BAND (the
-band around the edge that :mod:`propcalc.vocabulary` gives the verdict).
+The phase rule is the report's own, :func:`propcalc.meanfield.core.phases` on chi_1 from
+:func:`propcalc.meanfield.core.reached_chi_1` (Poole et al. 2016; Schoenholz et al. 2017):
+the variance is unbounded when its flow from ``q_input`` has no finite fixed point
+(:func:`propcalc.meanfield.fixed_points.solve_variance`), and the edge of chaos counts
+as chaotic here.
 """
 
 from __future__ import annotations
@@ -30,10 +28,10 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..activations.base import Activation
-from ..meanfield.fixed_points import collapse_rate, solve_variance
-from ..meanfield.maps import derivative_second_moment
+from ..meanfield import core
+from ..meanfield.fixed_points import solve_variance
 from ..numerics.quadrature import QuadratureRule
-from ..vocabulary import EDGE_BAND, Phase, VarianceStatus
+from ..vocabulary import Phase, VarianceStatus
 
 __all__ = ["Regions", "BISECTION_STEPS", "ON_EDGE", "reached_chi_1", "point_classes",
            "on_reached_edge", "locate_regions"]
@@ -89,29 +87,18 @@ def reached_chi_1(act: Activation, sw: Array, sb: Array, q_input: float,
                   rule: QuadratureRule) -> tuple[Array, Array]:
     """(unbounded, chi_1) of each point at the variance fixed point reached from q_input.
 
-    chi_1 = sigma_w2 E[phi'(sqrt(q*) z)^2] (Schoenholz et al. 2017, eq. 8); at a
-    collapsed variance its q -> 0 limit; NaN where the variance is unbounded.
+    chi_1 from :func:`propcalc.meanfield.core.reached_chi_1` (NaN where the variance is
+    unbounded).
     """
     var = solve_variance(act, sw, sb, np.full(sw.shape, float(q_input)), rule)
-    unbounded = var.status == VarianceStatus.UNBOUNDED.value
-    collapse = var.status == VarianceStatus.COLLAPSE.value
-    chi1 = np.full(sw.shape, np.nan)
-    if np.any(collapse):
-        chi1[collapse] = collapse_rate(act, sw[collapse])
-    rest = ~unbounded & ~collapse & np.isfinite(var.q_star)
-    if np.any(rest):
-        chi1[rest] = sw[rest] * np.asarray(derivative_second_moment(act, var.q_star[rest], rule))
-    return unbounded, chi1
+    return var.status == VarianceStatus.UNBOUNDED.value, core.reached_chi_1(act, sw, var, rule)
 
 
 def point_classes(act: Activation, sw: Array, sb: Array, q_input: float,
                   rule: QuadratureRule) -> Array:
-    """The class of each point (the phase rule of meanfield.core.propagate, without c*)."""
+    """The class of each point: the phase rule of :func:`propcalc.meanfield.core.phases`."""
     unbounded, chi1 = reached_chi_1(act, sw, sb, q_input, rule)
-    out = np.full(sw.shape, CHAOTIC, dtype=int)
-    out[np.isfinite(chi1) & (chi1 < 1.0 - EDGE_BAND)] = ORDERED  # as core.propagate
-    out[unbounded] = UNBOUNDED
-    return out
+    return classes_of_phases(core.phases(chi1, unbounded))
 
 
 def on_reached_edge(act: Activation, sw: Array, sb: Array, q_input: float,
