@@ -15,7 +15,10 @@ import pytest
 
 import propcalc
 from propcalc.training import UnsupportedKernelError, tangent_kernel
-from propcalc.training.network_ntk import network_learning_rate_ceiling, network_tangent_kernel
+from propcalc.training.network_ntk import (
+    network_learning_rate_ceiling,
+    network_tangent_kernel,
+)
 
 
 def test_a_plain_stack_written_as_blocks_gives_the_plain_kernel():
@@ -78,15 +81,17 @@ def test_residual_network_against_the_empirical_kernel():
         assert abs(np.mean(emp) - pred) <= 4 * se + 0.02 * abs(pred), (np.mean(emp), pred, se)
 
 
-@pytest.mark.parametrize("blocks,match", [
-    ([{"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 8}}, {"norm": "layer"},
-      {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 3}}], r"block /blocks/1 \(norm\)"),
-    ([{"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 8}}, {"dropout": {"keep_rate": 0.9}}],
-     r"block /blocks/1 \(dropout\)"),
+@pytest.mark.parametrize("blocks", [
+    [{"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 8}}, {"norm": "layer"},
+     {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 3}}],
+    [{"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 8}}, {"dropout": {"keep_rate": 0.9}}],
 ])
-def test_other_blocks_are_refused_by_path(blocks, match):
-    with pytest.raises(UnsupportedKernelError, match=match):
-        network_tangent_kernel({"input_width": 4, "blocks": blocks})
+def test_norm_and_dropout_are_carried(blocks):
+    # these two were refused before issue 15's block kinds were added; their kernels are
+    # checked against seeded torch in tests/test_network_ntk_blocks.py, what is still refused
+    # is tested there too
+    k = network_tangent_kernel({"input_width": 4, "blocks": blocks})
+    assert np.isfinite(k.diagonal) and k.diagonal > 0
 
 
 def test_a_missing_width_is_refused():

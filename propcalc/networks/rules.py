@@ -34,8 +34,8 @@ from typing import Any
 import numpy as np
 
 from ..activations.base import Activation
-from .blocks import Convolution, Dense, Dropout, Norm
 from ..domains import Q_MAX, Q_POSITIVE_MIN
+from .blocks import Convolution, Dense, Dropout, Norm
 from .kernels import (
     Elementwise,
     composed,
@@ -46,25 +46,25 @@ from .kernels import (
 )
 
 __all__ = [
-    "GAUSSIAN",
     "ELEMENTWISE",
+    "GAUSSIAN",
     "GENERAL",
-    "UNKNOWN",
     "Q_LIMIT",
-    "Stream",
+    "UNKNOWN",
+    "Matrix",
     "Step",
-    "identity_matrix",
-    "dense",
-    "convolution",
+    "Stream",
     "activation",
-    "norm",
+    "convolution",
+    "dense",
     "dropout",
+    "identity_matrix",
+    "norm",
+    "passed",
+    "product",
     "residual",
     "unknown",
-    "passed",
     "width_ratio",
-    "product",
-    "Matrix",
 ]
 
 GAUSSIAN = "gaussian"
@@ -210,7 +210,9 @@ def activation(stream: Stream, act: Activation, *, derivative_pair: bool = False
     (Schoenholz et al. 2017, eq. 8 without sigma_w2) and, with positions,
     ``E[phi'(s_t) phi'(s_t')]``. With ``derivative_pair`` also
     ``E[phi'(s_a) phi'(s_b)]`` for the pair (``detail["derivative_pair"]``, the
-    factor of the neural tangent kernel recursion of Jacot et al. 2018).
+    factor of the neural tangent kernel recursion of Jacot et al. 2018) and, with positions,
+    the same at two positions of one input (``derivative_within``) and of the two inputs
+    (``derivative_between``).
     """
     if stream.form == UNKNOWN:
         return passed(stream)
@@ -234,7 +236,9 @@ def activation(stream: Stream, act: Activation, *, derivative_pair: bool = False
         cu += [_corr(u.kw, u.q), _corr(u.kb, u.q)]
     mom, d2 = moments(fn, u.q, cu)
     detail: dict[str, float] = {}
-    want = ([_corr(u.kw, u.q)] if u.kw is not None else []) + ([u.c] if derivative_pair else [])
+    between = derivative_pair and u.kb is not None
+    want = (([_corr(u.kw, u.q)] if u.kw is not None else [])
+            + ([_corr(u.kb, u.q)] if between else []) + ([u.c] if derivative_pair else []))
     if stream.form == GAUSSIAN:
         d_sq = d2
         d_cross = derivative_cross(act, u.q, want) if want else np.empty(0)
@@ -244,6 +248,10 @@ def activation(stream: Stream, act: Activation, *, derivative_pair: bool = False
     dw = float(d_cross[0]) if u.kw is not None else 0.0
     if derivative_pair:
         detail["derivative_pair"] = float(d_cross[-1])
+        if u.kw is not None:
+            detail["derivative_within"] = dw
+        if between:
+            detail["derivative_between"] = float(d_cross[1] if u.kw is not None else d_cross[0])
     detail["derivative_second_moment"] = float(d_sq)
     cross = mom.cross
     out = Stream(mom.second, float(cross[0]), mom.mean,

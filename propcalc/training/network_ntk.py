@@ -1,22 +1,20 @@
-"""The tangent kernel of a network of blocks (dense, activation, residual) at initialisation.
+"""The tangent kernel of a network of blocks at initialisation, and its learning-rate ceiling.
 
 The per-unit kernel ``Theta_s(x, x')`` of a stream s is carried block by block along the walk of
 :func:`propcalc.networks.walk.trace` (which supplies every stream's pair moments and, at each
 activation, ``E[phi'(s_a) phi'(s_b)]``), in the standard parametrisation
-(:mod:`propcalc.training.ntk`; Jacot et al. 2018, Theorem 1; Lee et al. 2019, appendix):
+(:mod:`propcalc.training.ntk`; Jacot et al. 2018, Theorem 1; Lee et al. 2019, appendix). The
+rule of every block kind, its derivation and its assumptions are in
+:mod:`propcalc.training.network_ntk_rules`: dense, activation, residual (``shortcut^2 Theta +
+weight^2 Theta_branch``), layer / RMS / batch norm, dropout, convolution, average pooling, and
+attention in the uniform-attention limit; repeats are written out.
 
-* dense, ``W`` of std ``sqrt(sigma_w2 / n_in)`` and a trained bias:
-  ``Theta' = n_in E[s_a s_b] + 1 + sigma_w2 Theta`` (its weights, its bias, the path through it);
-* activation: ``Theta' = E[phi'(s_a) phi'(s_b)] Theta``;
-* residual ``shortcut x + weight branch(x)``: ``Theta' = shortcut^2 Theta + weight^2 Theta_b``,
-  ``Theta_b`` the branch's own recursion started from ``Theta``. The cross terms between the
-  identity path and the branch average to 0 over the branch's centred weights at large width
-  (the gradient-independence argument of Yang & Schoenholz 2017 for the backward pass);
-* repeats are written out.
-
-Other blocks (normalisation, dropout, convolution, pooling, attention) are refused with
-:class:`~propcalc.training.ntk.UnsupportedKernelError` naming the block's path. A plain stack
-gives exactly :func:`propcalc.training.ntk.tangent_kernel` (tested).
+Refused with :class:`~propcalc.training.ntk.UnsupportedKernelError` naming the block's path:
+attention whose query-key logits spread (``query_key_scale != 0`` with distinct tokens), max
+pooling and every block after a stream whose law is unknown (an activation after a residual sum
+of non-Gaussian parts or after dropout), a missing width. The ceiling also refuses an output
+with several positions (no global average pooling before the readout). A plain stack gives
+exactly :func:`propcalc.training.ntk.tangent_kernel` (tested).
 """
 
 from __future__ import annotations
@@ -29,13 +27,30 @@ import numpy as np
 
 from .. import domains
 from ..errors import InvalidParameterError
-from ..networks.blocks import ActivationBlock, Dense, Repeat, Residual
-from ..networks.description import Network, network as read_network
+from ..networks.blocks import (
+    ActivationBlock,
+    Attention,
+    Convolution,
+    Dense,
+    Dropout,
+    Norm,
+    Pooling,
+    Repeat,
+    Residual,
+)
+from ..networks.description import Network
+from ..networks.description import network as read_network
 from ..networks.propagate import check_inputs
 from ..networks.rules import Step, Stream
 from ..networks.walk import trace
 from ..results import Result
-from .learning_rate import LOSSES, LearningRateCeiling, ceiling_from_kernel, correlation_samples
+from . import network_ntk_rules as rules
+from .learning_rate import (
+    LOSSES,
+    LearningRateCeiling,
+    ceiling_from_kernel,
+    correlation_samples,
+)
 from .ntk import UnsupportedKernelError
 
 __all__ = ["MAX_NETWORK_SAMPLES", "NetworkTangentKernel", "network_learning_rate_ceiling",
@@ -61,6 +76,11 @@ class NetworkTangentKernel(Result):
         The output stream's second moment and the pair's correlation there.
     output_width : int or None
         Units of the output stream.
+    several_positions : bool
+        Whether the output has several positions (a convolution, pooling windows or attention
+        not followed by a global average): the kernel is that of one unit at one position.
+    notes : tuple of str
+        What the kernel assumes at batch norm and dropout blocks.
     parametrisation : str
         Always "standard".
     """
@@ -72,18 +92,30 @@ class NetworkTangentKernel(Result):
     output_q: float
     output_c: float
     output_width: int | None
+    several_positions: bool = False
+    notes: tuple[str, ...] = ()
     parametrisation: str = "standard"
 
 
-class _Carry:
-    """Theta along the walk: the diagonal and the pair entry of the current stream."""
+_BATCH_NOTE = ("batch norm: the kernel of the large-batch mean field (Yang et al. 2019), every "
+               "entry exact to O(1/B) (measured against torch: at B = 32 the pair entry was "
+               "3% of the diagonal below it, at B = 128 within the sampling error)")
+_DROPOUT_NOTE = ("dropout: the kernel of one step, each input with its own masks, averaged over "
+                 "the masks by the weight block after it")
 
-    def __init__(self, steps: Iterator[Step], start: Stream) -> None:
+
+class _Carry:
+    """Theta along the walk (:class:`~propcalc.training.network_ntk_rules.Kernel`)."""
+
+    def __init__(self, steps: Iterator[Step], start: Stream, spatial: bool) -> None:
         self.steps = steps
         self.stream = start
+        #: whether the stream has several positions (after a convolution, pooling windows or
+        #: attention, or an input with positions) that no global average has pooled yet
+        self.spatial = spatial
+        self.notes: dict[str, None] = {}
 
-    def run(self, blocks: tuple[Any, ...], theta: tuple[float, float], path: str,
-            ) -> tuple[float, float]:
+    def run(self, blocks: tuple[Any, ...], theta: rules.Kernel, path: str) -> rules.Kernel:
         for i, b in enumerate(blocks):
             where = f"{path}/{i}"
             if isinstance(b, Repeat):
@@ -93,74 +125,87 @@ class _Carry:
             theta = self.block(b, theta, where)
         return theta
 
-    def block(self, b: Any, theta: tuple[float, float], where: str) -> tuple[float, float]:
+    def block(self, b: Any, theta: rules.Kernel, where: str) -> rules.Kernel:
         before = self.stream
+        step = next(self.steps)
         if isinstance(b, Residual):
-            step = next(self.steps)
-            inner = _Carry(iter(step.branch), before)
+            inner = _Carry(iter(step.branch), before, self.spatial)
             t_branch = inner.run(b.branch, theta, f"{where}/residual/branch")
             self.stream = step.stream
-            s2, w2 = b.shortcut * b.shortcut, b.weight * b.weight
-            return s2 * theta[0] + w2 * t_branch[0], s2 * theta[1] + w2 * t_branch[1]
-        if not isinstance(b, (Dense, ActivationBlock)):
-            raise UnsupportedKernelError(
-                f"block {where} ({b.KIND}): the tangent kernel is computed for dense, activation "
-                "and residual blocks only")
-        step = next(self.steps)
+            self.spatial = self.spatial or inner.spatial
+            self.notes.update(inner.notes)
+            return rules.residual(theta, t_branch, b.shortcut, b.weight)
         self.stream = step.stream
         if step.stream.form == "unknown" or before.form == "unknown":
             raise UnsupportedKernelError(
                 f"block {where} ({b.KIND}): the stream's law is not known there "
                 f"({step.stream.reason or before.reason}), so neither is the kernel")
-        if isinstance(b, Dense):
-            n_in = before.width
-            if n_in is None:
-                raise UnsupportedKernelError(
-                    f"block {where} (dense): the width of its input is not given (set "
-                    "input_width and every dense width): the kernel grows with it")
-            # standard parametrisation (module docstring): weights, bias, the path through it
-            return (n_in * before.q + 1.0 + b.sigma_w2 * theta[0],
-                    n_in * before.k + 1.0 + b.sigma_w2 * theta[1])
-        d_sq = step.detail["derivative_second_moment"]
-        d_pair = step.detail["derivative_pair"]
-        return d_sq * theta[0], d_pair * theta[1]
+        if isinstance(b, (Dense, Convolution)):
+            self.spatial = self.spatial or isinstance(b, Convolution)
+            return rules.weight_block(before, b, theta, where)
+        if isinstance(b, ActivationBlock):
+            return rules.activation(step, theta)
+        if isinstance(b, Norm):
+            if b.kind == "batch":
+                self.notes[_BATCH_NOTE] = None
+            return rules.norm(before, b, theta, where)
+        if isinstance(b, Dropout):
+            self.notes[_DROPOUT_NOTE] = None
+            return rules.dropout(b, theta)
+        if isinstance(b, Pooling):
+            self.spatial = b.kind != "global_average"
+            return rules.pooling(b, theta, where)
+        assert isinstance(b, Attention)
+        self.spatial = True
+        return rules.attention(before, b, step, theta, where)
 
 
-def network_tangent_kernel(network: Any, q0: float = 1.0, c0: float = 0.0
+def network_tangent_kernel(network: Any, q0: float = 1.0, c0: float = 0.0, *,
+                           c0_within: float = 0.0, c0_between: float = 0.0
                            ) -> NetworkTangentKernel:
     """The tangent kernel of a network's output unit at initialisation (module docstring).
 
     Parameters
     ----------
     network : Network or mapping
-        A network description (:func:`propcalc.network`) of dense, activation, residual and
-        repeat blocks with an ``input_width`` and every dense ``width``.
+        A network description (:func:`propcalc.network`) with an ``input_width`` and the width
+        of every dense, convolution and attention block that changes it.
     q0, c0 : float
         Mean square input coordinate and the pair's correlation.
+    c0_within, c0_between : float
+        With pooling or attention: the input's correlation between two positions of one input
+        and of the two inputs (as for :func:`propcalc.network_propagation`).
 
     Returns
     -------
     NetworkTangentKernel
+        Of one output unit at one position.
 
     Raises
     ------
     UnsupportedKernelError
-        For another block kind, a missing width, or a stream whose law is unknown.
+        For max pooling, attention with a logit spread, a missing width, or a stream whose law
+        is unknown.
     """
     net = network if isinstance(network, Network) else read_network(network)
-    q0, c0, _, _ = check_inputs(q0, c0, 0.0, 0.0, False)
-    tr = trace(net, q0, c0, derivative_pairs=True)
-    carry = _Carry(iter(v.step for v in tr.visits), tr.start)
-    theta = carry.run(net.blocks, (0.0, 0.0), "/blocks")
+    q0, c0, c0_within, c0_between = check_inputs(q0, c0, c0_within, c0_between,
+                                                 net.uses_positions())
+    tr = trace(net, q0, c0, c0_within=c0_within, c0_between=c0_between,
+               derivative_pairs=True)
+    carry = _Carry(iter(v.step for v in tr.visits), tr.start, tr.start.kw is not None)
+    theta = carry.run(net.blocks, rules.start(tr.start), "/blocks")
     out = carry.stream
-    return NetworkTangentKernel(float(q0), float(c0), float(theta[0]), float(theta[1]),
-                                float(out.q), float(out.c), out.width)
+    return NetworkTangentKernel(float(q0), float(c0), float(theta.diag), float(theta.pair),
+                                float(out.q), float(out.c), out.width, carry.spatial,
+                                tuple(carry.notes))
 
 
 def network_learning_rate_ceiling(network: Any, *, loss: str, batch_size: int,
                                   n_classes: int | None = None, q0: float = 1.0,
                                   input_correlation: float | Sequence[float] = 0.0,
-                                  momentum: float = 0.0, seed: int = 0) -> LearningRateCeiling:
+                                  momentum: float = 0.0, seed: int = 0,
+                                  c0_within: float = 0.0, c0_between: float = 0.0
+                                  ) -> LearningRateCeiling:
     """The learning-rate ceiling of a network of blocks at initialisation.
 
     :func:`network_tangent_kernel` at each input correlation, then the batch kernel's top
@@ -180,6 +225,11 @@ def network_learning_rate_ceiling(network: Any, *, loss: str, batch_size: int,
         The inputs' pairwise correlation, or at most :data:`MAX_NETWORK_SAMPLES` samples of it.
     momentum : float
         Heavy-ball momentum in [0, 1).
+    seed : int
+        Seed of the sampling of the cross-entropy's curvature.
+    c0_within, c0_between : float
+        With pooling or attention: the input's correlation between two positions of one input
+        and of the two inputs.
 
     Returns
     -------
@@ -192,7 +242,13 @@ def network_learning_rate_ceiling(network: Any, *, loss: str, batch_size: int,
     mu = domains.check("momentum", momentum)
     cs = correlation_samples(input_correlation, MAX_NETWORK_SAMPLES)
     net = network if isinstance(network, Network) else read_network(network)
-    kernels = [network_tangent_kernel(net, q0, float(c)) for c in cs]
+    kernels = [network_tangent_kernel(net, q0, float(c), c0_within=c0_within,
+                                      c0_between=c0_between) for c in cs]
+    if kernels[0].several_positions:
+        raise UnsupportedKernelError(
+            "the network's output has several positions (a convolution, pooling windows or "
+            "attention without a global average pooling after it): the ceiling is computed for "
+            "one output vector per input; end with a global average pooling before the readout")
     k = kernels[0].output_width
     if k is None:
         raise UnsupportedKernelError("the network's output width is not given: set every "
@@ -209,7 +265,7 @@ def network_learning_rate_ceiling(network: Any, *, loss: str, batch_size: int,
              + (f"correlation {cs[0]:g}" if cs.size == 1 else
                 f"{cs.size} sampled correlations (mean {cs.mean():.3g})")
              + ": the batch kernel's top eigenvalue is the lower bound Theta(x, x) + (B - 1) "
-             "mean Theta(x, x')",)
+             "mean Theta(x, x')",) + kernels[0].notes
     return ceiling_from_kernel(loss, k, b, mu, "correlation" if cs.size == 1 else "correlations",
                                diag, off, top, kernels[0].output_q, c_out, seed, notes,
                                kernels[0])
