@@ -68,6 +68,10 @@ network propagation        200 + 1.5 per unit of the engine's Network.cost (one
                             multiply-add of the simulated networks
 network plan                300 + 2.5 per unit; 40 per unit with a target
                             (the branch-weight search)
+network with a loss         + 50 + 1.5 per unit (the tangent kernel's walk);
+                            cross_entropy + 150 + 1 per class + the softmax
+                            curvature: 5e-6 K^3 (K <= 1000), else 3e-5 per
+                            draw of 20000 K
 network image               the image + the propagation + 0.2 per position
 shaping                     400 + 1.5 per layer (twice for a formula; elu by
                             deep kernel shaping: 2.1 ms per layer); 0.05 per
@@ -186,6 +190,11 @@ COSTS = {
     "shape_slope_layer": 0.05,
     "shape_slope_plot_layer": 0.1,
     "network_plot_position": 0.2,
+    "network_loss": 50.0,
+    "network_loss_cross_entropy": 150.0,
+    "network_loss_class": 1.0,
+    "softmax_curvature_cubic": 5e-6,
+    "softmax_curvature_draw": 3e-5,
     "shape_plot_layer": 8.0,
     "shape_plot_point_layer": 0.1,
     "shape_plot_formula_factor": 10.0,

@@ -18,7 +18,7 @@ from __future__ import annotations
 from collections.abc import Callable
 from typing import Any
 
-from marshmallow import Schema, fields
+from marshmallow import Schema, ValidationError, fields, validates_schema
 
 from propcalc import NetworkPlan, NetworkPropagation, ShapedActivation
 from propcalc.networks import (
@@ -35,6 +35,7 @@ from ._config import PLAN_Q_INPUT_MIN, Q_STAR_MAX, Q_STAR_MIN, SEED_MAX, VARIANC
 from ._fields import Choice, FiniteNumber, Interval, JSONInteger, StrictBoolean
 from ._responses import VerdictSchema
 from ._result_schemas import result_schema
+from ._schema_base import MAX_SIZE
 
 __all__ = ["build_network_schemas", "network_components", "NetworkField", "DESCRIPTION_COMPONENT",
            "NETWORK_LIMITS", "SHAPE_PLOT_POINTS"]
@@ -177,6 +178,8 @@ def build_network_schemas(limits: Limits, strict: type[Schema],
             "no number there"))
         seed = seed_field()
 
+    from ._schemas import PLAN_MAX_CLASSES, PLAN_READOUT_SAMPLES  # built after it loads
+
     class NetworkRequestSchema(NetworkInputsSchema):
         """Signal propagation through a described network, its summary and its plan."""
 
@@ -184,6 +187,35 @@ def build_network_schemas(limits: Limits, strict: type[Schema],
                              load_default=lambda: dict(plan_defaults), metadata=d(
                                  "plan options (default: a plan without a target); null: no "
                                  "plan"))
+        # training (issue 15): the verdict's learning-rate ceiling and output-layer reason
+        loss = Choice(["cross_entropy", "mse"], load_default=None, allow_none=True, metadata=d(
+            "cross_entropy (softmax) or mse: the verdict then has the learning-rate ceiling of "
+            "the described network (propcalc.training.network_learning_rate_ceiling; needs "
+            "batch_size) and its output-layer reason"))
+        n_classes = JSONInteger(validate=Interval(2, PLAN_MAX_CLASSES), load_default=None,
+                                allow_none=True, metadata=d(
+                                    "with a loss: K, the outputs (default: the readout's "
+                                    f"width); at most {PLAN_MAX_CLASSES}: the readout's check "
+                                    f"draws {PLAN_READOUT_SAMPLES} samples of K logits"))
+        batch_size = JSONInteger(validate=Interval(1, MAX_SIZE), load_default=None,
+                                 allow_none=True, metadata=d("B, inputs per step (with a loss)"))
+        momentum = FiniteNumber(validate=Interval(0, 1, high_open=True), load_default=0.0,
+                                metadata=d("with a loss: heavy-ball momentum, the ceiling is "
+                                           "2 (1 + momentum) / lambda_max"))
+
+        @validates_schema
+        def _training(self, data: dict[str, Any], **kwargs: Any) -> None:
+            errors: dict[str, list[str]] = {}
+            if data.get("loss") is None:
+                for name in ("n_classes", "batch_size"):
+                    if data.get(name) is not None:
+                        errors[name] = ["is only read with a loss (give loss)"]
+                if data.get("momentum"):
+                    errors["momentum"] = ["is only read with a loss (give loss)"]
+            elif data.get("batch_size") is None:
+                errors["batch_size"] = [f"is required with loss {data['loss']}"]
+            if errors:
+                raise ValidationError(errors)
 
     class NetworkPlotRequestSchema(image_options, NetworkInputsSchema):
         """q, c and the gradient against the stream position of a network, as an image."""

@@ -39,8 +39,9 @@ from propcalc.networks.simulate import measure_network, simulation_work
 from ._budget import COSTS, FORMULA_FACTOR, check_budget
 from ._fields import format_number
 
-__all__ = ["NetworkComputations", "network_estimate", "simulation_estimate", "shape_estimate",
-           "shape_plot_cost", "slope_form", "formula_activations", "SLOPE_FORM_BASES"]
+__all__ = ["NetworkComputations", "network_estimate", "output_width", "training_estimate",
+           "simulation_estimate", "shape_estimate", "shape_plot_cost", "slope_form",
+           "formula_activations", "SLOPE_FORM_BASES"]
 
 #: built-ins that "tat" shapes in the closed-form slope form (propcalc.shaping.solve)
 SLOPE_FORM_BASES = ("relu", "leaky_relu")
@@ -88,6 +89,41 @@ def network_estimate(net: Network, plan: dict[str, Any] | None, formulas: bool
     per = COSTS["network_plan_target_unit"] if plan.get("target") is not None else (
         COSTS["network_plan_unit"])
     return prop, COSTS["network_plan"] + per * units
+
+
+def output_width(net: Network) -> int:
+    """The width of a network's output: the last weight block's that gives one (else the
+    input's; 1 when neither is given, the engine then refuses the ceiling with its reason)."""
+    def last(blocks: tuple[Any, ...]) -> int | None:
+        for b in reversed(blocks):
+            if isinstance(b, Repeat):
+                found = last(b.blocks)
+            elif isinstance(b, Residual):
+                found = None  # the shortcut keeps the input's width
+            else:
+                found = getattr(b, "width", None)
+            if found is not None:
+                return int(found)
+        return None
+    return last(net.blocks) or net.input_width or 1
+
+
+def training_estimate(net: Network, loss: str, n_classes: int, formulas: bool = False
+                      ) -> float:
+    """Estimated units of the verdict's learning-rate ceiling and output-layer reason.
+
+    The tangent kernel is a second walk with the derivative pairs (at most the propagation's
+    units); cross-entropy adds the seeded softmax curvature (64 eigenvalue problems of K x K
+    for K <= 1000: 5e-6 K^3 units, 20000 K draws beyond) and the readout check (1 per class).
+    """
+    units = net.cost * (FORMULA_FACTOR if formulas else 1.0)
+    cost = COSTS["network_loss"] + COSTS["network_unit"] * units
+    if loss == "cross_entropy":
+        k = float(n_classes)
+        cost += COSTS["network_loss_cross_entropy"] + COSTS["network_loss_class"] * k
+        cost += (COSTS["softmax_curvature_cubic"] * k ** 3 if k <= 1000 else
+                 COSTS["softmax_curvature_draw"] * 20000 * k)
+    return cost
 
 
 def _tokens(blocks: tuple[Any, ...]) -> int:
@@ -185,9 +221,22 @@ class NetworkComputations:
         return network_propagation(net, simulate=True, **args)
 
     def network(self, req: dict[str, Any]) -> dict[str, Any]:
-        """Propagation through a network, its summary and its plan."""
+        """Propagation through a network, its summary, its plan and its verdict (with a loss:
+        the learning-rate ceiling and the output layer)."""
         plan = req.get("plan")
         net, admitted = self._network(req, plan)
+        training: dict[str, Any] = {}
+        loss = req.get("loss")
+        if loss is not None:
+            k = req.get("n_classes") or output_width(net)
+            admitted += training_estimate(net, loss, k, formula_activations(req["network"]) > 0)
+            check_budget(admitted, self.limits.work_budget,
+                         f"a network of {net.n_positions} positions with its learning-rate "
+                         f"ceiling for {loss} ({k} outputs)",
+                         "/n_classes" if loss == "cross_entropy" else "/network",
+                         "fewer outputs" if loss == "cross_entropy" else "fewer positions")
+            training = {"loss": loss, "n_classes": req.get("n_classes"),
+                        "batch_size": req["batch_size"], "momentum": req["momentum"]}
         result = self._propagate(net, req, admitted)
         planned = None
         if plan is not None:
@@ -197,7 +246,7 @@ class NetworkComputations:
                                    convolution=plan["convolution"], q_star=plan["q_star"])
         return jsonable({"propagation": result.to_dict(),
                          "plan": None if planned is None else planned.to_dict(),
-                         "verdict": network_verdict(result).to_dict()})
+                         "verdict": network_verdict(result, **training).to_dict()})
 
     def network_result(self, req: dict[str, Any], extra: float = 0.0,
                        per_position: float = 0.0) -> Any:

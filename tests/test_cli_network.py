@@ -303,3 +303,51 @@ def test_check_errors(tmp_path, argv, needle):
 def test_help_lists_the_command():
     code, out, _ = run("--help")
     assert code == 0 and "network" in out and "shape" in out
+
+
+NORMED = {"input_width": 16, "blocks": [
+    {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 64}},
+    {"repeat": {"times": 3, "blocks": [{"residual": {"weight": 0.5, "branch": [
+        {"norm": "layer"}, {"dense": {"sigma_w2": 2.0, "sigma_b2": 0.0, "width": 64}},
+        {"activation": "relu"}, {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 64}}]}}]}},
+    {"norm": "rms"}, {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 10}}]}
+
+
+def test_loss_gives_the_verdict_its_learning_rate_ceiling(tmp_path):
+    # the reference is the Python API: the ceiling of network_learning_rate_ceiling (itself
+    # checked against seeded torch kernels in tests/test_network_ntk_blocks.py)
+    from propcalc.training import network_learning_rate_ceiling
+    path = write(tmp_path, NORMED)
+    code, out, err = run("network", path, "--json", "--no-plan", "--c0", "0.2", "--loss",
+                         "cross_entropy", "--batch-size", "32")
+    assert code == 0, err
+    ref = network_learning_rate_ceiling(NORMED, loss="cross_entropy", batch_size=32,
+                                        input_correlation=0.2)
+    lr = next(r for r in strict_json(out)["verdict"]["reasons"] if r["name"] == "learning rate")
+    assert lr["value"] == pytest.approx(ref.learning_rate_ceiling, rel=1e-12)
+    code, out, err = run("network", path, "--no-plan", "--c0", "0.2", "--loss", "mse",
+                         "--batch-size", "32")
+    assert code == 0, err
+    assert "keep the learning rate below" in out
+
+
+def test_a_network_the_kernel_does_not_cover_says_why(tmp_path):
+    desc = {"input_width": 16, "blocks": [
+        {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 32}}, {"activation": "tanh"},
+        {"attention": {"tokens": 4, "query_key_scale": 1.0}},
+        {"pooling": {"kind": "global_average", "positions": 4}},
+        {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 3}}]}
+    code, out, err = run("network", write(tmp_path, desc), "--json", "--no-plan", "--loss", "mse",
+                         "--batch-size", "8", "--c0-within", "0.2")
+    assert code == 0, err
+    lr = next(r for r in strict_json(out)["verdict"]["reasons"] if r["name"] == "learning rate")
+    assert lr["value"] is None and "query-key logits spread" in lr["detail"]
+
+
+@pytest.mark.parametrize("args,needle", [
+    (["--batch-size", "8"], "--batch-size only matter with a loss"),
+    (["--loss", "mse"], "--loss needs --batch-size"),
+])
+def test_loss_options_are_checked(tmp_path, args, needle):
+    code, out, err = run("network", write(tmp_path, NORMED), "--no-plan", *args)
+    assert code == 2 and needle in err

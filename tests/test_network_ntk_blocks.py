@@ -171,3 +171,26 @@ def test_a_normalised_transformer_gets_its_ceiling_in_the_verdict():
                                             c0_within=0.3, c0_between=0.1)
     r = propcalc.network_verdict(result, learning_rate=ceiling).reason("learning rate")
     assert r.passes is not None and r.value == pytest.approx(ceiling.learning_rate_ceiling)
+
+
+def test_the_verdict_computes_the_ceiling_or_says_why_not():
+    desc = _transformer(64)
+    kw = {"c0_within": 0.3, "c0_between": 0.1}
+    result = propcalc.network_propagation(propcalc.network(desc), q0=1.0, c0=0.3, **kw)
+    ref = network_learning_rate_ceiling(desc, loss="mse", batch_size=16, input_correlation=0.3,
+                                        momentum=0.5, **kw)
+    r = propcalc.network_verdict(result, loss="mse", batch_size=16, momentum=0.5).reason(
+        "learning rate")
+    assert r.value == pytest.approx(ref.learning_rate_ceiling, rel=1e-12)
+    spread = json_copy(desc)
+    spread["blocks"][2]["residual"]["branch"][1]["attention"]["query_key_scale"] = 1.0
+    result = propcalc.network_propagation(propcalc.network(spread), q0=1.0, c0=0.3, **kw)
+    r = propcalc.network_verdict(result, loss="mse", batch_size=16).reason("learning rate")
+    assert r.value is None and "/blocks/2/residual/branch/1 (attention)" in r.detail
+    with pytest.raises(propcalc.PropcalcError, match="batch_size must be absent when no loss"):
+        propcalc.network_verdict(result, batch_size=16)
+
+
+def json_copy(obj):
+    import json
+    return json.loads(json.dumps(obj))

@@ -15,6 +15,8 @@ from ..networks.propagate import NetworkPropagation
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from .finite_width import FiniteWidth
 from .network_finite_width import FiniteWidthUnsupportedError, network_finite_width
+from .network_ntk import network_learning_rate_ceiling
+from .ntk import UnsupportedKernelError
 from .network_readout import network_readout
 # the reasons' builders are shared with the plain-stack verdict (one implementation)
 from .verdict import (GROWTH_LIMIT, Reason, Verdict, _assemble, _check_options, _finite_width,
@@ -25,7 +27,8 @@ __all__ = ["network_verdict"]
 
 def network_verdict(result: NetworkPropagation, learning_rate: Any = None, *,
                     loss: str | None = None, n_classes: int | None = None,
-                    output_margin: float | None = None,
+                    output_margin: float | None = None, batch_size: int | None = None,
+                    momentum: float = 0.0,
                     rule: QuadratureRule = DEFAULT_RULE) -> Verdict:
     """The same verdict for a network of blocks, from its propagation and summary.
 
@@ -44,11 +47,18 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None, *,
     result : NetworkPropagation
         From :func:`propcalc.network_propagation`.
     learning_rate : LearningRateCeiling, optional
-        From :func:`propcalc.training.network_learning_rate_ceiling` (dense, activation and
-        residual blocks): the learning-rate reason then has its number.
+        From :func:`propcalc.training.network_learning_rate_ceiling`: the learning-rate reason
+        then has its number.
     loss : {"cross_entropy", "mse"}, optional
     n_classes, output_margin : optional
         Classes (default: the readout's width) and the allowed excess over ln K (1% of ln K).
+    batch_size : int, optional
+        With ``loss`` and without ``learning_rate``: the ceiling is computed here
+        (:func:`propcalc.training.network_learning_rate_ceiling` of ``result.network`` at the
+        propagation's q0, c0, c0_within, c0_between); a network it does not cover gets a
+        "not computed" learning-rate reason that says why.
+    momentum : float
+        Heavy-ball momentum of that ceiling.
 
     Returns
     -------
@@ -58,6 +68,23 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None, *,
         raise InvalidParameterError("result", "a NetworkPropagation (propcalc."
                                     "network_propagation(...))", type(result).__name__)
     _check_options(learning_rate, output_margin)
+    lr_why = None
+    if batch_size is not None:
+        if loss is None:
+            raise InvalidParameterError("batch_size", "absent when no loss is given", batch_size)
+        if learning_rate is not None:
+            raise InvalidParameterError("batch_size", "absent when learning_rate is given (it "
+                                        "was computed with its own batch size)", batch_size)
+        if result.network is None:
+            lr_why = "the propagation carries no network"
+        else:
+            try:
+                learning_rate = network_learning_rate_ceiling(
+                    result.network, loss=loss, batch_size=batch_size, n_classes=n_classes,
+                    q0=result.q0, input_correlation=result.c0, momentum=momentum,
+                    c0_within=result.c0_within, c0_between=result.c0_between)
+            except UnsupportedKernelError as err:
+                lr_why = f"the tangent kernel is not computed for this network: {err}"
     s = result.summary
     n = len(result.q) - 1
     corr_findings = [f for f in s.findings if f.topic == "correlation"]
@@ -98,8 +125,9 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None, *,
                       "phase of a plain stack (Schoenholz et al. 2017)")
     plain = "computed for plain stacks: recommend(act, widths=..., loss=...)"
     reasons = [corr, grow, _learning_rate(learning_rate) if learning_rate is not None else
-               _not_computed("learning rate", "ceiling 2 / lambda_max",
-                             plain + " or network_learning_rate_ceiling(network, loss=...)")]
+               _not_computed("learning rate", "ceiling 2 / lambda_max", lr_why or (
+                   plain + ", network_learning_rate_ceiling(network, loss=...) or "
+                   "network_verdict(..., loss=..., batch_size=...)"))]
     fw: FiniteWidth | None = None
     why = None
     try:

@@ -107,6 +107,15 @@ CASES: list[tuple[str, str, dict[str, Any]]] = [
      {"network": _stack("hard_tanh", 330, 1e4, 1e4)}),
     ("network, residual formula", "/v1/network",
      {"network": _residual(_FORMULA["formula"], 400), "plan": None, "simulate": False}),
+    ("network with its learning-rate ceiling, 500 classes", "/v1/network",
+     {"network": {"input_width": 64, "blocks": [
+         {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 128}},
+         {"repeat": {"times": 100, "blocks": [{"residual": {"weight": 0.5, "branch": [
+             {"norm": "layer"}, {"dense": {"sigma_w2": 2.0, "sigma_b2": 0.0, "width": 128}},
+             {"activation": "tanh"},
+             {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 128}}]}}]}},
+         {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 500}}]},
+      "plan": None, "loss": "cross_entropy", "batch_size": 64}),
     ("network plan with a target", "/v1/network",
      {"network": _residual("tanh", 50), "plan": {"target": 0.9}}),
     ("network, simulated positions", "/v1/network",

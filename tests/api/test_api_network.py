@@ -268,3 +268,42 @@ def test_network_image_errors(client):
     got = problem(client.post("/v1/plots/network",
                               json={"network": stack("tanh", 2000, 1.5, 0.05)}), 422, BUDGET)
     assert pointers(got) == ["/network"]
+
+
+# ---------------------------------------------------------------------------------------------
+# with a loss: the verdict's learning-rate ceiling (issue 15) through norms and attention
+# ---------------------------------------------------------------------------------------------
+NORMED = {"input_width": 16, "blocks": [
+    dense(1.0, width=64), {"repeat": {"times": 2, "blocks": [{"residual": {"weight": 0.5, "branch": [
+        {"norm": "layer"}, dense(2.0, width=64), {"activation": "relu"}, dense(1.0, width=64)]}}]}},
+    {"norm": "rms"}, dense(1.0, width=10)]}
+
+
+def test_a_loss_gives_the_verdict_its_ceiling(client, strict_json):
+    # the reference is the Python API (itself checked against seeded torch kernels in
+    # tests/test_network_ntk_blocks.py)
+    body = post(client, {"network": NORMED, "c0": 0.2, "plan": None, "loss": "cross_entropy",
+                         "batch_size": 32}, strict_json)
+    result = propcalc.network_propagation(NORMED, 1.0, 0.2)
+    verdict = propcalc.network_verdict(result, loss="cross_entropy", batch_size=32)
+    assert body["verdict"] == jsonable(verdict.to_dict())
+    lr = next(r for r in body["verdict"]["reasons"] if r["name"] == "learning rate")
+    assert lr["passes"] is True and lr["value"] > 0
+
+
+def test_loss_members_are_checked(client):
+    body = problem(client.post("/v1/network", json={"network": NORMED, "batch_size": 8,
+                                                    "momentum": 0.5}), 422, INVALID)
+    assert pointers(body) == ["/batch_size", "/momentum"]
+    body = problem(client.post("/v1/network", json={"network": NORMED, "loss": "mse"}), 422,
+                   INVALID)
+    assert pointers(body) == ["/batch_size"]
+
+
+def test_many_classes_are_refused_by_the_budget(client):
+    # the softmax curvature of K = 2000 outputs: 20000 K draws, over the default budget
+    wide = {"input_width": 16, "blocks": [dense(1.0, width=64), {"activation": "tanh"},
+                                          dense(1.0, width=2000)]}
+    body = problem(client.post("/v1/network", json={
+        "network": wide, "plan": None, "loss": "cross_entropy", "batch_size": 8}), 422, BUDGET)
+    assert pointers(body) == ["/n_classes"] and "learning-rate ceiling" in body["detail"]

@@ -263,7 +263,17 @@ def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
     result = network_propagation(net, args.q0, args.c0, c0_within=args.c0_within,
                                  c0_between=args.c0_between, seed=args.seed,
                                  simulation_width=args.width)
-    verdict = network_verdict(result)
+    if args.loss is None:
+        given = [o for o, v in (("--n-classes", args.n_classes), ("--batch-size", args.batch_size),
+                                ("--momentum", args.momentum or None)) if v is not None]
+        if given:
+            raise UsageError(f"{', '.join(given)} only matter with a loss: give "
+                             "--loss cross_entropy|mse too")
+    elif args.batch_size is None:
+        raise UsageError("--loss needs --batch-size (inputs per step): the learning-rate "
+                         "ceiling depends on it")
+    verdict = network_verdict(result, loss=args.loss, n_classes=args.n_classes,
+                              batch_size=args.batch_size, momentum=args.momentum)
     check = None
     if args.check:
         check = simulate_network(net, q0=args.q0, c0=args.c0, c0_within=args.c0_within,
@@ -343,6 +353,14 @@ def register(sub: Any) -> None:
     p.add_argument("--convolution", default="gaussian",
                    choices=["gaussian", "delta_orthogonal"],
                    help="plan: convolution kernels (default gaussian)")
+    p.add_argument("--loss", choices=["cross_entropy", "mse"],
+                   help="verdict: the learning-rate ceiling of the described network for this "
+                        "loss (needs --batch-size) and its output-layer reason")
+    p.add_argument("--n-classes", type=int,
+                   help="with --loss: outputs K (default: the readout's width)")
+    p.add_argument("--batch-size", type=int, help="with --loss: inputs per step B")
+    p.add_argument("--momentum", type=finite_float, default=0.0,
+                   help="with --loss: heavy-ball momentum of the ceiling (default 0)")
     p.add_argument("--no-plan", action="store_true", help="skip the initialisation plan")
     p.add_argument("--check", action="store_true",
                    help="also measure seeded finite-width networks of the description and "
