@@ -22,8 +22,8 @@ from typing import Any
 import numpy as np
 
 from ..errors import InvalidParameterError
-from ..results import OMIT, Result
 from ..numerics.smoothing import Smoothing
+from ..results import OMIT, Result
 from .profile import ActivationProperties, profile
 
 __all__ = ["Activation", "ActivationProperties"]
@@ -157,18 +157,7 @@ class Activation(Result):
         """
         if self.declared_scale is not None:
             return float(self.declared_scale)
-        x = np.linspace(-20.0, 20.0, 40001)
-        with np.errstate(all="ignore"):
-            d = self.derivative(x)
-        dd = np.abs(np.diff(d)) / (x[1] - x[0])
-        across = np.zeros(dd.shape, dtype=bool)
-        for b in self.breakpoints:
-            across |= (x[:-1] <= b + 1e-9) & (x[1:] >= b - 1e-9)
-        dd = np.where(across | ~np.isfinite(dd), 0.0, dd)
-        top, curv = float(np.max(np.abs(d[np.isfinite(d)]), initial=0.0)), float(np.max(dd))
-        if curv <= 0.0 or top <= 0.0:
-            return 1.0
-        return float(min(1.0, max(1e-3, top / curv)))
+        return self._estimated_structure[0]
 
     @cached_property
     def reach(self) -> float:
@@ -183,27 +172,16 @@ class Activation(Result):
         """
         if self.declared_scale is not None:
             return 0.0
-        scale = self.scale
+        return self._estimated_structure[1]
+
+    @cached_property
+    def _estimated_structure(self) -> tuple[float, float]:
+        """(scale, reach) estimated from one evaluation of phi' on the grid of step 1e-3."""
         x = np.linspace(-20.0, 20.0, 40001)
         with np.errstate(all="ignore"):
             d = self.derivative(x)
-        dd = np.diff(d) / (x[1] - x[0])
-        xm = 0.5 * (x[:-1] + x[1:])
-        ok = np.isfinite(dd)
-        for b in self.breakpoints:
-            ok &= np.abs(xm - b) > 2e-3
-        if not ok.any():
-            return 0.0
-        big = ok & (np.abs(dd) > 1e-6 * float(np.max(np.abs(dd[ok]))))
-        sign = np.sign(dd[big])
-        flips = np.flatnonzero(sign[1:] != sign[:-1])
-        if not flips.size:
-            return 0.0
-        xs = xm[big]
-        far = float(np.max(np.abs(np.concatenate([xs[flips], xs[flips + 1]]))))
-        if far <= 4.0 * scale:
-            return 0.0
-        return math.inf if far > 16.0 else far + 4.0 * scale
+        scale = _grid_scale(x, d, self.breakpoints)
+        return scale, _grid_reach(x, d, self.breakpoints, scale)
 
     @cached_property
     def exact_parity(self) -> str | None:
@@ -241,6 +219,40 @@ class Activation(Result):
     def properties(self) -> ActivationProperties:
         """Range, monotonicity, parity, smoothness, dead units, saturating tails."""
         return profile(self)
+
+
+def _grid_scale(x: Array, d: Array, breakpoints: tuple[float, ...]) -> float:
+    """max|phi'| / max|phi''| from phi' on the grid x (off the breakpoints), capped to [1e-3, 1]."""
+    dd = np.abs(np.diff(d)) / (x[1] - x[0])
+    across = np.zeros(dd.shape, dtype=bool)
+    for b in breakpoints:
+        across |= (x[:-1] <= b + 1e-9) & (x[1:] >= b - 1e-9)
+    dd = np.where(across | ~np.isfinite(dd), 0.0, dd)
+    top, curv = float(np.max(np.abs(d[np.isfinite(d)]), initial=0.0)), float(np.max(dd))
+    if curv <= 0.0 or top <= 0.0:
+        return 1.0
+    return float(min(1.0, max(1e-3, top / curv)))
+
+
+def _grid_reach(x: Array, d: Array, breakpoints: tuple[float, ...], scale: float) -> float:
+    """The farthest inflection of phi from 0 (0 within 4 scales, inf past 16), from phi' on x."""
+    dd = np.diff(d) / (x[1] - x[0])
+    xm = 0.5 * (x[:-1] + x[1:])
+    ok = np.isfinite(dd)
+    for b in breakpoints:
+        ok &= np.abs(xm - b) > 2e-3
+    if not ok.any():
+        return 0.0
+    big = ok & (np.abs(dd) > 1e-6 * float(np.max(np.abs(dd[ok]))))
+    sign = np.sign(dd[big])
+    flips = np.flatnonzero(sign[1:] != sign[:-1])
+    if not flips.size:
+        return 0.0
+    xs = xm[big]
+    far = float(np.max(np.abs(np.concatenate([xs[flips], xs[flips + 1]]))))
+    if far <= 4.0 * scale:
+        return 0.0
+    return math.inf if far > 16.0 else far + 4.0 * scale
 
 
 # names that lived here before the activation layer was split by stage (builtins.py now);

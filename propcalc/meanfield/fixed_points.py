@@ -37,6 +37,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..activations.base import Activation
+from ..caches import cached
 from ..errors import ComputationError
 from ..numerics import roots
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
@@ -128,6 +129,19 @@ def _grid_index(q: Array, up: bool) -> Array:
     return (np.ceil(k) if up else np.floor(k)).astype(int)
 
 
+@cached("fixed_points.scan", maxsize=32)
+def _scan_moments(act: Activation, rule: QuadratureRule, k_first: int, k_last: int) -> Array:
+    """E[phi(sqrt(q) z)^2] on the scan grid points k_first..k_last (cached, read-only).
+
+    The row does not depend on the point: the chunks of a sweep and repeated reports of
+    one activation share it (keyed exactly: the activation by identity, the rule, the
+    grid's range, so the values are those of the one vectorised call they replace).
+    """
+    m2 = np.asarray(second_moment(act, _grid(np.arange(k_first, k_last + 1)), rule), dtype=float)
+    m2.setflags(write=False)
+    return m2
+
+
 def _few(fn, act: Activation, q: Array, rule: QuadratureRule, **kw) -> Array:  # type: ignore[no-untyped-def]
     """A moment of :mod:`propcalc.meanfield.maps` at a few q, each by the scalar fast path."""
     qa = np.asarray(q, dtype=float)
@@ -198,7 +212,7 @@ def _solve_block(act: Activation, sw: Array, sb: Array, q_input: Array,
     k_lo, k_hi = _grid_index(q_lo, up=False), _grid_index(q_hi, up=True)
     ks = np.arange(int(k_lo.min()), int(k_hi.max()) + 1)
     grid = _grid(ks)
-    m2 = second_moment(act, grid, rule)
+    m2 = _scan_moments(act, rule, int(ks[0]), int(ks[-1]))
     in_range = (ks[None, :] >= k_lo[:, None]) & (ks[None, :] <= k_hi[:, None])
     g = (sw[:, None] * m2[None, :] + sb[:, None]) - grid[None, :]
     g_start = gap(q_start, sw, sb)

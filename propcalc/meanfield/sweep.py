@@ -289,9 +289,17 @@ def _activations(spec: Any) -> list[Activation]:
                               "of them", spec)
 
 
+def _on_terminal(stream: Any) -> bool:
+    """Whether ``stream`` is a terminal (True when that cannot be told: tqdm decides)."""
+    try:
+        return bool(stream.isatty())
+    except Exception:  # noqa: BLE001 - a replaced or closed stream: let tqdm decide as before
+        return True
+
+
 def _progress_bar(total: int, progress: bool | None, desc: str) -> Any:
-    if progress is False:
-        return None
+    if progress is False or (progress is None and not _on_terminal(sys.stderr)):
+        return None  # (tqdm would be disabled there: importing it costs about 20 ms)
     try:
         from tqdm.auto import tqdm
     except ImportError:

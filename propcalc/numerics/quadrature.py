@@ -90,9 +90,9 @@ def _validate(values: Array, field: str, lower: float | None = None, upper: floa
 
 
 def _check_finite(values: Array, x: Array, what: str) -> None:
-    bad = ~np.isfinite(values)
-    if np.any(bad):
-        where = float(np.ravel(x)[np.flatnonzero(np.ravel(bad))[0]])
+    ok = np.isfinite(values)
+    if not ok.all():
+        where = float(np.ravel(x)[np.flatnonzero(~np.ravel(ok))[0]])
         raise ComputationError(
             f"{what} is not finite at x = {where:.6g}, a point the Gaussian integral reaches")
 
@@ -136,9 +136,10 @@ def _tail_rows(fn: Callable[..., Array], mean: Array, q: Array, top: Array, tota
     return np.asarray(bad), np.asarray(worst)
 
 
-def _check_tails(fn: Callable[..., Array], mean: Array, q: Array, top: Array, total: Array,
+def _check_tails(fn: Callable[..., Array], mean: Array, q: Array, f: Array, total: Array,
                  rule: QuadratureRule, what: str, with_z: bool) -> None:
-    """Raise ComputationError where :func:`_tail_rows` finds a tail that cannot be neglected."""
+    """Raise ComputationError where :func:`_tail_rows` finds a tail that cannot be neglected
+    (``f``: the integrand on the nodes, read only when the common case fails)."""
     L = rule.z_max
     ends = np.stack([mean - np.sqrt(q) * L, mean + np.sqrt(q) * L], axis=-1)
     with np.errstate(over="ignore", invalid="ignore"):
@@ -148,7 +149,7 @@ def _check_tails(fn: Callable[..., Array], mean: Array, q: Array, top: Array, to
     tail = np.max(np.abs(fe), axis=-1) * (_INV_SQRT_2PI * math.exp(-0.5 * L * L)) * 10.0
     if np.all(tail <= 1e-10 * np.asarray(total) + 1e-300):
         return
-    bad, worst = _tail_rows(fn, mean, q, top, total, rule, with_z)
+    bad, worst = _tail_rows(fn, mean, q, np.max(np.abs(f), axis=-1), total, rule, with_z)
     if np.any(bad):
         xe = float(np.ravel(worst)[int(np.flatnonzero(np.ravel(bad))[0])])
         raise ComputationError(
@@ -222,15 +223,22 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
         else:
             f = np.asarray(fn(x), dtype=float)
     # zero-width panels (coinciding edges) put weight-0 nodes on breakpoints: ignore them
-    if not np.all(w > 0):
+    if not _all_positive(w):
         f = np.where(w > 0, f, 0.0)
     _check_finite(f, x, what)
     wf = w * f
     out = np.sum(wf, axis=-1)
-    if check_tails:
-        _check_tails(fn, mean_b, q_b, np.max(np.abs(f), axis=-1), np.sum(np.abs(wf), axis=-1),
-                     rule, what, with_z)
+    if check_tails:  # (wf is no longer needed: its absolute values in place)
+        _check_tails(fn, mean_b, q_b, f, np.sum(np.abs(wf, out=wf), axis=-1), rule, what,
+                     with_z)
     return out
+
+
+def _all_positive(w: Array) -> bool:
+    """Whether every weight is > 0 (one row when the rows are a broadcast of it)."""
+    if w.ndim > 1 and not any(w.strides[:-1]):
+        w = w[(0,) * (w.ndim - 1)]
+    return bool(np.all(w > 0))
 
 
 def _scalar_expectation(fn: Callable[[Array], Array], q: float, mean: float,

@@ -36,17 +36,16 @@ from typing import Any
 
 import numpy as np
 from scipy import optimize
-from scipy.optimize import elementwise
 
 __all__ = [
     "ROOT_RTOL",
     "SCALAR_LIMIT",
     "brent",
+    "find_extrema",
     "find_roots",
     "grid_brackets",
-    "grid_zeros",
     "grid_dips",
-    "find_extrema",
+    "grid_zeros",
     "hidden_pair",
     "roots_on_grid",
 ]
@@ -146,11 +145,81 @@ def find_roots(fun: Callable[..., Array], a: Array, b: Array, args: Sequence[Arr
                            rtol=rtol)
         return out
     sub = tuple(x[idx] for x in args)
-    res = elementwise.find_root(fun, (a[idx], b[idx]), args=sub,
-                                tolerances={"xrtol": rtol, "xatol": 4 * np.finfo(float).tiny,
-                                            "fatol": 0.0, "frtol": 0.0})
-    out[idx] = res.x
+    out[idx] = _chandrupatla(fun, a[idx], b[idx], sub, rtol, 4 * np.finfo(float).tiny)
     return out
+
+
+def _chandrupatla(fun: Callable[..., Array], a: Array, b: Array, args: tuple[Array, ...],
+                  xrtol: float, xatol: float) -> Array:
+    """Chandrupatla's bracketing method elementwise (Chandrupatla 1997, Adv. Eng. Softw. 28).
+
+    The iteration, the stopping rules (``|x2 - x1| < |x_min| xrtol + xatol`` or
+    ``f(x_min) = 0``) and the order of every operation are those of
+    :func:`scipy.optimize.elementwise.find_root` (scipy 1.17, ``fatol = frtol = 0``),
+    so the roots are the same to the last bit; only its general machinery (array
+    namespaces, result objects, callbacks) is left out, which was about half the cost of
+    a polish. Converged problems leave the active set after each step, as there: ``fun``
+    sees the same arrays. A bracket whose ends have one sign gives NaN.
+    """
+    x1, x2 = a.astype(float, copy=True), b.astype(float, copy=True)
+    f1 = np.array(fun(x1, *args), dtype=float)
+    f2 = np.array(fun(x2, *args), dtype=float)
+    frtol = 0.0 * np.minimum(np.abs(f1), np.abs(f2))
+    out = np.zeros(x1.size)
+    active = np.arange(x1.size)
+    x3 = f3 = t = None
+    max_steps = math.log2(np.finfo(float).max) - math.log2(np.finfo(float).tiny)
+    steps = 0
+    while True:
+        # the termination check (scipy's check_termination)
+        i = np.abs(f1) < np.abs(f2)
+        xmin = np.where(i, x1, x2)
+        fmin = np.where(i, f1, f2)
+        stop = np.abs(fmin) <= 0.0 + frtol
+        bad = (np.sign(f1) == np.sign(f2)) & ~stop
+        bad |= (~(np.isfinite(x1) & np.isfinite(x2)) | (np.isnan(f1) & np.isnan(f2))) & ~stop
+        xmin[bad] = np.nan
+        stop |= bad
+        dx = np.abs(x2 - x1)
+        tol = np.abs(xmin) * xrtol + xatol
+        stop |= dx < tol
+        if stop.any():
+            out[active[stop]] = xmin[stop]
+            keep = ~stop
+            active = active[keep]
+            x1, f1, x2, f2, frtol, dx, tol = (v[keep] for v in (x1, f1, x2, f2, frtol, dx, tol))
+            if x3 is not None:
+                x3, f3 = x3[keep], f3[keep]
+            args = tuple(v[keep] for v in args)
+        if active.size == 0:
+            return out
+        if steps >= max_steps:
+            out[active] = xmin[~stop] if stop.any() else xmin
+            return out
+        if x3 is not None:
+            # the next point: inverse quadratic interpolation where it is safe, else bisection
+            xi1 = (x1 - x2) / (x3 - x2)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                phi1 = (f1 - f2) / (f3 - f2)
+            alpha = (x3 - x1) / (x2 - x1)
+            j = ((1 - np.sqrt(1 - xi1)) < phi1) & (phi1 < np.sqrt(xi1))
+            f1j, f2j, f3j, alphaj = f1[j], f2[j], f3[j], alpha[j]
+            t = np.full_like(alpha, 0.5)
+            t[j] = (f1j / (f1j - f2j) * f3j / (f3j - f2j)
+                    - alphaj * f1j / (f3j - f1j) * f2j / (f2j - f3j))
+            tl = 0.5 * tol / dx
+            lo, hi = tl, 1 - tl
+            t = np.where((t < lo) | np.isnan(lo), lo, t)
+            t = np.where((t > hi) | np.isnan(hi), hi, t)
+        x = x1 + (0.5 if t is None else t) * (x2 - x1)
+        f = np.asarray(fun(x, *args), dtype=float)
+        x3, f3 = x2.copy(), f2.copy()
+        j = np.sign(f) == np.sign(f1)
+        nj = ~j
+        x3[j], f3[j] = x1[j], f1[j]
+        x2[nj], f2[nj] = x1[nj], f1[nj]
+        x1, f1 = x, f
+        steps += 1
 
 
 def grid_brackets(values: Array, usable: Array | None = None) -> tuple[Array, Array]:
