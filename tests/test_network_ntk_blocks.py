@@ -144,6 +144,9 @@ def test_layer_and_rms_norm_scale_the_kernel_by_the_inverse_variance():
      r"block /blocks/2 \(pooling\): the stream's law is not known there \(max pooling"),
     ([_dense(1.0, 0.0, 8), {"dropout": {"keep_rate": 0.9}}, {"activation": "tanh"}],
      r"block /blocks/2 \(activation\): the stream's law is not known"),
+    # seeded torch, 8 positions, B = 16 and 32: diagonal 7% low, pair entry 10-13% of it low
+    ([_conv(1.0, 0.0, 3, 8), {"norm": "batch"}, {"activation": "relu"}],
+     r"block /blocks/1 \(norm\): batch norm of a stream with several positions"),
 ])
 def test_what_is_still_refused_is_refused_by_path(blocks, match):
     with pytest.raises(UnsupportedKernelError, match=match):

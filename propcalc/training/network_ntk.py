@@ -10,8 +10,8 @@ weight^2 Theta_branch``), layer / RMS / batch norm, dropout, convolution, averag
 attention in the uniform-attention limit; repeats are written out.
 
 Refused with :class:`~propcalc.training.ntk.UnsupportedKernelError` naming the block's path:
-attention whose query-key logits spread (``query_key_scale != 0`` with distinct tokens), max
-pooling and every block after a stream whose law is unknown (an activation after a residual sum
+attention whose query-key logits spread (``query_key_scale != 0`` with distinct tokens), batch
+norm of a stream with several positions, max pooling and every block after a stream whose law is unknown (an activation after a residual sum
 of non-Gaussian parts or after dropout), a missing width. The ceiling also refuses an output
 with several positions (no global average pooling before the readout). A plain stack gives
 exactly :func:`propcalc.training.ntk.tangent_kernel` (tested).
@@ -148,7 +148,7 @@ class _Carry:
         if isinstance(b, Norm):
             if b.kind == "batch":
                 self.notes[_BATCH_NOTE] = None
-            return rules.norm(before, b, theta, where)
+            return rules.norm(before, b, theta, where, self.spatial)
         if isinstance(b, Dropout):
             self.notes[_DROPOUT_NOTE] = None
             return rules.dropout(b, theta)
