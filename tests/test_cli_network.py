@@ -351,3 +351,32 @@ def test_a_network_the_kernel_does_not_cover_says_why(tmp_path):
 def test_loss_options_are_checked(tmp_path, args, needle):
     code, out, err = run("network", write(tmp_path, NORMED), "--no-plan", *args)
     assert code == 2 and needle in err
+
+def test_the_verdict_has_finite_width_numbers_for_a_residual_network(tmp_path):
+    # issue 15 part 4: the finite-width reasons of a post-norm residual stack at width 16, the
+    # numbers of propcalc.training.network_finite_width (checked against seeded numpy networks
+    # in tests/test_network_finite_width_blocks.py)
+    from propcalc.training import network_finite_width
+
+    n = 16
+    desc = {"input_width": n, "blocks": [
+        {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": n}},
+        {"repeat": {"times": 64, "blocks": [
+            {"residual": {"branch": [{"dense": {"sigma_w2": 2.0, "sigma_b2": 0.0, "width": n}},
+                                     {"activation": "relu"},
+                                     {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": n}}]}},
+            {"norm": "rms"}]}},
+        {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": n}}]}
+    fw = network_finite_width(desc)
+    path = write(tmp_path, desc)
+    code, out, err = run("network", path, "--no-plan")
+    assert code == 0, err
+    line = next(ln for ln in out.splitlines() if ln.startswith("finite-width gradient spread"))
+    assert "FAIL" in line and f"{fw.gradient_spread:g}" in line
+    assert f"widen the hidden layers to about {fw.width_needed} units" in line
+    code, out, err = run("network", path, "--no-plan", "--json")
+    assert code == 0, err
+    reasons = {r["name"]: r for r in strict_json(out)["verdict"]["reasons"]}
+    assert reasons["finite-width gradient spread"]["value"] == fw.gradient_spread
+    assert reasons["finite-width spread"]["value"] == fw.top_log_sd == 0.0  # the RMS norm: q = 1
+    assert reasons["finite-width drift"]["passes"] is fw.drift_ok

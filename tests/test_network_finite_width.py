@@ -79,8 +79,8 @@ def test_a_mixed_chain_against_seeded_networks():
 def test_other_blocks_are_refused_with_their_path_and_reason():
     base = [dense(1.0, 0.0, 64), {"activation": "relu"}]
     cases = [
-        ([*base, {"residual": {"branch": [dense(1.0, 0.0, 64)]}}], "/blocks/2", "cross term"),
-        ([*base, {"norm": "layer"}, dense(1.0, 0.0, 64)], "/blocks/2", "normalisation"),
+        # residual sums and layer / RMS norms are covered since (test_network_finite_width_blocks)
+        ([*base, {"norm": "batch"}, dense(1.0, 0.0, 64)], "/blocks/2", "batch's statistics"),
         ([*base, {"dropout": {"keep_rate": 0.9}}], "/blocks/2", "binomial"),
         ([*base, dense(2.0)], "/blocks/2", "gives no width"),
         ([dense(1.0, 0.0, 64), dense(1.0, 0.0, 64)], "/blocks/1", "two dense blocks"),
@@ -106,4 +106,8 @@ def test_the_network_verdict_carries_the_finite_width_reasons():
         assert f"about {fw.width_needed} units" in v.reason("finite-width gradient spread").fix
     res = {"blocks": [dense(1.0, 0.0, 64), {"residual": {"branch": [dense(1.0, 0.0, 64)]}}]}
     r = network_verdict(propcalc.network_propagation(res)).reason("finite-width drift")
-    assert r.passes is None and "not computed: the residual block at /blocks/1" in r.detail
+    assert r.value == network_finite_width(res).top_typical_drift  # residual sums: covered now
+    batch = {"blocks": [dense(1.0, 0.0, 64), {"activation": "relu"}, dense(1.0, 0.0, 64),
+                        {"norm": "batch"}]}
+    r = network_verdict(propcalc.network_propagation(batch)).reason("finite-width drift")
+    assert r.passes is None and "not computed: the norm block at /blocks/3" in r.detail

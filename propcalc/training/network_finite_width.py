@@ -10,61 +10,38 @@ Roberts, Yaida & Hanin 2022). The input enters with its exact mean square q0 (as
 :func:`propcalc.simulate` draws it), so layer 0 has conditional variance
 ``sigma_w2 q0 + sigma_b2`` exactly.
 
-Refused, with the reason (:class:`FiniteWidthUnsupportedError` naming the block's JSON
-pointer): residual sums (the cross term ``x . F(x) / n`` between the stream and the branch
-adds 1/n terms this chain does not carry), normalisation (the norm divides by the measured
-second moment: its 1/n law is another one), dropout (the mask's binomial noise), convolution,
-pooling and attention (the units of one position are not the whole layer), two activations in
-a row, and dense blocks without a width.
+Every other network goes to :mod:`propcalc.training.network_laws` (residual blocks, layer and
+RMS norms, the positions between them; the derivation is in
+:mod:`propcalc.training.block_laws`), which refuses, with the block's JSON pointer and the
+reason (:class:`FiniteWidthUnsupportedError`), what it does not cover: batch norm, convolution,
+pooling and attention, nested residual blocks, branches that end in an activation, an
+activation after a residual sum or a norm, orthogonal weights, dense blocks without a width.
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterator
 from typing import Any
 
-from ..errors import PropcalcError, check_positive
+from ..errors import check_positive
 from ..networks.blocks import ActivationBlock, Block, Dense, Repeat
-from ..networks.description import Network, network as read_network
+from ..networks.description import Network
+from ..networks.description import network as read_network
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from .finite_width import MAX_LAYERS, FiniteWidth, chain_laws, check_widths
+from .network_laws import _WHY, FiniteWidthUnsupportedError, _elementary, network_laws
 
 __all__ = ["FiniteWidthUnsupportedError", "network_finite_width"]
 
 
-class FiniteWidthUnsupportedError(PropcalcError, ValueError):
-    """The finite-width laws are not available for this network (the message says why)."""
-
-
-_WHY = {
-    "residual": "a residual sum: the cross term x . F(x) / n between the stream and the branch "
-                "adds 1/n terms that the chain of dense layers does not carry",
-    "norm": "a normalisation divides by the measured second moment, a 1/n law of its own",
-    "dropout": "dropout's binomial mask adds noise of its own",
-    "convolution": "a convolution: the units of one position are not the whole layer",
-    "pooling": "pooling: the units of one position are not the whole layer",
-    "attention": "attention mixes positions: the units of one token are not the whole layer",
-}
-
-
-def _elementary(blocks: tuple[Block, ...], path: str, budget: list[int]
-                ) -> Iterator[tuple[str, Block]]:
-    for i, b in enumerate(blocks):
-        where = f"{path}/{i}"
-        if isinstance(b, Repeat):
-            for _ in range(b.times):
-                yield from _elementary(b.blocks, f"{where}/repeat/blocks", budget)
-            continue
-        budget[0] -= 1
-        if budget[0] < 0:
-            raise FiniteWidthUnsupportedError(f"more than {2 * MAX_LAYERS} blocks: beyond the "
-                                              "deepest chain analysed")
-        yield where, b
+def _plain(blocks: tuple[Block, ...]) -> bool:
+    """Only dense and activation blocks (repeats looked into, not expanded)."""
+    return all(_plain(b.blocks) if isinstance(b, Repeat) else isinstance(b, (Dense, ActivationBlock))
+               for b in blocks)
 
 
 def network_finite_width(network: Any, q0: float = 1.0, *,
                          rule: QuadratureRule = DEFAULT_RULE) -> FiniteWidth:
-    """Spread and drift of q and of gradient norms along a chain of dense layers of given widths.
+    """Spread and drift of q and of gradient norms along a network of blocks of given widths.
 
     Parameters
     ----------
@@ -76,7 +53,9 @@ def network_finite_width(network: Any, q0: float = 1.0, *,
     Returns
     -------
     FiniteWidth
-        Layer l is the l-th dense block's output (layer 0 the first).
+        For a plain chain, layer l is the l-th dense block's output (layer 0 the first). Otherwise
+        the recorded positions are the outputs of the stream's dense blocks, residual blocks and
+        norms, in order (the input first when the network does not start with a dense block).
 
     Raises
     ------
@@ -93,6 +72,13 @@ def network_finite_width(network: Any, q0: float = 1.0, *,
     """
     net = network if isinstance(network, Network) else read_network(network)
     qi = check_positive("q0", q0)
+    if _plain(net.blocks):
+        return _chain(net, qi, rule)
+    return network_laws(net, qi, rule)
+
+
+def _chain(net: Network, qi: float, rule: QuadratureRule) -> FiniteWidth:
+    """The plain chain dense, activation, dense, ... (finite_width.chain_laws)."""
     layers: list[tuple[Any, float, float]] = []
     widths: list[int] = []
     first: Dense | None = None
@@ -101,6 +87,8 @@ def network_finite_width(network: Any, q0: float = 1.0, *,
         if isinstance(b, Dense):
             if b.width is None:
                 raise FiniteWidthUnsupportedError(f"the dense block at {where} gives no width")
+            if b.weights != "gaussian":
+                raise FiniteWidthUnsupportedError(f"the dense block at {where}: {_WHY['orthogonal']}")
             if first is None:
                 first = b
             elif pending is None:

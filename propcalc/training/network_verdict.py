@@ -36,8 +36,9 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None, *,
     ``correlation depth`` (two inputs that merge, 1 - c <= 1e-3, or lose their correlation, the
     power law along repeated blocks otherwise), ``gradient growth`` (the input's gradient against
     the output's, within GROWTH_LIMIT either way). The finite-width reasons come from
-    :func:`propcalc.training.network_finite_width` where the network is a chain of dense blocks
-    with widths and activations between them; for other networks they are "not computed" with
+    :func:`propcalc.training.network_finite_width` where the network's dense blocks give their
+    widths and its blocks are dense, activation, residual or layer / RMS norm blocks (the forms
+    of :mod:`propcalc.training.network_laws`); for other networks they are "not computed" with
     the block and the reason (``propcalc network --check`` measures a network's finite-width
     deviations in seeded networks). The output layer: with ``loss`` and a dense last block (the
     readout, :mod:`propcalc.training.network_readout`), as for a plain plan.
@@ -135,9 +136,10 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None, *,
             raise FiniteWidthUnsupportedError("the propagation carries no network")
         fw = network_finite_width(result.network, result.q0)
     except PropcalcError as err:  # FiniteWidthUnsupportedError names the block and the reason
-        why = (f"{err}; the finite-width laws cover chains of dense blocks with widths and "
-               "activations between them; propcalc network --check measures a network's "
-               "finite-width deviations in seeded networks")
+        why = (f"{err}; the finite-width laws cover dense blocks with widths, activations, "
+               "residual blocks and layer / RMS norms (propcalc.training.network_laws); "
+               "propcalc network --check measures a network's finite-width deviations in "
+               "seeded networks")
     reasons += _finite_width(fw, why)
     out = network_readout(result, loss, n_classes)
     reasons.append(_output(loss, out.n_classes, out.logit_variance, out.penultimate,

@@ -111,6 +111,26 @@ def test_layer_norm_resets_q(client, strict_json):
     assert_allclose(prop["c"], 0.4, rtol=1e-12)
 
 
+def test_the_verdict_has_finite_width_numbers_for_residual_networks(client, strict_json):
+    # issue 15 part 4: a pre-norm residual stack whose dense blocks give their widths gets the
+    # finite-width reasons of propcalc.training.network_finite_width (checked against seeded
+    # numpy networks in tests/test_network_finite_width_blocks.py), not "not computed"
+    from propcalc.training import network_finite_width
+
+    description = {"input_width": 48, "blocks": [dense(1.0, width=48), {"repeat": {
+        "times": 12, "blocks": [{"residual": {"weight": 0.5, "branch": [
+            {"norm": "layer"}, dense(2.0, width=96), {"activation": "gelu"},
+            dense(1.0, width=48)]}}]}}]}
+    body = post(client, {"network": description, "plan": None}, strict_json)
+    result = propcalc.network_propagation(description)
+    assert body["verdict"] == jsonable(propcalc.network_verdict(result).to_dict())
+    reasons = {r["name"]: r for r in body["verdict"]["reasons"]}
+    fw = network_finite_width(description)
+    assert reasons["finite-width spread"]["value"] == fw.top_log_sd > 0
+    assert reasons["finite-width gradient spread"]["value"] == fw.gradient_spread > 0
+    assert reasons["finite-width drift"]["passes"] is fw.drift_ok
+
+
 def test_plan_options_reach_the_engine(client, strict_json):
     description = residual_net("tanh", 8, weight=1.0)
     options = {"target": 0.9, "distribution": "orthogonal"}
