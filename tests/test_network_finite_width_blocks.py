@@ -20,7 +20,14 @@ import numpy as np
 import pytest
 
 import propcalc
-from propcalc.networks.blocks import ActivationBlock, Dense, Norm, Repeat, Residual
+from propcalc.networks.blocks import (
+    ActivationBlock,
+    Dense,
+    Dropout,
+    Norm,
+    Repeat,
+    Residual,
+)
 from propcalc.training import (
     FiniteWidthUnsupportedError,
     network_finite_width,
@@ -81,6 +88,10 @@ def _one(net, q0: float, rng: np.random.Generator) -> tuple[list[float], float]:
                 x = b.gain * y
                 backs.append(back)
                 rec = main
+            elif isinstance(b, Dropout):
+                mask = (rng.random(x.size) < b.keep_rate) / b.keep_rate
+                x = x * mask
+                backs.append(lambda g, mask=mask: g * mask)
             elif isinstance(b, Residual):
                 inner: list = []
                 out = forward(b.branch, x, inner, False)
@@ -145,6 +156,22 @@ def with_eps(n: int, times: int = 6) -> dict:
         dense(1.0, 0.0, n), {"activation": "tanh"}, {"norm": "rms"}, dense(1.0, 0.1, n)]}
 
 
+def dropout_mlp(n: int, times: int = 8) -> dict:
+    """Inverted dropout after every activation of a plain stack (ReLU, keep rate 0.8)."""
+    return {"input_width": n, "blocks": [dense(1.0, 0.0, n), {"repeat": {"times": times, "blocks": [
+        {"activation": "relu"}, {"dropout": {"keep_rate": 0.8}}, dense(1.6, 0.0, n)]}}]}
+
+
+def dropout_branches(n: int, times: int = 8) -> dict:
+    """Pre-norm branches with dropout after GELU, and dropout after tanh before an RMS norm."""
+    return {"input_width": n, "blocks": [dense(1.0, 0.0, n), {"repeat": {"times": times, "blocks": [
+        {"residual": {"branch": [{"norm": "rms"}, dense(2.0, 0.0, 2 * n), {"activation": "gelu"},
+                                 {"dropout": {"keep_rate": 0.7}}, dense(1.0, 0.0, n)],
+                      "weight": 0.6}}]}},
+        dense(1.0, 0.0, n), {"activation": "tanh"}, {"dropout": {"keep_rate": 0.5}},
+        {"norm": "rms"}, dense(1.0, 0.0, n)]}
+
+
 def relu_on_input(n: int, times: int = 10) -> dict:
     """Residual blocks straight on the input (the input is the first position)."""
     return {"input_width": n, "blocks": [{"repeat": {"times": times, "blocks": [
@@ -170,7 +197,8 @@ def _check(desc: dict, n: int, reps: int, seed: int) -> dict:
     return {"q_sd": measured, "g_sd": gsd}
 
 
-@pytest.mark.parametrize("make", [residual_tanh, pre_norm, post_norm, with_eps, relu_on_input])
+@pytest.mark.parametrize("make", [residual_tanh, pre_norm, post_norm, with_eps, relu_on_input,
+                                  dropout_mlp, dropout_branches])
 @pytest.mark.parametrize("n", [32, 128])
 def test_residual_and_norm_networks_against_seeded_networks(make, n):
     _check(make(n), n, 400, seed=n + 7)
@@ -214,8 +242,8 @@ def test_blocks_still_refused_name_their_path_and_reason():
     branch = [dense(1.0, 0.0, n), {"activation": "relu"}, dense(1.0, 0.0, n)]
     cases = [
         ([*stream, {"norm": "batch"}], "/blocks/1", "batch"),
-        ([*stream, {"activation": "relu"}, {"dropout": {"keep_rate": 0.9}}, dense(1.0, 0.0, n)],
-         "/blocks/2", "dropout"),
+        ([*stream, {"dropout": {"keep_rate": 0.9}}, dense(1.0, 0.0, n)], "/blocks/1",
+         "after an activation only"),
         ([*stream, {"residual": {"branch": [{"residual": {"branch": branch}}]}}],
          "/blocks/1/residual/branch/0", "inside a residual branch"),
         ([*stream, {"residual": {"branch": branch[:2]}}], "/blocks/1", "ends in an activation"),

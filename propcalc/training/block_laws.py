@@ -43,6 +43,14 @@ sqrt(Q + eps)``; for an isotropic incoming gradient, ``ln R = ln g^2 - ln(Q + ep
 order 1/n^2 only. So the norm removes the spread of q but passes the spread of the stream's Q
 on to the gradient, as ``-ln Q``.
 
+Dropout (inverted, keep rate p) between an activation and the next dense block (or the
+residual sum or RMS norm the activation feeds): each unit's terms carry the mask m / p^2 with
+E[m] = p and m^2 = m, so ``V = sigma_w2 E[phi^2] / p + sigma_b2`` (Schoenholz et al. 2017's
+1 / keep_rate), ``v = sigma_w2^2 (E[phi^4] / p^3 - E[phi^2]^2 / p^2)``, chi_1 / p,
+``kappa_g = 3 E[phi'^4] / (p E[phi'^2]^2) - 1`` and the forward-backward covariance
+``sigma_w2 (E[phi^2 phi'^2] / (p^2 E[phi'^2]) - E[phi^2] / p)`` (the mask is the same in both
+passes). Two dropouts in a row are one of keep rate p1 p2.
+
 First order. With X_{t+1} = F_t(X_t) + eta_t, Jacobian M_t, second derivatives H_t and noise
 covariance Sigma_t (all of order 1/n): means K_{t+1} = F_t(K_t), covariances
 ``C_{t+1} = M_t C_t M_t^T + Sigma_t`` and the 1/n shifts of the means
@@ -103,7 +111,7 @@ class Tape:
         return self.mean.copy(), np.eye(_DIM)
 
     def chain(self, act: Activation, sw: float, sb: float, n: int, target: int,
-              rule: QuadratureRule, weighting: bool = False) -> None:
+              rule: QuadratureRule, weighting: bool = False, keep: float = 1.0) -> None:
         """phi then a dense block (finite_width's layer) on a stream of n Gaussian units.
 
         The means now (the length map and chi_1); the other coefficients in :meth:`finish`,
@@ -112,34 +120,37 @@ class Tape:
         gradient's norm is sampled elsewhere: the backward factor is then the weighting
         ``sum phi'^2 zeta^2 / sum zeta^2``, of relative variance ``(kappa_g - 2) / n`` (the
         chi^2_n of ``sum zeta^2``, 2 / n, and its covariance 2 / n with the numerator removed)
-        and the same covariance with the forward noise.
+        and the same covariance with the forward noise. ``keep``: inverted dropout between phi
+        and the dense block (module docstring, "Dropout").
         """
         s = float(self.mean[WORK])
         mean = self.mean.copy()
-        mean[WORK] = float(variance_map(act, s, sw, sb, rule))
-        chi = float(chi_1(act, s, sw, rule))
+        mean[WORK] = (float(variance_map(act, s, sw, sb, rule)) - sb) / keep + sb
+        chi = float(chi_1(act, s, sw, rule)) / keep
         for value, what in ((mean[WORK], "variance"), (chi, "chi_1")):
             if not (math.isfinite(value) and 1e-200 <= value <= 1e12):
                 raise ComputationError(f"the mean-field {what} leaves [1e-200, 1e12] ({value:.3g}) "
                                        "at a layer: no finite-width expansion around it")
         mean[target] += math.log(chi)
         self.steps.append(Step(mean, np.eye(_DIM), np.zeros((_DIM, _DIM)), n,
-                               pending=(act, s, sw, sb, target, weighting)))
+                               pending=(act, s, sw, sb, target, weighting, keep)))
 
     def finish(self, rule: QuadratureRule) -> None:
         """The chain steps' coefficients (finite_width's, vectorised over their variances)."""
         groups: dict[tuple[int, float, float], list[Step]] = {}
         for st in self.steps:
             if st.pending is not None:
-                act, _, sw, sb, _, _ = st.pending
+                act, _, sw, sb, *_ = st.pending
                 groups.setdefault((id(act), sw, sb), []).append(st)
         for members in groups.values():
-            act, _, sw, sb, _, _ = members[0].pending
+            act, _, sw, sb, *_ = members[0].pending
             uniq, inverse = np.unique([m.pending[1] for m in members], return_inverse=True)
             co = _coefficients(act, uniq, sw, sb, rule)
             for st, i in zip(members, inverse):
-                target, weighting = st.pending[4], st.pending[5]
+                target, weighting, keep = st.pending[4:]
                 c = {k: float(v[i]) for k, v in co.items()}
+                if keep != 1.0:
+                    c = _dropped(c, sw, sb, keep)
                 if weighting:
                     c["kg"] = max(c["kg"] - 2.0, 0.0)
                 st.jac[WORK, WORK] = c["V1"]
@@ -231,6 +242,26 @@ class Tape:
     def record(self, n: int, sampled: bool) -> None:
         """The stream after the last step is a position (``sampled``: q = s chi^2_n / n)."""
         self.records.append((len(self.steps), n, sampled))
+
+
+def _dropped(c: dict[str, float], sw: float, sb: float, p: float) -> dict[str, float]:
+    """A chain step's coefficients with inverted dropout (keep rate p) between phi and the layer.
+
+    The moments are read back from the coefficients without dropout (m2 = (V - sb) / sw,
+    m4 = v / sw^2 + m2^2, d2 = chi / sw, d4 / d2^2 = (kappa_g + 1) / 3,
+    E[phi^2 phi'^2] / d2 = c / sw + m2) and each unit's terms multiplied by the mask m / p^2
+    (E m = p, m^2 = m): module docstring, "Dropout".
+    """
+    m2 = (c["V"] - sb) / sw
+    m4 = c["v"] / (sw * sw) + m2 * m2
+    cross = c["c"] / sw + m2
+    out = dict(c)
+    out["V"] = sw * m2 / p + sb
+    out["V1"], out["V2"], out["chi"] = c["V1"] / p, c["V2"] / p, c["chi"] / p
+    out["v"] = sw * sw * max(m4 / p ** 3 - m2 * m2 / (p * p), 0.0)
+    out["kg"] = max((c["kg"] + 1.0) / p - 1.0, 0.0)
+    out["c"] = sw * (cross / (p * p) - m2 / p)
+    return out
 
 
 @dataclass(frozen=True)

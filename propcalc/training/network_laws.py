@@ -5,22 +5,23 @@ walks the described blocks, writes the transitions on a tape, and reads the resu
 form of :class:`~propcalc.training.finite_width.FiniteWidth`.
 
 Covered, every dense block giving its ``width`` and Gaussian weights: dense blocks after the
-input, an activation, a residual sum or a norm; an activation after a dense block; layer and
-RMS norms (gain, eps) after a dense block, a residual sum or a norm (an RMS norm also after an
-activation); residual blocks ``shortcut * x + weight * branch(x)`` whose branch is a chain of
-the above (a pre-norm branch: norm, dense, activation, ..., dense) ending in a dense block of
-the stream's width. Positions recorded: the outputs of the stream's dense blocks, residual
-blocks and norms (and the input when the network does not start with a dense block).
+input, an activation, a residual sum or a norm; an activation after a dense block; inverted
+dropout after an activation; layer and RMS norms (gain, eps) after a dense block, a residual
+sum or a norm (an RMS norm also after an activation); residual blocks ``shortcut * x + weight *
+branch(x)`` whose branch is a chain of the above (a pre-norm branch: norm, dense, activation,
+..., dense) ending in a dense block of the stream's width. Positions recorded: the outputs of
+the stream's dense blocks, residual blocks and norms (and the input when the network does not
+start with a dense block).
 
 Refused, naming the block's JSON pointer and the reason: batch norm (the batch's statistics,
-not one input's), dropout (its mask enters forward and backward at once; not derived yet),
-convolution, pooling and attention (the units of one position are not the whole layer), a
-branch that ends in an activation (its output has a mean and is not independent of the
-stream's direction), residual blocks inside a branch, an activation after a residual sum or a
-norm (the stream's units are not Gaussian given its second moment: the next layer depends on
-more than q), a layer norm right after an activation (the centred variance of a
-post-activation stream is another law), two activations or two dense blocks in a row,
-orthogonal weights, dense blocks without a width.
+not one input's), dropout elsewhere than after an activation (on a dense output, a residual
+sum or a norm: not derived), convolution, pooling and attention (the units of one position
+are not the whole layer), a branch that ends in an activation (its output has a mean and is
+not independent of the stream's direction), residual blocks inside a branch, an activation
+after a residual sum or a norm (the stream's units are not Gaussian given its second moment:
+the next layer depends on more than q), a layer norm right after an activation (the centred
+variance of a post-activation stream is another law), two activations or two dense blocks in
+a row, orthogonal weights, dense blocks without a width.
 """
 
 from __future__ import annotations
@@ -37,6 +38,7 @@ from ..networks.blocks import (
     ActivationBlock,
     Block,
     Dense,
+    Dropout,
     Network,
     Norm,
     Repeat,
@@ -67,8 +69,6 @@ _WHY = {
     "norm": "a normalisation divides by the measured second moment, a 1/n law of its own",
     "batch": "batch norm divides by the batch's statistics, not one input's: its finite-width "
              "law depends on the batch",
-    "dropout": "dropout's binomial mask enters the forward and the backward pass at once; its "
-               "finite-width law is not derived here",
     "convolution": "a convolution: the units of one position are not the whole layer",
     "pooling": "pooling: the units of one position are not the whole layer",
     "attention": "attention mixes positions: the units of one token are not the whole layer",
@@ -99,6 +99,7 @@ class _Walk:
         self.tape = Tape(np.array([q0, 0.0, 0.0, 0.0]))
         self.kind = "measured"  # "gauss" (after dense), "phi" (after an activation), "measured"
         self.act: Activation | None = None
+        self.keep = 1.0  # dropout pending after the activation
         self.n = n
         self.rule = rule
         self.first: Dense | None = None
@@ -117,7 +118,9 @@ class _Walk:
                 raise FiniteWidthUnsupportedError(
                     f"the layer norm at {where} follows an activation: the centred variance of a "
                     "post-activation stream is another law (an RMS norm is covered)")
-            self.tape.chain(self.act, 1.0, 0.0, self.n, target, self.rule, weighting=True)
+            self.tape.chain(self.act, 1.0, 0.0, self.n, target, self.rule, weighting=True,
+                            keep=self.keep)
+            self.keep = 1.0
         self.kind = "measured"
 
     def blocks(self, blocks: tuple[Block, ...], path: str, branch: dict[str, Any] | None) -> None:
@@ -145,6 +148,13 @@ class _Walk:
                     self.tape.record(self.n, False)
             elif isinstance(b, Residual):
                 self.residual(b, where, branch)
+            elif isinstance(b, Dropout):
+                if self.kind != "phi":
+                    raise FiniteWidthUnsupportedError(
+                        f"the dropout block at {where}: dropout is covered after an activation "
+                        "only (on a dense block's output, a residual sum or a norm its mask "
+                        "meets the stream's own fluctuations: not derived here)")
+                self.keep *= b.keep_rate
             else:
                 kind = getattr(b, "KIND", type(b).__name__)
                 raise FiniteWidthUnsupportedError(f"the {kind} block at {where}: "
@@ -170,7 +180,9 @@ class _Walk:
         if self.tape.steps or self.kind != "measured":
             self.fan_ins.append(self.n)
         if self.kind == "phi":
-            self.tape.chain(self.act, b.sigma_w2, b.sigma_b2, self.n, target, self.rule)
+            self.tape.chain(self.act, b.sigma_w2, b.sigma_b2, self.n, target, self.rule,
+                            keep=self.keep)
+            self.keep = 1.0
         else:
             sampled = not (branch is not None and branch["first"])
             self.tape.dense(b.sigma_w2, b.sigma_b2, self.n or 1, target, sampled)

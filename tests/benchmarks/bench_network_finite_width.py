@@ -30,10 +30,10 @@ os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-import numpy as np  # noqa: E402
+import numpy as np
+import test_network_finite_width_blocks as cases
 
-import test_network_finite_width_blocks as cases  # noqa: E402
-from propcalc.training import network_finite_width  # noqa: E402
+from propcalc.training import network_finite_width
 
 #: (network, blocks, {width: networks})
 PLAN = [
@@ -41,6 +41,8 @@ PLAN = [
     (cases.pre_norm, 8, {32: 400, 128: 400, 512: 60, 1024: 20}),
     (cases.post_norm, 6, {32: 400, 128: 400, 512: 100, 1024: 40}),
     (cases.relu_on_input, 10, {32: 400, 128: 400, 512: 100, 1024: 40}),
+    (cases.dropout_mlp, 8, {32: 400, 128: 400, 512: 100, 1024: 40}),
+    (cases.dropout_branches, 8, {32: 400, 128: 400, 512: 60}),
 ]
 
 
