@@ -81,9 +81,9 @@ def test_other_blocks_are_refused_with_their_path_and_reason():
     cases = [
         # residual sums and layer / RMS norms are covered since (test_network_finite_width_blocks)
         ([*base, {"norm": "batch"}, dense(1.0, 0.0, 64)], "/blocks/2", "batch's statistics"),
-        # dropout after an activation is covered since; on a dense output it is not
-        ([dense(1.0, 0.0, 64), {"dropout": {"keep_rate": 0.9}}, dense(1.0, 0.0, 64)], "/blocks/1",
-         "after an activation only"),
+        # dropout after an activation or a dense block is covered since; after a norm it is not
+        ([dense(1.0, 0.0, 64), {"norm": "rms"}, {"dropout": {"keep_rate": 0.9}},
+          dense(1.0, 0.0, 64)], "/blocks/2", "after an activation or a dense block only"),
         ([*base, dense(2.0)], "/blocks/2", "gives no width"),
         ([dense(1.0, 0.0, 64), dense(1.0, 0.0, 64)], "/blocks/1", "two dense blocks"),
         ([*base, {"activation": "tanh"}, dense(1.0, 0.0, 8)], "/blocks/2", "two activations"),

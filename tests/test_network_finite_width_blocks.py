@@ -172,6 +172,15 @@ def dropout_branches(n: int, times: int = 8) -> dict:
         {"norm": "rms"}, dense(1.0, 0.0, n)]}
 
 
+def dropout_outputs(n: int, times: int = 8) -> dict:
+    """Dropout on dense outputs: at the end of every branch (keep 0.8) and before a dense block."""
+    return {"input_width": n, "blocks": [dense(1.0, 0.0, n), {"repeat": {"times": times, "blocks": [
+        {"residual": {"branch": [{"norm": "layer"}, dense(2.0, 0.0, n), {"activation": "tanh"},
+                                 dense(1.0, 0.0, n), {"dropout": {"keep_rate": 0.8}}],
+                      "weight": 0.7}}]}},
+        {"norm": "rms"}, dense(1.0, 0.0, n), {"dropout": {"keep_rate": 0.6}}, dense(1.0, 0.0, n)]}
+
+
 def relu_on_input(n: int, times: int = 10) -> dict:
     """Residual blocks straight on the input (the input is the first position)."""
     return {"input_width": n, "blocks": [{"repeat": {"times": times, "blocks": [
@@ -198,7 +207,7 @@ def _check(desc: dict, n: int, reps: int, seed: int) -> dict:
 
 
 @pytest.mark.parametrize("make", [residual_tanh, pre_norm, post_norm, with_eps, relu_on_input,
-                                  dropout_mlp, dropout_branches])
+                                  dropout_mlp, dropout_branches, dropout_outputs])
 @pytest.mark.parametrize("n", [32, 128])
 def test_residual_and_norm_networks_against_seeded_networks(make, n):
     _check(make(n), n, 400, seed=n + 7)
@@ -242,8 +251,10 @@ def test_blocks_still_refused_name_their_path_and_reason():
     branch = [dense(1.0, 0.0, n), {"activation": "relu"}, dense(1.0, 0.0, n)]
     cases = [
         ([*stream, {"norm": "batch"}], "/blocks/1", "batch"),
-        ([*stream, {"dropout": {"keep_rate": 0.9}}, dense(1.0, 0.0, n)], "/blocks/1",
-         "after an activation only"),
+        ([*stream, {"residual": {"branch": branch}}, {"dropout": {"keep_rate": 0.9}},
+          dense(1.0, 0.0, n)], "/blocks/2", "after an activation or a dense block only"),
+        ([*stream, {"dropout": {"keep_rate": 0.9}}, {"activation": "relu"}], "/blocks/2",
+         "masked units are not Gaussian"),
         ([*stream, {"residual": {"branch": [{"residual": {"branch": branch}}]}}],
          "/blocks/1/residual/branch/0", "inside a residual branch"),
         ([*stream, {"residual": {"branch": branch[:2]}}], "/blocks/1", "ends in an activation"),

@@ -49,7 +49,12 @@ E[m] = p and m^2 = m, so ``V = sigma_w2 E[phi^2] / p + sigma_b2`` (Schoenholz et
 1 / keep_rate), ``v = sigma_w2^2 (E[phi^4] / p^3 - E[phi^2]^2 / p^2)``, chi_1 / p,
 ``kappa_g = 3 E[phi'^4] / (p E[phi'^2]^2) - 1`` and the forward-backward covariance
 ``sigma_w2 (E[phi^2 phi'^2] / (p^2 E[phi'^2]) - E[phi^2] / p)`` (the mask is the same in both
-passes). Two dropouts in a row are one of keep rate p1 p2.
+passes). Two dropouts in a row are one of keep rate p1 p2. Dropout on a dense block's output is
+the same with phi the identity; at the end of a residual branch, F = m g / p with g ~ N(0, s_L):
+``E[Q'] = a^2 Q + w^2 s_L / p``, ``n Var[Q'] = w^4 s_L^2 (3 / p^3 - 1 / p^2) + 4 a^2 w^2 Q s_L / p``;
+backward the mask multiplies the branch's ratio by ``|m g_y / p|^2 / |g_y|^2``, of mean 1 / p
+and relative variance ``3 (1 / p - 1) / n``, whose noise meets the forward's through the mask:
+``n Cov = w^2 s_L (1 / p^2 - 1 / p)`` (ours, as the rest).
 
 First order. With X_{t+1} = F_t(X_t) + eta_t, Jacobian M_t, second derivatives H_t and noise
 covariance Sigma_t (all of order 1/n): means K_{t+1} = F_t(K_t), covariances
@@ -214,23 +219,31 @@ class Tape:
         jac[BRANCH] = 0.0
         self.steps.append(Step(mean, jac, np.zeros((_DIM, _DIM)), 1))
 
-    def close(self, shortcut: float, weight: float, n: int) -> None:
-        """``y = a x + w F``: the non-central chi-square of the module docstring."""
+    def close(self, shortcut: float, weight: float, n: int, keep: float = 1.0) -> None:
+        """``y = a x + w F``: the non-central chi-square of the module docstring.
+
+        ``keep``: the branch ends in dropout on its last dense block's output (module
+        docstring, "Dropout").
+        """
         mean, jac = self.identity()
         ks, kl, kr = float(mean[SAVED]), float(mean[WORK]), float(mean[BRANCH])
-        a2, w2 = shortcut * shortcut, weight * weight
+        a2, w2, p = shortcut * shortcut, weight * weight, keep
         noise = np.zeros((_DIM, _DIM))
-        mean[WORK] = a2 * ks + w2 * kl
+        mean[WORK] = a2 * ks + w2 * kl / p
         jac[WORK] = 0.0
         jac[WORK, SAVED] = a2
-        jac[WORK, WORK] = w2
-        noise[WORK, WORK] = 2.0 * w2 * w2 * kl * kl + 4.0 * a2 * w2 * ks * kl
-        r = math.exp(kr)
+        jac[WORK, WORK] = w2 / p
+        noise[WORK, WORK] = (w2 * w2 * kl * kl * (3.0 / p ** 3 - 1.0 / (p * p))
+                             + 4.0 * a2 * w2 * ks * kl / p)
+        r = math.exp(kr) / p
         big_r = a2 + w2 * r
         theta = w2 * r / big_r
+        mask = 3.0 * (1.0 / p - 1.0)  # n Var ln(|m g / p|^2 / |g|^2)
         mean[GRADIENT] += math.log(big_r)
         jac[GRADIENT, BRANCH] = theta
-        noise[GRADIENT, GRADIENT] = (2.0 * w2 * w2 * r * r + 4.0 * a2 * w2 * r) / big_r ** 2
+        noise[GRADIENT, GRADIENT] = ((2.0 * w2 * w2 * r * r + 4.0 * a2 * w2 * r) / big_r ** 2
+                                     + theta * theta * mask)
+        noise[WORK, GRADIENT] = noise[GRADIENT, WORK] = theta * w2 * kl * (1.0 / (p * p) - 1.0 / p)
         shift = np.zeros(_DIM)
         shift[GRADIENT] = -0.5 * noise[GRADIENT, GRADIENT]
         mean[SAVED] = mean[BRANCH] = 0.0

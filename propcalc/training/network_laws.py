@@ -33,6 +33,7 @@ from typing import Any
 import numpy as np
 
 from ..activations.base import Activation
+from ..activations.resolver import activation
 from ..errors import PropcalcError
 from ..networks.blocks import (
     ActivationBlock,
@@ -100,6 +101,7 @@ class _Walk:
         self.kind = "measured"  # "gauss" (after dense), "phi" (after an activation), "measured"
         self.act: Activation | None = None
         self.keep = 1.0  # dropout pending after the activation
+        self.linear = activation("linear")  # dropout on a dense output: phi the identity
         self.n = n
         self.rule = rule
         self.first: Dense | None = None
@@ -130,7 +132,9 @@ class _Walk:
                 self.dense(b, where, target, branch)
             elif isinstance(b, ActivationBlock):
                 if self.kind != "gauss":
-                    why = ("two activations in a row" if self.kind == "phi" else
+                    why = ("an activation after dropout on a dense block's output (the masked "
+                           "units are not Gaussian)" if self.act is self.linear else
+                           "two activations in a row" if self.kind == "phi" else
                            "an activation after a residual sum or a norm (the stream's units "
                            "are not Gaussian given its second moment, so the next layer "
                            "depends on more than q)" if self.tape.steps else
@@ -149,11 +153,13 @@ class _Walk:
             elif isinstance(b, Residual):
                 self.residual(b, where, branch)
             elif isinstance(b, Dropout):
-                if self.kind != "phi":
+                if self.kind == "gauss":  # phi the identity (block_laws, "Dropout")
+                    self.kind, self.act = "phi", self.linear
+                elif self.kind != "phi":
                     raise FiniteWidthUnsupportedError(
                         f"the dropout block at {where}: dropout is covered after an activation "
-                        "only (on a dense block's output, a residual sum or a norm its mask "
-                        "meets the stream's own fluctuations: not derived here)")
+                        "or a dense block only (on a residual sum or a norm the stream's units "
+                        "are not Gaussian given its second moment: not derived here)")
                 self.keep *= b.keep_rate
             else:
                 kind = getattr(b, "KIND", type(b).__name__)
@@ -201,6 +207,9 @@ class _Walk:
         stream = self.n
         self.tape.enter()
         self.blocks(b.branch, f"{where}/residual/branch", {"first": True})
+        keep = 1.0
+        if self.kind == "phi" and self.act is self.linear:  # the branch ends in dropout
+            self.kind, keep, self.keep = "gauss", self.keep, 1.0
         if self.kind != "gauss":
             raise FiniteWidthUnsupportedError(
                 f"the residual block at {where}: its branch ends in "
@@ -209,7 +218,7 @@ class _Walk:
         if self.n != stream:
             raise FiniteWidthUnsupportedError(f"the residual block at {where}: its branch ends at "
                                               f"width {self.n}, the stream has {stream}")
-        self.tape.close(b.shortcut, b.weight, stream)
+        self.tape.close(b.shortcut, b.weight, stream, keep)
         self.kind = "measured"
         self.tape.record(stream, False)
 
