@@ -6,16 +6,17 @@ form of :class:`~propcalc.training.finite_width.FiniteWidth`.
 
 Covered, every dense block giving its ``width`` and Gaussian weights: dense blocks after the
 input, an activation, a residual sum or a norm; an activation after a dense block; inverted
-dropout after an activation; layer and RMS norms (gain, eps) after a dense block, a residual
-sum or a norm (an RMS norm also after an activation); residual blocks ``shortcut * x + weight *
-branch(x)`` whose branch is a chain of the above (a pre-norm branch: norm, dense, activation,
-..., dense) ending in a dense block of the stream's width. Positions recorded: the outputs of
-the stream's dense blocks, residual blocks and norms (and the input when the network does not
-start with a dense block).
+dropout after an activation or a dense block (at the end of a branch too); layer and RMS norms
+(gain, eps) after a dense block, a residual sum or a norm (an RMS norm also after an
+activation); residual blocks ``shortcut * x + weight * branch(x)`` whose branch is a chain of
+the above (a pre-norm branch: norm, dense, activation, ..., dense) ending in a dense block of
+the stream's width (or dropout on it). Positions recorded: the outputs of the stream's dense
+blocks, residual blocks and norms (and the input when the network does not start with a dense
+block).
 
 Refused, naming the block's JSON pointer and the reason: batch norm (the batch's statistics,
-not one input's), dropout elsewhere than after an activation (on a dense output, a residual
-sum or a norm: not derived), convolution, pooling and attention (the units of one position
+not one input's), dropout after a residual sum or a norm (not derived), an activation after
+dropout on a dense output, convolution, pooling and attention (the units of one position
 are not the whole layer), a branch that ends in an activation (its output has a mean and is
 not independent of the stream's direction), residual blocks inside a branch, an activation
 after a residual sum or a norm (the stream's units are not Gaussian given its second moment:

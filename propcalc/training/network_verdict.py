@@ -137,7 +137,7 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None, *,
         fw = network_finite_width(result.network, result.q0)
     except PropcalcError as err:  # FiniteWidthUnsupportedError names the block and the reason
         why = (f"{err}; the finite-width laws cover dense blocks with widths, activations, "
-               "dropout after an activation, residual blocks and layer / RMS norms "
+               "dropout, residual blocks and layer / RMS norms "
                "(propcalc.training.network_laws); "
                "propcalc network --check measures a network's finite-width deviations in "
                "seeded networks")

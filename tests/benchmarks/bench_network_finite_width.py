@@ -43,6 +43,7 @@ PLAN = [
     (cases.relu_on_input, 10, {32: 400, 128: 400, 512: 100, 1024: 100}),
     (cases.dropout_mlp, 8, {32: 400, 128: 400, 512: 100, 1024: 100}),
     (cases.dropout_branches, 8, {32: 400, 128: 400, 512: 60}),
+    (cases.dropout_outputs, 8, {32: 400, 128: 400, 512: 100}),
 ]
 
 
