@@ -180,8 +180,9 @@ class Activation(Result):
         x = np.linspace(-20.0, 20.0, 40001)
         with np.errstate(all="ignore"):
             d = self.derivative(x)
-        scale = _grid_scale(x, d, self.breakpoints)
-        return scale, _grid_reach(x, d, self.breakpoints, scale)
+            dd = np.diff(d) / (x[1] - x[0])
+        scale = _grid_scale(x, d, dd, self.breakpoints)
+        return scale, _grid_reach(x, dd, self.breakpoints, scale)
 
     @cached_property
     def exact_parity(self) -> str | None:
@@ -221,35 +222,37 @@ class Activation(Result):
         return profile(self)
 
 
-def _grid_scale(x: Array, d: Array, breakpoints: tuple[float, ...]) -> float:
-    """max|phi'| / max|phi''| from phi' on the grid x (off the breakpoints), capped to [1e-3, 1]."""
-    dd = np.abs(np.diff(d)) / (x[1] - x[0])
-    across = np.zeros(dd.shape, dtype=bool)
+def _grid_scale(x: Array, d: Array, dd: Array, breakpoints: tuple[float, ...]) -> float:
+    """max|phi'| / max|phi''| from phi' on the grid x (``dd`` its difference quotients; off
+    the breakpoints), capped to [1e-3, 1]."""
+    usable = np.isfinite(dd)
     for b in breakpoints:
-        across |= (x[:-1] <= b + 1e-9) & (x[1:] >= b - 1e-9)
-    dd = np.where(across | ~np.isfinite(dd), 0.0, dd)
-    top, curv = float(np.max(np.abs(d[np.isfinite(d)]), initial=0.0)), float(np.max(dd))
+        usable &= ~((x[:-1] <= b + 1e-9) & (x[1:] >= b - 1e-9))
+    # (|diff| / h is |diff / h| exactly: the division rounds symmetrically)
+    curv = float(np.max(np.abs(dd), where=usable, initial=0.0))
+    top = float(np.max(np.abs(d), where=np.isfinite(d), initial=0.0))
     if curv <= 0.0 or top <= 0.0:
         return 1.0
     return float(min(1.0, max(1e-3, top / curv)))
 
 
-def _grid_reach(x: Array, d: Array, breakpoints: tuple[float, ...], scale: float) -> float:
-    """The farthest inflection of phi from 0 (0 within 4 scales, inf past 16), from phi' on x."""
-    dd = np.diff(d) / (x[1] - x[0])
-    xm = 0.5 * (x[:-1] + x[1:])
+def _grid_reach(x: Array, dd: Array, breakpoints: tuple[float, ...], scale: float) -> float:
+    """The farthest inflection of phi from 0 (0 within 4 scales, inf past 16), from the
+    difference quotients ``dd`` of phi' on x (at the midpoints)."""
     ok = np.isfinite(dd)
     for b in breakpoints:
-        ok &= np.abs(xm - b) > 2e-3
+        ok &= np.abs(0.5 * (x[:-1] + x[1:]) - b) > 2e-3
     if not ok.any():
         return 0.0
-    big = ok & (np.abs(dd) > 1e-6 * float(np.max(np.abs(dd[ok]))))
-    sign = np.sign(dd[big])
+    size = np.abs(dd)
+    big = ok & (size > 1e-6 * float(np.max(size, where=ok, initial=0.0)))
+    at = np.flatnonzero(big)
+    sign = np.sign(dd[at])
     flips = np.flatnonzero(sign[1:] != sign[:-1])
     if not flips.size:
         return 0.0
-    xs = xm[big]
-    far = float(np.max(np.abs(np.concatenate([xs[flips], xs[flips + 1]]))))
+    ends = np.concatenate([at[flips], at[flips + 1]])
+    far = float(np.max(np.abs(0.5 * (x[ends] + x[ends + 1]))))
     if far <= 4.0 * scale:
         return 0.0
     return math.inf if far > 16.0 else far + 4.0 * scale

@@ -90,12 +90,13 @@ def hermite_coefficients(fn: Function, breakpoints: Sequence[float], q: Array, k
             continue
         h_prev = np.ones_like(z)
         h = z.copy()
+        zh = np.empty_like(z)  # z h_k, in place (the same roundings as a new array)
         out = np.empty((qs.size, kmax + 1))
         out[:, 0] = wf.sum(axis=1)
         out[:, 1] = np.einsum("ij,ij->i", wf, h)
         for k in range(1, kmax):
             h_prev *= -roots[k]
-            h_prev += z * h
+            h_prev += np.multiply(z, h, out=zh)
             h_prev /= roots[k + 1]
             h, h_prev = h_prev, h
             out[:, k + 1] = np.einsum("ij,ij->i", wf, h)
@@ -159,21 +160,29 @@ def _hermite_table(kmax: int, rule: QuadratureRule, z: Array) -> Array:
     table[0] = 1.0
     if kmax >= 1:
         table[1] = z
-    for k in range(1, kmax):
-        table[k + 1] = (z * table[k] - roots[k] * table[k - 1]) / roots[k + 1]
+    tmp = np.empty_like(z)
+    for k in range(1, kmax):  # (z h_k - sqrt(k) h_(k-1)) / sqrt(k + 1), in place
+        nxt = table[k + 1]
+        np.multiply(z, table[k], out=nxt)
+        nxt -= np.multiply(roots[k], table[k - 1], out=tmp)
+        nxt /= roots[k + 1]
     table.setflags(write=False)
     _TABLES.put(key, (z.copy(), table))
     return table
 
 
-def series_value_and_slope(b: Array, c: Array) -> tuple[Array, Array]:
-    """Row by row: ``sum_k b_k c^k`` and ``sum_k k b_k c^(k-1)`` (b of shape (n, K+1), c of n)."""
+def series_value_and_slope(b: Array, c: Array, kb: Array | None = None) -> tuple[Array, Array]:
+    """Row by row: ``sum_k b_k c^k`` and ``sum_k k b_k c^(k-1)`` (b of shape (n, K+1), c of n).
+
+    ``kb`` is ``b[:, 1:] * k`` (k = 1..K) when the caller keeps it across calls.
+    """
     kmax = b.shape[1] - 1
-    k = np.arange(kmax + 1, dtype=float)
+    if kb is None:
+        kb = b[:, 1:] * np.arange(1.0, kmax + 1)
     with np.errstate(under="ignore"):
         pw = _powers(c, kmax)
     p = np.einsum("ij,ij->i", b, pw)
-    dp = np.einsum("ij,ij->i", b[:, 1:] * k[1:], pw[:, :-1])
+    dp = np.einsum("ij,ij->i", kb, pw[:, :-1])
     return p, dp
 
 

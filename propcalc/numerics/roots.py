@@ -272,15 +272,20 @@ def grid_dips(grid: Array, values: Array, usable: Array | None = None) -> tuple[
         empty = np.zeros(0, dtype=int)
         return empty, empty, np.zeros(0)
     left, mid, right = v[:, :-2], v[:, 1:-1], v[:, 2:]
-    dip = DIP_FLOOR * (x[:, 1:-1] + np.abs(mid))
-    low = (left > 0) & (mid > 0) & (right > 0) & (mid < left - dip) & (mid < right - dip)
-    high = (left < 0) & (mid < 0) & (right < 0) & (mid > left + dip) & (mid > right + dip)
+    # candidates first (strict extrema of one sign), the margin only where there are some
+    low = (left > 0) & (mid > 0) & (right > 0) & (mid < left) & (mid < right)
+    high = (left < 0) & (mid < 0) & (right < 0) & (mid > left) & (mid > right)
     found = low | high
     if usable is not None:
         ok = np.atleast_2d(usable)
         found &= ok[:, :-2] & ok[:, 1:-1] & ok[:, 2:]
     rows, cols = np.nonzero(found)
-    side = np.where(low[rows, cols], 1.0, -1.0)
+    lo, m, hi = left[rows, cols], mid[rows, cols], right[rows, cols]
+    dip = DIP_FLOOR * (x[rows, cols + 1] + np.abs(m))
+    is_low = low[rows, cols]
+    clear = np.where(is_low, (m < lo - dip) & (m < hi - dip), (m > lo + dip) & (m > hi + dip))
+    rows, cols = rows[clear], cols[clear]
+    side = np.where(is_low[clear], 1.0, -1.0)
     return rows, cols + 1, side
 
 
