@@ -181,8 +181,9 @@ class Activation(Result):
         with np.errstate(all="ignore"):
             d = self.derivative(x)
             dd = np.diff(d) / (x[1] - x[0])
-        scale = _grid_scale(x, d, dd, self.breakpoints)
-        return scale, _grid_reach(x, dd, self.breakpoints, scale)
+        size, finite = np.abs(dd), np.isfinite(dd)  # (shared by both estimates)
+        scale = _grid_scale(x, d, size, finite, self.breakpoints)
+        return scale, _grid_reach(x, dd, size, finite, self.breakpoints, scale)
 
     @cached_property
     def exact_parity(self) -> str | None:
@@ -222,29 +223,30 @@ class Activation(Result):
         return profile(self)
 
 
-def _grid_scale(x: Array, d: Array, dd: Array, breakpoints: tuple[float, ...]) -> float:
-    """max|phi'| / max|phi''| from phi' on the grid x (``dd`` its difference quotients; off
-    the breakpoints), capped to [1e-3, 1]."""
-    usable = np.isfinite(dd)
+def _grid_scale(x: Array, d: Array, size: Array, finite: Array,
+                breakpoints: tuple[float, ...]) -> float:
+    """max|phi'| / max|phi''| from phi' on the grid x (``size``: the absolute difference
+    quotients, ``finite`` where they are finite; off the breakpoints), capped to [1e-3, 1]."""
+    usable = finite
     for b in breakpoints:
-        usable &= ~((x[:-1] <= b + 1e-9) & (x[1:] >= b - 1e-9))
+        usable = usable & ~((x[:-1] <= b + 1e-9) & (x[1:] >= b - 1e-9))
     # (|diff| / h is |diff / h| exactly: the division rounds symmetrically)
-    curv = float(np.max(np.abs(dd), where=usable, initial=0.0))
+    curv = float(np.max(size, where=usable, initial=0.0))
     top = float(np.max(np.abs(d), where=np.isfinite(d), initial=0.0))
     if curv <= 0.0 or top <= 0.0:
         return 1.0
     return float(min(1.0, max(1e-3, top / curv)))
 
 
-def _grid_reach(x: Array, dd: Array, breakpoints: tuple[float, ...], scale: float) -> float:
+def _grid_reach(x: Array, dd: Array, size: Array, finite: Array,
+                breakpoints: tuple[float, ...], scale: float) -> float:
     """The farthest inflection of phi from 0 (0 within 4 scales, inf past 16), from the
-    difference quotients ``dd`` of phi' on x (at the midpoints)."""
-    ok = np.isfinite(dd)
+    difference quotients ``dd`` of phi' on x (at the midpoints; ``size`` = |dd|)."""
+    ok = finite
     for b in breakpoints:
-        ok &= np.abs(0.5 * (x[:-1] + x[1:]) - b) > 2e-3
+        ok = ok & (np.abs(0.5 * (x[:-1] + x[1:]) - b) > 2e-3)
     if not ok.any():
         return 0.0
-    size = np.abs(dd)
     big = ok & (size > 1e-6 * float(np.max(size, where=ok, initial=0.0)))
     at = np.flatnonzero(big)
     sign = np.sign(dd[at])

@@ -180,7 +180,8 @@ def reached_chi_1(act: Activation, sw: Array, var: VarianceSolution,
     unbounded = status == VarianceStatus.UNBOUNDED.value
     collapse = status == VarianceStatus.COLLAPSE.value
     c1 = np.full(sw.shape, np.nan)
-    c1[collapse] = collapse_rate(act, sw[collapse])
+    if collapse.any():
+        c1[collapse] = collapse_rate(act, sw[collapse])
     rest = np.flatnonzero(~unbounded & ~collapse)
     if rest.size:
         c1[rest] = sw[rest] * _moment(act, var.q_star[rest], rule)

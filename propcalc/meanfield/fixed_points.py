@@ -348,18 +348,25 @@ def large_variance(act: Activation, rule: QuadratureRule = DEFAULT_RULE) -> floa
 
 def _first(owner: Array, mask: Array, n: int) -> Array:
     """Per point, the index (into the flat arrays) of its first entry where ``mask``; -1 if none."""
-    out = np.full(n, -1)
-    idx = np.flatnonzero(mask)
-    pts, first = np.unique(owner[idx], return_index=True)
-    out[pts] = idx[first]
-    return out
+    return _run_end(owner, np.flatnonzero(mask), n)
 
 
 def _last(owner: Array, mask: Array, n: int) -> Array:
     """Per point, the index of its last entry where ``mask``; -1 if none."""
+    return _run_end(owner, np.flatnonzero(mask)[::-1], n)
+
+
+def _run_end(owner: Array, idx: Array, n: int) -> Array:
+    """Per point, the first of the indices ``idx`` (in their order) that it owns; -1 if none."""
     out = np.full(n, -1)
-    idx = np.flatnonzero(mask)[::-1]
-    pts, first = np.unique(owner[idx], return_index=True)
+    o = owner[idx]
+    if o.size and (np.all(o[1:] >= o[:-1]) or np.all(o[1:] <= o[:-1])):
+        # owners in runs (the flat arrays are sorted by point): each run's first entry
+        start = np.ones(o.size, dtype=bool)
+        start[1:] = o[1:] != o[:-1]
+        out[o[start]] = idx[start]
+        return out
+    pts, first = np.unique(o, return_index=True)
     out[pts] = idx[first]
     return out
 

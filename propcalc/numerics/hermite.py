@@ -37,6 +37,7 @@ Function = Callable[[Array], Array]
 SERIES_PASSES = ((160, QuadratureRule(n_per_panel=16, panel_width=0.5, z_max=10.0)),
                   (640, QuadratureRule(n_per_panel=16, panel_width=0.25, z_max=10.0)))
 SERIES_CHUNK = 128
+_BLOCK = 32  # degrees per einsum in the per-row recurrence
 
 
 def hermite_coefficients(fn: Function, breakpoints: Sequence[float], q: Array, kmax: int,
@@ -88,20 +89,36 @@ def hermite_coefficients(fn: Function, breakpoints: Sequence[float], q: Array, k
             out = wf @ table.T
             b[sel] = out * out
             continue
-        h_prev = np.ones_like(z)
-        h = z.copy()
-        zh = np.empty_like(z)  # z h_k, in place (the same roundings as a new array)
         out = np.empty((qs.size, kmax + 1))
         out[:, 0] = wf.sum(axis=1)
-        out[:, 1] = np.einsum("ij,ij->i", wf, h)
-        for k in range(1, kmax):
-            h_prev *= -roots[k]
-            h_prev += np.multiply(z, h, out=zh)
-            h_prev /= roots[k + 1]
-            h, h_prev = h_prev, h
-            out[:, k + 1] = np.einsum("ij,ij->i", wf, h)
+        _project(wf, z, roots, kmax, out)
         b[sel] = out * out
     return b, m2
+
+
+def _project(wf: Array, z: Array, roots: Array, kmax: int, out: Array) -> None:
+    """out[:, k] = sum_j wf[:, j] h_k(z[:, j]) for k = 1..kmax, h_k by the recurrence.
+
+    h_(k+1) = (z h_k - sqrt(k) h_(k-1)) / sqrt(k + 1) row by row, written into a block of
+    _BLOCK degrees that is projected with one einsum per block (each sum over j is the
+    same as one einsum per degree; the block bounds the memory).
+    """
+    block = np.empty((min(_BLOCK, kmax),) + z.shape)
+    zh = np.empty_like(z)
+    block[0] = z
+    first, used = 1, 1  # the degree of block[0]; rows of the block filled
+    older, newer = np.ones_like(z), block[0]  # h_(k-1), h_k
+    for k in range(1, kmax):
+        if used == block.shape[0]:  # (the two rows read next are the block's last two)
+            out[:, first:first + used] = np.einsum("ij,kij->ik", wf, block)
+            first, used = first + used, 0
+        nxt = block[used]
+        np.multiply(older, -roots[k], out=nxt)
+        nxt += np.multiply(z, newer, out=zh)
+        nxt /= roots[k + 1]
+        older, newer = newer, nxt
+        used += 1
+    out[:, first:first + used] = np.einsum("ij,kij->ik", wf, block[:used])
 
 
 @cached("hermite.coefficients", maxsize=32)
