@@ -13,7 +13,8 @@ Method
   (``SCAN_STEPS`` steps of 0.15 decades over ``[Q_MIN, Q_MAX]``, off the round numbers,
   extended by whole steps where a point needs a wider range: down to V(0)/10,
   up to ten times its variances). ``E[phi(sqrt(q) z)^2]`` does not depend on
-  the point, so one row of 1-D integrals serves all of them.
+  the point, so one row of 1-D integrals serves all of them (cached per activation,
+  rule and grid range: the chunks of a sweep share it).
 * Roots come from :mod:`propcalc.numerics.roots`: sign changes between values
   clear of rounding (``|g| > 1e-12 (q + sigma_b2)``), roots on grid points,
   and hidden pairs of close roots; each is polished to 4e-15 relative.
