@@ -71,7 +71,8 @@ network plan                300 + 2.5 per unit; 40 per unit with a target
 network with a loss         + 50 + 1.5 per unit (the tangent kernel's walk);
                             cross_entropy + 150 + 1 per class + the softmax
                             curvature: 5e-6 K^3 (K <= 1000), else 3e-5 per
-                            draw of 20000 K
+                            draw of 20000 K; twice with a plan (the planned
+                            network's ceiling)
 network image               the image + the propagation + 0.2 per position
 shaping                     400 + 1.5 per layer (twice for a formula; elu by
                             deep kernel shaping: 2.1 ms per layer); 0.05 per
@@ -118,19 +119,19 @@ from ._lane import LaneBusy
 from ._problems import TYPE_COMPUTATION, Problem, WorkBudgetExceeded
 
 __all__ = [
-    "FORMULA_FACTOR",
     "COSTS",
-    "correlation_point_cost",
-    "plot_image_cost",
-    "sweep_point_cost",
-    "initial_loss_cost",
-    "max_probability_cost",
-    "simulation_cost",
-    "check_budget",
-    "max_points",
-    "run_guarded",
-    "first_nonfinite",
+    "FORMULA_FACTOR",
     "busy_problem",
+    "check_budget",
+    "correlation_point_cost",
+    "first_nonfinite",
+    "initial_loss_cost",
+    "max_points",
+    "max_probability_cost",
+    "plot_image_cost",
+    "run_guarded",
+    "simulation_cost",
+    "sweep_point_cost",
 ]
 
 _log = logging.getLogger("propcalc_api")

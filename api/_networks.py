@@ -39,9 +39,18 @@ from propcalc.networks.simulate import measure_network, simulation_work
 from ._budget import COSTS, FORMULA_FACTOR, check_budget
 from ._fields import format_number
 
-__all__ = ["NetworkComputations", "network_estimate", "output_width", "training_estimate",
-           "simulation_estimate", "shape_estimate", "shape_plot_cost", "slope_form",
-           "formula_activations", "SLOPE_FORM_BASES"]
+__all__ = [
+    "SLOPE_FORM_BASES",
+    "NetworkComputations",
+    "formula_activations",
+    "network_estimate",
+    "output_width",
+    "shape_estimate",
+    "shape_plot_cost",
+    "simulation_estimate",
+    "slope_form",
+    "training_estimate",
+]
 
 #: built-ins that "tat" shapes in the closed-form slope form (propcalc.shaping.solve)
 SLOPE_FORM_BASES = ("relu", "leaky_relu")
@@ -206,8 +215,8 @@ class NetworkComputations:
 
     def _propagate(self, net: Network, req: dict[str, Any], admitted: float) -> Any:
         """network_propagation, with the simulation when it is asked for and fits the budget."""
-        args = dict(q0=req["q0"], c0=req["c0"], c0_within=req["c0_within"],
-                    c0_between=req["c0_between"], seed=req["seed"])
+        args = {"q0": req["q0"], "c0": req["c0"], "c0_within": req["c0_within"],
+                "c0_between": req["c0_between"], "seed": req["seed"]}
         result = network_propagation(net, simulate=False, **args)
         if not req["simulate"] or result.gaussian_positions == net.n_positions:
             return result
@@ -229,10 +238,13 @@ class NetworkComputations:
         loss = req.get("loss")
         if loss is not None:
             k = req.get("n_classes") or output_width(net)
-            admitted += training_estimate(net, loss, k, formula_activations(req["network"]) > 0)
+            # the verdict's ceiling, and the plan's of the planned network
+            admitted += training_estimate(net, loss, k, formula_activations(req["network"]) > 0
+                                          ) * (1 if plan is None else 2)
             check_budget(admitted, self.limits.work_budget,
                          f"a network of {net.n_positions} positions with its learning-rate "
-                         f"ceiling for {loss} ({k} outputs)",
+                         f"ceiling for {loss} ({k} outputs)"
+                         + ("" if plan is None else ", for the verdict and the plan"),
                          "/n_classes" if loss == "cross_entropy" else "/network",
                          "fewer outputs" if loss == "cross_entropy" else "fewer positions")
             training = {"loss": loss, "n_classes": req.get("n_classes"),
@@ -240,10 +252,12 @@ class NetworkComputations:
         result = self._propagate(net, req, admitted)
         planned = None
         if plan is not None:
-            planned = network_plan(net, q0=req["q0"], c0=req["c0"], target=plan["target"],
+            planned = network_plan(net, q0=req["q0"], c0=req["c0"], c0_within=req["c0_within"],
+                                   c0_between=req["c0_between"], target=plan["target"],
                                    max_gradient=plan["max_gradient"],
                                    distribution=plan["distribution"],
-                                   convolution=plan["convolution"], q_star=plan["q_star"])
+                                   convolution=plan["convolution"], q_star=plan["q_star"],
+                                   **training)
         return jsonable({"propagation": result.to_dict(),
                          "plan": None if planned is None else planned.to_dict(),
                          "verdict": network_verdict(result, **training).to_dict()})

@@ -380,3 +380,49 @@ def test_the_verdict_has_finite_width_numbers_for_a_residual_network(tmp_path):
     assert reasons["finite-width gradient spread"]["value"] == fw.gradient_spread
     assert reasons["finite-width spread"]["value"] == fw.top_log_sd == 0.0  # the RMS norm: q = 1
     assert reasons["finite-width drift"]["passes"] is fw.drift_ok
+
+
+TOKENS = {"input_width": 16, "blocks": [
+    {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 32}}, {"activation": "tanh"},
+    {"residual": {"weight": 0.5, "branch": [{"norm": "layer"}, {"attention": {
+        "tokens": 4, "width": 32, "query_key_scale": 0.0}}]}},
+    {"pooling": {"kind": "global_average", "positions": 4}},
+    {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 4}}]}
+
+
+def test_the_plan_carries_its_learning_rate_at_the_position_correlations(tmp_path):
+    # the reference is the Python API: network_plan at the same inputs, whose ceiling is
+    # network_learning_rate_ceiling's (tests/test_network_plan.py)
+    code, out, err = run("network", write(tmp_path, TOKENS), "--json", "--c0", "0.3",
+                         "--c0-within", "0.4", "--c0-between", "0.1", "--loss", "mse",
+                         "--batch-size", "16")
+    assert code == 0, err
+    ref = propcalc.network_plan(TOKENS, c0=0.3, c0_within=0.4, c0_between=0.1, loss="mse",
+                                batch_size=16)
+    plan = strict_json(out)["plan"]
+    assert plan["learning_rate_ceiling"] == pytest.approx(ref.learning_rate_ceiling, rel=1e-12)
+    assert plan["learning_rate"] == pytest.approx(ref.learning_rate, rel=1e-12)
+    assert plan["learning_rate_note"] is None
+    code, out, err = run("network", write(tmp_path, TOKENS), "--c0", "0.3", "--c0-within", "0.4",
+                         "--c0-between", "0.1", "--loss", "mse", "--batch-size", "16")
+    assert code == 0, err
+    assert "planned: learning-rate ceiling" in out and "note: learning rate: ceiling" in out
+
+
+def test_a_plan_whose_kernel_is_refused_says_why_and_stays(tmp_path):
+    desc = json.loads(json.dumps(TOKENS))
+    desc["blocks"][2]["residual"]["branch"][1]["attention"]["query_key_scale"] = 1.0
+    path = write(tmp_path, desc)
+    args = ("--c0-within", "0.4", "--target", "0.9", "--loss", "mse", "--batch-size", "16")
+    code, out, err = run("network", path, "--json", *args)
+    assert code == 0, err
+    body = strict_json(out)
+    assert body["plan_error"] is None and body["plan"]["blocks"]
+    assert body["plan"]["learning_rate_ceiling"] is None and body["plan"]["learning_rate"] is None
+    assert ("block /blocks/2/residual/branch/1 (attention): the query-key logits spread"
+            in body["plan"]["learning_rate_note"])
+    code, out, err = run("network", path, *args)
+    assert code == 0, err
+    assert "not computed (note below)" in out
+    assert "note: learning rate not computed: the tangent kernel is not computed" in out
+    assert "residual branch weight" in out

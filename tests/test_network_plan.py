@@ -150,3 +150,98 @@ def test_max_gradient_is_checked_even_without_a_target(bound):
                                          {"activation": "tanh"}]}
     with pytest.raises(propcalc.PropcalcError, match="max_gradient must be"):
         propcalc.network_plan(desc, max_gradient=bound)
+
+
+# ---------------------------------------------------------------------------------------------
+# with a loss (issue 15): the plan's learning rate, or why not by path. The reference is the
+# Python API: propcalc.training.network_learning_rate_ceiling (itself checked against seeded
+# torch kernels in tests/test_network_ntk_blocks.py) and the plan made without a loss.
+# ---------------------------------------------------------------------------------------------
+def attention(qk, tokens=4):
+    return {"attention": {"tokens": tokens, "width": 32, "query_key_scale": qk}}
+
+
+def mean_pool(positions=4):
+    return {"pooling": {"kind": "global_average", "positions": positions}}
+
+
+def conv(sw, width=8):
+    return {"convolution": {"sigma_w2": sw, "sigma_b2": 0.0, "kernel": 3, "width": width}}
+
+
+REFUSED = [
+    # attention whose logits spread (query_key_scale 1, distinct tokens)
+    ([dense(1.0, width=32), act("tanh"), attention(1.0), mean_pool(), dense(1.0, width=3)],
+     "block /blocks/2 (attention): the query-key logits spread"),
+    # max pooling
+    ([conv(1.0), act("relu"), {"pooling": {"kind": "max", "window": 2}}, mean_pool(2),
+      dense(1.0, width=3)], "block /blocks/2 (pooling): the stream's law is not known there"),
+    # batch norm of a stream with several positions
+    ([conv(1.0), {"norm": "batch"}, act("relu"), mean_pool(), dense(1.0, width=3)],
+     "block /blocks/1 (norm): batch norm of a stream with several positions"),
+    # an output with several positions; the repeat's first copy is written out before it in the
+    # planned description (its rule differs), the note keeps the given description's paths
+    ([repeat(2, conv(1.0), act("relu")), conv(1.0, width=3)],
+     "output has several positions (from block /blocks/0/repeat/blocks/0 (convolution) on"),
+]
+
+
+@pytest.mark.parametrize("blocks,needle", REFUSED)
+def test_a_plan_whose_kernel_is_refused_still_comes_back_with_the_reason(blocks, needle):
+    desc = {"input_width": 4, "blocks": blocks}
+    plain = propcalc.network_plan(desc, c0=0.2, c0_within=0.3)
+    plan = propcalc.network_plan(desc, c0=0.2, c0_within=0.3, loss="mse", batch_size=8)
+    assert plan.blocks == plain.blocks and plan.description == plain.description
+    assert plan.learning_rate_ceiling is None and plan.learning_rate is None
+    assert plan.learning_rate_details is None
+    assert needle in plan.learning_rate_note
+    assert plan.learning_rate_note.startswith("the tangent kernel is not computed")
+    assert any(needle in n and n.startswith("learning rate not computed") for n in plan.notes)
+    d = propcalc.jsonable(plan.to_dict())
+    assert d["learning_rate_note"] == plan.learning_rate_note and d["learning_rate"] is None
+    assert plain.learning_rate_note is None  # no loss, nothing to explain
+
+
+def test_a_split_repeat_moves_the_planned_paths_not_the_notes():
+    # the setting of the last case above: in the planned description the refused layout sits
+    # at other paths (the repeat's first copy is written out before it)
+    desc = {"input_width": 4, "blocks": REFUSED[-1][0]}
+    plan = propcalc.network_plan(desc, loss="mse", batch_size=8)
+    assert [b.copies for b in plan.blocks] == ["first", "rest", "all"]
+    assert len(plan.description["blocks"]) == 4 and "repeat" in plan.description["blocks"][2]
+
+
+def test_errors_of_the_request_are_still_refused_with_a_loss():
+    desc = {"input_width": 4, "blocks": REFUSED[0][0]}
+    with pytest.raises(propcalc.PropcalcError, match="batch_size must be given"):
+        propcalc.network_plan(desc, loss="mse")
+    ok = {"input_width": 4, "blocks": [dense(1.0, width=8), act("tanh"), dense(1.0, width=3)]}
+    with pytest.raises(propcalc.PropcalcError, match=r"n_classes must be equal to the output"):
+        propcalc.network_plan(ok, loss="mse", batch_size=8, n_classes=5)
+
+
+TOKENS = {"input_width": 16, "blocks": [
+    dense(1.0, width=32), act("tanh"),
+    residual({"norm": "layer"}, attention(0.0), weight=0.5),
+    residual({"norm": "layer"}, dense(2.0, width=32), act("relu"), dense(1.0, width=32),
+             weight=0.5),
+    mean_pool(), dense(1.0, width=4)]}
+
+
+def test_the_plans_ceiling_takes_the_position_correlations():
+    from propcalc.training import network_learning_rate_ceiling
+    pos = {"c0_within": 0.4, "c0_between": 0.1}
+    plan = propcalc.network_plan(TOKENS, c0=0.3, loss="cross_entropy", batch_size=16, **pos)
+    ref = network_learning_rate_ceiling(plan.description, loss="cross_entropy", batch_size=16,
+                                        input_correlation=0.3, **pos)
+    assert plan.learning_rate_note is None
+    assert plan.learning_rate_ceiling == pytest.approx(ref.learning_rate_ceiling, rel=1e-12)
+    assert plan.learning_rate == pytest.approx(ref.learning_rate, rel=1e-12)
+    # the planned propagation is made at the same inputs
+    prop = propcalc.network_propagation(plan.description, 1.0, 0.3, simulate=False, **pos)
+    assert plan.output_c == pytest.approx(prop.c[-1], rel=1e-12)
+    # and they matter: at c0_within = c0_between = 0 the ceiling differs
+    other = propcalc.network_plan(TOKENS, c0=0.3, loss="cross_entropy", batch_size=16)
+    assert abs(other.learning_rate_ceiling / plan.learning_rate_ceiling - 1) > 1e-3
+    with pytest.raises(propcalc.PropcalcError, match="c0_between must be at most c0_within"):
+        propcalc.network_plan(TOKENS, c0_within=0.1, c0_between=0.5)

@@ -29,7 +29,7 @@ from dataclasses import dataclass, field, replace
 from typing import Any
 
 from ..activations.base import Activation
-from ..errors import InvalidParameterError
+from ..errors import InvalidParameterError, PropcalcError
 from ..networks.blocks import (
     ActivationBlock,
     Block,
@@ -37,7 +37,6 @@ from ..networks.blocks import (
     Dense,
     Dropout,
     Network,
-    Norm,
     Repeat,
     Residual,
 )
@@ -45,12 +44,17 @@ from ..networks.description import network as parse_network
 from ..networks.propagate import check_inputs, network_propagation
 from ..networks.rules import Stream
 from ..networks.summary import NetworkSummary
-from ..networks.targets import (BranchWeight, branch_weight, check_max_gradient,
-                                with_branch_weight)
+from ..networks.targets import (
+    BranchWeight,
+    branch_weight,
+    check_max_gradient,
+    with_branch_weight,
+)
 from ..networks.walk import Trace, trace
 from ..results import OMIT, Result
 from ..training.learning_rate import LearningRateCeiling
 from ..training.network_ntk import network_learning_rate_ceiling
+from ..training.ntk import UnsupportedKernelError
 from .plan import InitPlan
 from .planner import recommend
 from .training_plan import refuse_without_loss
@@ -114,7 +118,13 @@ class NetworkPlan(Result):
         The loss the learning rate is planned for (None without one).
     learning_rate_ceiling, learning_rate : float or None
         ``2 (1 + momentum) / lambda_max`` of the planned network and half of it
-        (:func:`propcalc.training.network_learning_rate_ceiling`); None without a loss.
+        (:func:`propcalc.training.network_learning_rate_ceiling`); None without a loss, and
+        None where the tangent kernel is not computed (``learning_rate_note`` says why).
+    learning_rate_note : str or None
+        With a loss and no ceiling: why not, naming the block by its JSON pointer in the
+        given description (attention whose logits spread, max pooling, batch norm of a stream
+        with several positions, an output with several positions...). The initialisation
+        planned stands.
     learning_rate_details : LearningRateCeiling or None
         The curvature behind them (Python only; the notes say the numbers).
     """
@@ -129,6 +139,7 @@ class NetworkPlan(Result):
     loss: str | None = None
     learning_rate_ceiling: float | None = None
     learning_rate: float | None = None
+    learning_rate_note: str | None = None
     learning_rate_details: LearningRateCeiling | None = field(default=None, repr=False,
                                                              metadata=OMIT)
 
@@ -186,13 +197,13 @@ class _Planner:
         p = self.plan(nxt)
         q_in = stream.q
         if not math.isfinite(q_in):  # an unknown stream (after max pooling...): q is NaN
-            return (b.sigma_w2, b.sigma_b2, "kept (the second moment of the stream entering it "
-                    "is not known: the Gaussian recursion does not hold there)")
+            return (b.sigma_w2, b.sigma_b2, ("kept (the second moment of the stream entering "
+                    "it is not known: the Gaussian recursion does not hold there)"))
         if p.q_star is None or q_in <= 0.0 or p.q_star <= p.sigma_b2:
             return b.sigma_w2, b.sigma_b2, "kept (no variance fixed point to aim at)"
         return ((p.q_star - p.sigma_b2) / q_in, p.sigma_b2,
-                f"first layer before {nxt.label}: its output starts at q* = {p.q_star:.4g} "
-                f"for an input of second moment {q_in:.4g}")
+                (f"first layer before {nxt.label}: its output starts at q* = {p.q_star:.4g} "
+                 f"for an input of second moment {q_in:.4g}"))
 
 
 def _next_activation(after: tuple[Block, ...]) -> Activation | None:
@@ -305,7 +316,8 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
                  convolution: str = "gaussian", q_star: float | None = None,
                  loss: str | None = None, n_classes: int | None = None,
                  batch_size: int | None = None, momentum: float = 0.0,
-                 input_correlation: float | None = None) -> NetworkPlan:
+                 input_correlation: float | None = None, c0_within: float = 0.0,
+                 c0_between: float = 0.0) -> NetworkPlan:
     """Plan the initialisation of every weight block of a network (and its residual weight).
 
     Parameters
@@ -313,6 +325,10 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
     network : Network or mapping
     q0, c0 : float
         The inputs (second moment; the correlation used for the residual target).
+    c0_within, c0_between : float
+        With pooling or attention: the input's correlation between two positions of one input
+        and of the two inputs (as for :func:`propcalc.network_propagation`); they enter the
+        planned propagation, the residual target and the learning-rate ceiling.
     target : float, optional
         Output correlation not to exceed for two inputs at c0; sets every residual
         branch weight (:func:`propcalc.networks.targets.branch_weight`).
@@ -327,8 +343,9 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
         Preferred variance fixed point on the edge of chaos (as for recommend).
     loss : str, optional
         "cross_entropy" or "mse": the plan then carries the learning-rate ceiling of the
-        planned network (dense, activation and residual blocks only; others are refused by
-        path). The last layer is not rescaled here (unlike recommend).
+        planned network (:func:`propcalc.training.network_learning_rate_ceiling`), or, where
+        its tangent kernel is not computed, ``learning_rate_note`` saying why by path (the
+        plan itself is still made). The last layer is not rescaled here (unlike recommend).
     n_classes : int, optional
         Must equal the output width when given.
     batch_size : int, optional
@@ -348,50 +365,74 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
     if convolution not in ("gaussian", "delta_orthogonal"):
         raise InvalidParameterError("convolution", 'one of "gaussian", "delta_orthogonal"',
                                     convolution)
-    q0, c0, _, _ = check_inputs(q0, c0, 0.0, 0.0, net.uses_positions())
+    q0, c0, cw, cb = check_inputs(q0, c0, c0_within, c0_between, net.uses_positions())
+    pos = {"c0_within": cw, "c0_between": cb}
     check_max_gradient(max_gradient)  # checked even without a target (where it is unused)
     notes: list[str] = []
     found: BranchWeight | None = None
     if target is not None:
-        planned = _planned(net, q0, c0, distribution, convolution, q_star)[0]
+        planned = _planned(net, q0, c0, pos, distribution, convolution, q_star)[0]
         # the layers first (they set the branch's maps), then the weight, then the layers
         # again (a first layer's scale depends on the stream entering it)
         for _ in range(2):
-            found = branch_weight(planned, target, max_gradient=max_gradient, q0=q0, c0=c0)
+            found = branch_weight(planned, target, max_gradient=max_gradient, q0=q0, c0=c0,
+                                  **pos)
             if found.weight is None or found.unbounded:
                 break
             net = with_branch_weight(net, found.weight)
-            planned = _planned(net, q0, c0, distribution, convolution, q_star)[0]
+            planned = _planned(net, q0, c0, pos, distribution, convolution, q_star)[0]
         assert found is not None
         notes.append(found.message)
         if found.weight is None or found.unbounded:
             notes.append("the residual weights are kept as described")
-    planned, inits = _planned(net, q0, c0, distribution, convolution, q_star)
-    result = network_propagation(planned, q0, c0, simulate=False)
-    ceiling = None
+    planned, inits = _planned(net, q0, c0, pos, distribution, convolution, q_star)
+    result = network_propagation(planned, q0, c0, simulate=False, **pos)
+    ceiling, why = None, None
     if loss is None:
         refuse_without_loss(momentum, n_classes=n_classes, batch_size=batch_size,
                             input_correlation=input_correlation)
     else:
         if batch_size is None:
             raise InvalidParameterError("batch_size", "given when a loss is given", None)
-        ceiling = network_learning_rate_ceiling(
-            planned, loss=loss, batch_size=batch_size, n_classes=n_classes, q0=q0,
-            input_correlation=c0 if input_correlation is None else input_correlation,
-            momentum=momentum)
-        notes.append(f"learning rate: ceiling {ceiling.learning_rate_ceiling:.4g} (2 (1 + "
-                     f"momentum) / lambda_max, lambda_max = {ceiling.lambda_max:.4g}); "
-                     f"recommended {ceiling.learning_rate:.4g} ({ceiling.learning_rate_rule})")
+        options = dict(loss=loss, batch_size=batch_size, n_classes=n_classes, q0=q0,
+                       input_correlation=c0 if input_correlation is None else input_correlation,
+                       momentum=momentum, **pos)
+        try:
+            ceiling = network_learning_rate_ceiling(planned, **options)
+        except UnsupportedKernelError as err:
+            why = "the tangent kernel is not computed for this network: " + (
+                _refusal(net, options) or f"{err} (a path in the planned description)")
+            notes.append(f"learning rate not computed: {why}")
+        else:
+            notes.append(f"learning rate: ceiling {ceiling.learning_rate_ceiling:.4g} (2 (1 + "
+                         f"momentum) / lambda_max, lambda_max = {ceiling.lambda_max:.4g}); "
+                         f"recommended {ceiling.learning_rate:.4g} "
+                         f"({ceiling.learning_rate_rule})")
     return NetworkPlan(tuple(inits), found, planned.describe(), result.summary, result.c[-1],
                        result.gradient[0], tuple(notes), loss,
                        None if ceiling is None else ceiling.learning_rate_ceiling,
-                       None if ceiling is None else ceiling.learning_rate, ceiling)
+                       None if ceiling is None else ceiling.learning_rate, why, ceiling)
 
 
-def _planned(net: Network, q0: float, c0: float, distribution: str, convolution: str,
-             q_star: float | None) -> tuple[Network, list[BlockInit]]:
+def _refusal(net: Network, options: dict[str, Any]) -> str | None:
+    """Why the kernel of the given network is refused, with the paths of the given description
+    (the planned one may write out the first copy of a repeat before it, moving the paths).
+
+    The refusals depend on the kinds and the layout of the blocks, which planning keeps, so
+    the given network is refused as the planned one was; None if it were not."""
+    try:
+        network_learning_rate_ceiling(net, **options)
+    except UnsupportedKernelError as err:
+        return str(err)
+    except PropcalcError:
+        return None
+    return None
+
+
+def _planned(net: Network, q0: float, c0: float, pos: dict[str, float], distribution: str,
+             convolution: str, q_star: float | None) -> tuple[Network, list[BlockInit]]:
     """The network with every weight block planned, and the per-block records."""
-    tr: Trace = trace(net, q0, c0)
+    tr: Trace = trace(net, q0, c0, **pos)
     planner = _Planner("normal" if distribution == "gaussian" else "orthogonal", q_star)
     planner.walk(net.blocks, tr.streams, [v.step for v in tr.visits], "/blocks", (), 0, None)
     inits: list[BlockInit] = []

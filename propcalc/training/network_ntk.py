@@ -113,7 +113,14 @@ class _Carry:
         #: whether the stream has several positions (after a convolution, pooling windows or
         #: attention, or an input with positions) that no global average has pooled yet
         self.spatial = spatial
+        #: where the positions of the stream come from (a block's path and kind, or "the input")
+        self.positions_from: str | None = "the input" if spatial else None
         self.notes: dict[str, None] = {}
+
+    def _positions(self, spatial: bool, where: str, kind: str) -> None:
+        if spatial and not self.spatial:
+            self.positions_from = f"block {where} ({kind})"
+        self.spatial = spatial
 
     def run(self, blocks: tuple[Any, ...], theta: rules.Kernel, path: str) -> rules.Kernel:
         for i, b in enumerate(blocks):
@@ -132,6 +139,8 @@ class _Carry:
             inner = _Carry(iter(step.branch), before, self.spatial)
             t_branch = inner.run(b.branch, theta, f"{where}/residual/branch")
             self.stream = step.stream
+            if inner.spatial and not self.spatial:
+                self.positions_from = inner.positions_from
             self.spatial = self.spatial or inner.spatial
             self.notes.update(inner.notes)
             return rules.residual(theta, t_branch, b.shortcut, b.weight)
@@ -141,7 +150,7 @@ class _Carry:
                 f"block {where} ({b.KIND}): the stream's law is not known there "
                 f"({step.stream.reason or before.reason}), so neither is the kernel")
         if isinstance(b, (Dense, Convolution)):
-            self.spatial = self.spatial or isinstance(b, Convolution)
+            self._positions(self.spatial or isinstance(b, Convolution), where, b.KIND)
             return rules.weight_block(before, b, theta, where)
         if isinstance(b, ActivationBlock):
             return rules.activation(step, theta)
@@ -153,10 +162,10 @@ class _Carry:
             self.notes[_DROPOUT_NOTE] = None
             return rules.dropout(b, theta)
         if isinstance(b, Pooling):
-            self.spatial = b.kind != "global_average"
+            self._positions(b.kind != "global_average", where, b.KIND)
             return rules.pooling(b, theta, where)
         assert isinstance(b, Attention)
-        self.spatial = True
+        self._positions(True, where, b.KIND)
         return rules.attention(before, b, step, theta, where)
 
 
@@ -187,6 +196,12 @@ def network_tangent_kernel(network: Any, q0: float = 1.0, c0: float = 0.0, *,
         For max pooling, attention with a logit spread, a missing width, or a stream whose law
         is unknown.
     """
+    return _kernel(network, q0, c0, c0_within, c0_between)[0]
+
+
+def _kernel(network: Any, q0: float, c0: float, c0_within: float, c0_between: float
+            ) -> tuple[NetworkTangentKernel, str | None]:
+    """The kernel, and where its output's positions come from (None: one position)."""
     net = network if isinstance(network, Network) else read_network(network)
     q0, c0, c0_within, c0_between = check_inputs(q0, c0, c0_within, c0_between,
                                                  net.uses_positions())
@@ -195,9 +210,10 @@ def network_tangent_kernel(network: Any, q0: float = 1.0, c0: float = 0.0, *,
     carry = _Carry(iter(v.step for v in tr.visits), tr.start, tr.start.kw is not None)
     theta = carry.run(net.blocks, rules.start(tr.start), "/blocks")
     out = carry.stream
-    return NetworkTangentKernel(float(q0), float(c0), float(theta.diag), float(theta.pair),
-                                float(out.q), float(out.c), out.width, carry.spatial,
-                                tuple(carry.notes))
+    return (NetworkTangentKernel(float(q0), float(c0), float(theta.diag), float(theta.pair),
+                                 float(out.q), float(out.c), out.width, carry.spatial,
+                                 tuple(carry.notes)),
+            carry.positions_from if carry.spatial else None)
 
 
 def network_learning_rate_ceiling(network: Any, *, loss: str, batch_size: int,
@@ -242,13 +258,14 @@ def network_learning_rate_ceiling(network: Any, *, loss: str, batch_size: int,
     mu = domains.check("momentum", momentum)
     cs = correlation_samples(input_correlation, MAX_NETWORK_SAMPLES)
     net = network if isinstance(network, Network) else read_network(network)
-    kernels = [network_tangent_kernel(net, q0, float(c), c0_within=c0_within,
-                                      c0_between=c0_between) for c in cs]
-    if kernels[0].several_positions:
+    first, positions_from = _kernel(net, q0, float(cs[0]), c0_within, c0_between)
+    if positions_from is not None:
         raise UnsupportedKernelError(
-            "the network's output has several positions (a convolution, pooling windows or "
-            "attention without a global average pooling after it): the ceiling is computed for "
-            "one output vector per input; end with a global average pooling before the readout")
+            f"the network's output has several positions (from {positions_from} on, with no "
+            "global average pooling after it): the ceiling is computed for one output vector "
+            "per input; end with a global average pooling before the readout")
+    kernels = [first] + [network_tangent_kernel(net, q0, float(c), c0_within=c0_within,
+                                                c0_between=c0_between) for c in cs[1:]]
     k = kernels[0].output_width
     if k is None:
         raise UnsupportedKernelError("the network's output width is not given: set every "

@@ -116,6 +116,28 @@ CASES: list[tuple[str, str, dict[str, Any]]] = [
              {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 128}}]}}]}},
          {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 500}}]},
       "plan": None, "loss": "cross_entropy", "batch_size": 64}),
+    # the plan's ceiling of the planned network besides the verdict's (measured 1188 units
+    # under an estimate of 2136)
+    ("network with its plan and both learning-rate ceilings, 200 classes", "/v1/network",
+     {"network": {"input_width": 64, "blocks": [
+         {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 128}},
+         {"repeat": {"times": 100, "blocks": [{"residual": {"weight": 0.5, "branch": [
+             {"norm": "layer"}, {"dense": {"sigma_w2": 2.0, "sigma_b2": 0.0, "width": 128}},
+             {"activation": "tanh"},
+             {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 128}}]}}]}},
+         {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 200}}]},
+      "loss": "cross_entropy", "batch_size": 64}),
+    # the kernel refused at the last blocks: three walks to the refusal (the verdict's, the
+    # planned network's, the given one's for its paths); measured 1624 units under 2736
+    ("network plan whose kernel is refused at its end", "/v1/network",
+     {"network": {"input_width": 16, "blocks": [
+         {"convolution": {"sigma_w2": 1.0, "sigma_b2": 0.0, "kernel": 3, "width": 64}},
+         {"repeat": {"times": 100, "blocks": [{"activation": "tanh"}, {"convolution": {
+             "sigma_w2": 1.0, "sigma_b2": 0.0, "kernel": 3, "width": 64}}]}},
+         {"norm": "batch"}, {"activation": "relu"},
+         {"pooling": {"kind": "global_average", "positions": 4}},
+         {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 10}}]},
+      "c0_within": 0.3, "loss": "mse", "batch_size": 16}),
     ("network plan with a target", "/v1/network",
      {"network": _residual("tanh", 50), "plan": {"target": 0.9}}),
     ("network, simulated positions", "/v1/network",

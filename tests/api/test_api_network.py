@@ -327,3 +327,40 @@ def test_many_classes_are_refused_by_the_budget(client):
     body = problem(client.post("/v1/network", json={
         "network": wide, "plan": None, "loss": "cross_entropy", "batch_size": 8}), 422, BUDGET)
     assert pointers(body) == ["/n_classes"] and "learning-rate ceiling" in body["detail"]
+
+
+# the plan with a loss: its learning rate at the position correlations, or why not by path
+TOKENS = {"input_width": 16, "blocks": [
+    dense(1.0, width=32), {"activation": "tanh"},
+    {"residual": {"weight": 0.5, "branch": [{"norm": "layer"}, {"attention": {
+        "tokens": 4, "width": 32, "query_key_scale": 0.0}}]}},
+    {"pooling": {"kind": "global_average", "positions": 4}}, dense(1.0, width=4)]}
+
+
+def test_the_plan_carries_its_learning_rate_at_the_position_correlations(client, strict_json):
+    # the reference is the Python API: network_plan at the same inputs, whose ceiling is
+    # network_learning_rate_ceiling's (tests/test_network_plan.py)
+    inputs = {"c0": 0.3, "c0_within": 0.4, "c0_between": 0.1}
+    body = post(client, {"network": TOKENS, **inputs, "loss": "cross_entropy",
+                         "batch_size": 16}, strict_json)
+    ref = propcalc.network_plan(TOKENS, **inputs, loss="cross_entropy", batch_size=16)
+    assert body["plan"] == jsonable(ref.to_dict())
+    assert body["plan"]["learning_rate_ceiling"] > 0 and body["plan"]["learning_rate_note"] is None
+
+
+def test_a_plan_whose_kernel_is_refused_says_why(client, strict_json):
+    desc = {"input_width": 16, "blocks": [
+        {"convolution": {"sigma_w2": 1.0, "sigma_b2": 0.0, "kernel": 3, "width": 8}},
+        {"norm": "batch"}, {"activation": "relu"},
+        {"pooling": {"kind": "global_average", "positions": 4}}, dense(1.0, width=3)]}
+    body = post(client, {"network": desc, "c0_within": 0.3, "loss": "mse", "batch_size": 8},
+                strict_json)
+    ref = propcalc.network_plan(desc, c0_within=0.3, loss="mse", batch_size=8)
+    assert body["plan"] == jsonable(ref.to_dict())
+    plan = body["plan"]
+    assert plan["blocks"] and plan["learning_rate_ceiling"] is None
+    assert plan["learning_rate"] is None
+    assert "block /blocks/1 (norm): batch norm of a stream with several positions" in (
+        plan["learning_rate_note"])
+    lr = next(r for r in body["verdict"]["reasons"] if r["name"] == "learning rate")
+    assert lr["value"] is None and "/blocks/1 (norm)" in lr["detail"]

@@ -38,7 +38,7 @@ from ..output import (
 )
 from ..pictures import start_plot, write_plot
 
-__all__ = ["MAX_FILE_BYTES", "DEFAULT_ROWS", "read_description", "register"]
+__all__ = ["DEFAULT_ROWS", "MAX_FILE_BYTES", "read_description", "register"]
 
 #: The largest description file read (a description at the engine's limit of 10,000 block
 #: objects is about 2 MB of JSON).
@@ -186,12 +186,15 @@ def _plan_text(plan: Any, out: TextIO) -> None:
         out.write("no dense or convolution blocks to plan\n")
     if plan.branch_weight is not None and plan.branch_weight.weight is not None:
         out.write(f"residual branch weight  {format_number(plan.branch_weight.weight)}\n")
-    out.write(format_pairs([("planned: output c", plan.output_c),
-                            ("planned: input gradient / output", plan.input_gradient)]) + "\n")
-    for line in _summary_lines(plan.summary):
-        out.write(f"  {line}\n")
-    for note in plan.notes:
-        out.write(f"note: {note}\n")
+    pairs = [("planned: output c", plan.output_c),
+             ("planned: input gradient / output", plan.input_gradient)]
+    if plan.loss is not None:
+        pairs += [("planned: learning-rate ceiling", plan.learning_rate_ceiling
+                   if plan.learning_rate_note is None else "not computed (note below)"),
+                  ("planned: learning rate", plan.learning_rate)]
+    out.write(format_pairs(pairs) + "\n")
+    out.writelines(f"  {line}\n" for line in _summary_lines(plan.summary))
+    out.writelines(f"note: {note}\n" for note in plan.notes)
 
 
 def _check_text(sim: Any, rows: int | None, out: TextIO) -> None:
@@ -283,9 +286,12 @@ def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
     plan, plan_error = None, None
     if not args.no_plan:
         try:
-            plan = network_plan(net, q0=args.q0, c0=args.c0, target=args.target,
+            plan = network_plan(net, q0=args.q0, c0=args.c0, c0_within=args.c0_within,
+                                c0_between=args.c0_between, target=args.target,
                                 max_gradient=args.max_gradient, distribution=args.distribution,
-                                convolution=args.convolution)
+                                convolution=args.convolution, loss=args.loss,
+                                n_classes=args.n_classes, batch_size=args.batch_size,
+                                momentum=args.momentum)
         except PropcalcError as exc:  # the propagation stands without it
             plan_error = str(exc)
     if args.json:
@@ -355,7 +361,8 @@ def register(sub: Any) -> None:
                    help="plan: convolution kernels (default gaussian)")
     p.add_argument("--loss", choices=["cross_entropy", "mse"],
                    help="verdict: the learning-rate ceiling of the described network for this "
-                        "loss (needs --batch-size) and its output-layer reason")
+                        "loss (needs --batch-size) and its output-layer reason; plan: the "
+                        "planned network's ceiling and learning rate (or why not)")
     p.add_argument("--n-classes", type=int,
                    help="with --loss: outputs K (default: the readout's width)")
     p.add_argument("--batch-size", type=int, help="with --loss: inputs per step B")
