@@ -9,9 +9,13 @@ a new value in every call so that no cache answers.
 
 from __future__ import annotations
 
+import math
+import time
 from typing import Any
 
-__all__ = ["CASES", "REFERENCE"]
+import numpy as np
+
+__all__ = ["CASES", "REFERENCE_UNITS", "reference_work"]
 
 _FORMULA = {"formula": "where(x > 0, x, 0.1 * x) + 0.5 * tanh(3 * x)"}
 _JUMP_FORMULA = {"formula": "where(x > 0.3, 1.0, -0.5)"}
@@ -31,8 +35,32 @@ def _residual(act, times: int) -> dict[str, Any]:
         {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0}}]}}]}}]}
 
 
-#: the reference request of the test: 40 propagation reports of tanh at new points
-REFERENCE = ("/v1/propagation", {"activation": "tanh", "sigma_w2": 1.3, "sigma_b2": 0.05})
+#: Work units of :func:`reference_work`: where the cost model was measured, 40 propagation
+#: reports of tanh (the earlier reference) took 105 ms of CPU, and this workload 0.984 times as
+#: long as those reports at c85cda1 (median of 7 alternating runs on one machine, 2026-12-05:
+#: 76.2-77.3 ms against 76.8-80.3 ms).
+#: The reference is independent of propcalc, so the unit stays put when the engine gets faster
+#: (415dd5b made those reports 35% cheaper, which inflated every other case's units by 1.55).
+REFERENCE_UNITS = 103.3
+
+
+def reference_work() -> float:
+    """CPU milliseconds (this thread's clock) of a fixed workload independent of propcalc.
+
+    Small numpy reductions in an interpreted loop, the mix of the engine's cost:
+    18000 evaluations of tanh on 193 nodes weighted by a Gaussian, each with a short Python sum.
+    """
+    x = np.linspace(-8.0, 8.0, 193)
+    w = np.exp(-0.5 * x * x)
+    start = time.thread_time()
+    total = 0.0
+    for i in range(18000):
+        y = np.tanh((1.0 + 1e-3 * (i % 50)) * x)
+        total += float(np.dot(w, y * y))
+        total += sum(math.sin(0.1 * t) for t in range(20))
+    elapsed = time.thread_time() - start
+    assert math.isfinite(total)
+    return 1e3 * elapsed
 
 #: (name, path, body) at the endpoints' limits; bodies get a tiny new offset per call
 CASES: list[tuple[str, str, dict[str, Any]]] = [

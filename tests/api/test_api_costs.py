@@ -5,8 +5,9 @@ WORK_BUDGET admits, one per endpoint and kind) is sent once through the app, and
 the CPU time of its computation (the thread's CPU clock, read by the guard) is
 compared with its estimate. To be robust to a loaded or slower machine, CPU
 times are converted to work units through a reference measured in the same
-test: 40 propagation reports of tanh, which cost REFERENCE_UNITS units (their
-CPU milliseconds on the machine where the coefficients were measured), run
+test: ``cost_cases.reference_work``, a fixed workload independent of propcalc
+that costs REFERENCE_UNITS units (calibrated against the earlier reference, 40
+propagation reports of tanh = 105 units where the coefficients were measured), run
 before and after the cases (the slower run sets the unit); a case measured
 over the bound is measured once more and the smaller CPU time counts (the
 load of a shared machine changes from one second to the next).
@@ -25,28 +26,16 @@ from __future__ import annotations
 
 import pytest
 
-from cost_cases import CASES, REFERENCE
+from cost_cases import CASES, REFERENCE_UNITS, reference_work
 from propcalc_api import create_app
 from propcalc_api._guard import last_ticket
 
-#: CPU milliseconds of the reference (40 propagation reports) where the model was measured
-REFERENCE_UNITS = 105.0
 #: measured <= BOUND_FACTOR * estimate
 BOUND_FACTOR = 2.0
 #: a refused metered sweep spends at most this share of the budget before it is refused
 METER_SHARE = 0.35
 
 pytestmark = pytest.mark.slow
-
-
-def _reference_ms(c) -> float:
-    path, body = REFERENCE
-    total = 0.0
-    for i in range(40):
-        assert c.post(path, json={**body, "sigma_w2": body["sigma_w2"] + 1e-3 * i}
-                      ).status_code == 200
-        total += 1e3 * last_ticket().cpu_used
-    return total
 
 
 @pytest.fixture(scope="module")
@@ -57,7 +46,7 @@ def measured():
     # load matplotlib and first-call tables outside the measured requests
     assert c.post("/v1/plots/variance-map", json={"activation": "tanh", "sigma_w2": 1.5,
                                                   "format": "png"}).status_code == 200
-    before = _reference_ms(c)
+    before = reference_work()
 
     def run(path: str, body: dict) -> tuple[int, dict, float, float]:
         resp = c.post(path, json=body)
@@ -68,7 +57,7 @@ def measured():
     # the load of a shared machine changes during the test: the slower of two reference runs
     # (before and after the cases) sets the unit, and a case measured over the bound is
     # measured once more (the smaller CPU time counts)
-    unit_ms = max(before, _reference_ms(c)) / REFERENCE_UNITS
+    unit_ms = max(before, reference_work()) / REFERENCE_UNITS
     out = {}
     for name, path, body in CASES:
         status, got, estimate, cpu = runs[name]

@@ -6,8 +6,8 @@ Sends every request of ``tests/api/cost_cases.py`` once through the app (no
 result cache, no run-time limits) and prints its status, its estimate (for
 metered sweeps: the projection from the first chunk), the CPU time of its
 computation and the ratio measured / estimate, with CPU times in work units
-through the reference measured in the same run (40 propagation reports of
-tanh = 105 units, their CPU milliseconds where the model was measured): the
+through the reference measured in the same run (``cost_cases.reference_work``, a
+fixed workload independent of propcalc, = ``REFERENCE_UNITS`` units): the
 same numbers that ``tests/api/test_api_costs.py`` asserts (ratio <= 2).
 In-process only: no network.
 """
@@ -19,24 +19,18 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "api"))
 
-from cost_cases import CASES, REFERENCE  # noqa: E402
+from cost_cases import CASES, REFERENCE_UNITS, reference_work  # noqa: E402
 from propcalc_api import create_app  # noqa: E402
 from propcalc_api._guard import last_ticket  # noqa: E402
 
 __all__ = ["main"]
-
-REFERENCE_UNITS = 105.0
 
 
 def main() -> int:
     c = create_app({"RESULT_CACHE_ENTRIES": 0, "PLOT_CACHE_ENTRIES": 0, "CPU_TIME_LIMIT": 0,
                     "WALL_CLOCK_LIMIT": 0}).test_client()
     c.post("/v1/plots/variance-map", json={"activation": "tanh", "sigma_w2": 1.5})
-    path, body = REFERENCE
-    ref_ms = 0.0
-    for i in range(40):
-        c.post(path, json={**body, "sigma_w2": body["sigma_w2"] + 1e-3 * i})
-        ref_ms += 1e3 * last_ticket().cpu_used
+    ref_ms = reference_work()
     unit_ms = ref_ms / REFERENCE_UNITS
     print(f"reference: {ref_ms:.1f} ms of CPU = {REFERENCE_UNITS:g} units "
           f"(1 unit = {unit_ms:.3f} ms here)\n")
