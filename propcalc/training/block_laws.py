@@ -38,9 +38,12 @@ Norms (layer and RMS, with gain g and eps): the forward map is ``Q -> g^2 Q / (Q
 deterministic (exactly g^2 when eps = 0: the spread of q is 0 after the norm); the layer norm's
 centring removes one of n degrees of freedom, ``E[Vc] = Q (1 - 1/n)``, which moves the output
 only through eps. Backward, the Jacobian is ``g (I - [1 1^T / n] - x x^T / (n (Q + eps))) /
-sqrt(Q + eps)``; for an isotropic incoming gradient, ``ln R = ln g^2 - ln(Q + eps) -
-(rho (2 - rho) + [1 for the layer norm]) / n`` with ``rho = Q / (Q + eps)`` and a noise of
-order 1/n^2 only. So the norm removes the spread of q but passes the spread of the stream's Q
+sqrt(Q + eps)`` (Q the centred variance for the layer norm); for an isotropic incoming
+gradient, ``ln R = ln g^2 - ln(Q + eps) - (rho (2 - rho) + [1 - rho for the layer norm]) / n``
+with ``rho = Q / (Q + eps)`` (the projection on x, and for the layer norm the projection on
+1, -1/n, and the centred variance's ``E[-ln(Vc + eps)] = -ln(Q + eps) + rho / n``), and a
+noise of order 1/n^2 only (measured at width 16 and 64, 20000 seeded networks: -0.0156
+predicted, -0.0152 +- 0.0018 and -0.0149 +- 0.0018 measured at 64 for layer and RMS norms). So the norm removes the spread of q but passes the spread of the stream's Q
 on to the gradient, as ``-ln Q``.
 
 Dropout (inverted, keep rate p) between an activation and the next dense block (or the
@@ -204,7 +207,7 @@ class Tape:
             shift[WORK] = -jac[WORK, WORK] * k
         mean[target] += math.log(gain * gain / t)
         jac[target, WORK] = -1.0 / t
-        shift[target] = -(rho * (2.0 - rho) + (1.0 if layer else 0.0))
+        shift[target] = -(rho * (2.0 - rho) + (1.0 - rho if layer else 0.0))
         self.steps.append(Step(mean, jac, np.zeros((_DIM, _DIM)), n,
                                [(WORK, WORK, WORK, -2.0 * gain * gain * eps / t ** 3),
                                 (target, WORK, WORK, 1.0 / (t * t))], shift))
