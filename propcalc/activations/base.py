@@ -180,8 +180,10 @@ class Activation(Result):
         x = np.linspace(-20.0, 20.0, 40001)
         with np.errstate(all="ignore"):
             d = self.derivative(x)
-            dd = np.diff(d) / (x[1] - x[0])
-        size, finite = np.abs(dd), np.isfinite(dd)  # (shared by both estimates)
+            dd = np.diff(d)
+            dd /= x[1] - x[0]  # (in place: the same quotients, one array fewer)
+            size = np.abs(dd)  # (shared by both estimates; None: every quotient is finite)
+            finite = None if np.isfinite(size.sum()) else np.isfinite(dd)
         scale = _grid_scale(x, d, size, finite, self.breakpoints)
         return scale, _grid_reach(x, dd, size, finite, self.breakpoints, scale)
 
@@ -223,36 +225,47 @@ class Activation(Result):
         return profile(self)
 
 
-def _grid_scale(x: Array, d: Array, size: Array, finite: Array,
+def _grid_scale(x: Array, d: Array, size: Array, finite: Array | None,
                 breakpoints: tuple[float, ...]) -> float:
     """max|phi'| / max|phi''| from phi' on the grid x (``size``: the absolute difference
     quotients, ``finite`` where they are finite; off the breakpoints), capped to [1e-3, 1]."""
     usable = finite
     for b in breakpoints:
-        usable = usable & ~((x[:-1] <= b + 1e-9) & (x[1:] >= b - 1e-9))
-    # (|diff| / h is |diff / h| exactly: the division rounds symmetrically)
-    curv = float(np.max(size, where=usable, initial=0.0))
-    top = float(np.max(np.abs(d), where=np.isfinite(d), initial=0.0))
+        off = ~((x[:-1] <= b + 1e-9) & (x[1:] >= b - 1e-9))
+        usable = off if usable is None else usable & off
+    # (|diff| / h is |diff / h| exactly: the division rounds symmetrically; the maxima over
+    # the usable entries, with 0 when there are none, and all of them usable when None)
+    curv = float(np.max(size) if usable is None else np.max(size, where=usable, initial=0.0))
+    with np.errstate(over="ignore", invalid="ignore"):
+        every = bool(np.isfinite(d.sum()))
+    # max|phi'| as the larger of max phi' and -min phi' when every value is finite
+    top = (max(float(d.max()), -float(d.min())) if every
+           else float(np.max(np.abs(d), where=np.isfinite(d), initial=0.0)))
     if curv <= 0.0 or top <= 0.0:
         return 1.0
     return float(min(1.0, max(1e-3, top / curv)))
 
 
-def _grid_reach(x: Array, dd: Array, size: Array, finite: Array,
+def _grid_reach(x: Array, dd: Array, size: Array, finite: Array | None,
                 breakpoints: tuple[float, ...], scale: float) -> float:
     """The farthest inflection of phi from 0 (0 within 4 scales, inf past 16), from the
     difference quotients ``dd`` of phi' on x (at the midpoints; ``size`` = |dd|)."""
     ok = finite
     for b in breakpoints:
-        ok = ok & (np.abs(0.5 * (x[:-1] + x[1:]) - b) > 2e-3)
-    if not ok.any():
-        return 0.0
-    big = ok & (size > 1e-6 * float(np.max(size, where=ok, initial=0.0)))
-    at = np.flatnonzero(big)
-    sign = np.sign(dd[at])
-    flips = np.flatnonzero(sign[1:] != sign[:-1])
+        away = np.abs(0.5 * (x[:-1] + x[1:]) - b) > 2e-3
+        ok = away if ok is None else ok & away
+    if ok is None:
+        big = size > 1e-6 * float(np.max(size))
+    else:
+        if not ok.any():
+            return 0.0
+        big = ok & (size > 1e-6 * float(np.max(size, where=ok, initial=0.0)))
+    # the signs of phi'' where it is big (none is 0 there: each exceeds a threshold >= 0)
+    rising = (dd > 0)[big]
+    flips = np.flatnonzero(rising[1:] != rising[:-1])
     if not flips.size:
         return 0.0
+    at = np.flatnonzero(big)
     ends = np.concatenate([at[flips], at[flips + 1]])
     far = float(np.max(np.abs(0.5 * (x[ends] + x[ends + 1]))))
     if far <= 4.0 * scale:
