@@ -263,16 +263,16 @@ def _solve_block(act: Activation, sw: Array, sb: Array, q_input: Array,
     stable = _stability(gap, owner, pq, chi, sw, sb)
     # q = 0 itself
     zeros = np.flatnonzero(zero_fixed & ~neutral)
-    chi0 = collapse_rate(act, sw[zeros]) if zeros.size else np.zeros(0)
-    first = g[zeros, :3] if zeros.size else np.zeros((0, 3))
-    clear = resolved[zeros, :3] if zeros.size else np.zeros((0, 3), dtype=bool)
-    sign_above = np.array([next((np.sign(v) for v, ok in zip(row, oks) if ok), 0.0)
-                           for row, oks in zip(first, clear)])
-    stable0 = np.where(np.abs(chi0 - 1.0) <= NEUTRAL_TOLERANCE, sign_above < 0, chi0 < 1.0)
-    owner = np.concatenate([zeros, owner])
-    pq = np.concatenate([np.zeros(zeros.size), pq])
-    chi = np.concatenate([chi0, chi])
-    stable = np.concatenate([stable0, stable])
+    if zeros.size:
+        chi0 = collapse_rate(act, sw[zeros])
+        first, clear = g[zeros, :3], resolved[zeros, :3]
+        sign_above = np.array([next((np.sign(v) for v, ok in zip(row, oks) if ok), 0.0)
+                               for row, oks in zip(first, clear)])
+        stable0 = np.where(np.abs(chi0 - 1.0) <= NEUTRAL_TOLERANCE, sign_above < 0, chi0 < 1.0)
+        owner = np.concatenate([zeros, owner])
+        pq = np.concatenate([np.zeros(zeros.size), pq])
+        chi = np.concatenate([chi0, chi])
+        stable = np.concatenate([stable0, stable])
     order = np.lexsort((pq, owner))
     owner, pq, chi, stable = owner[order], pq[order], chi[order], stable[order]
     return _flow(act, sw, sb, q_start, g_start, q_lo, neutral, owner, pq, chi, stable, rule)
@@ -323,22 +323,25 @@ def _flow(act: Activation, sw: Array, sb: Array, q_start: Array, g_start: Array,
         # lim V(q)/q at large q, evaluated at LARGE_Q (for ReLU exactly sigma_w2 / 2)
         large = large_variance(act, rule)
         growth[unbounded] = sw[unbounded] * float(second_moment(act, large, rule)) / large
-    # neutral: V(q) = q identically (ReLU at sigma_w2 = 2, linear at 1, with sigma_b2 = 0)
-    status[neutral] = VarianceStatus.NEUTRAL.value
-    q_star[neutral] = q_start[neutral]
-    chi_q[neutral] = 1.0
-    growth[neutral] = 1.0
-    keep = ~neutral[owner]
-    nz = np.flatnonzero(neutral)
-    owner = np.concatenate([owner[keep], nz])
-    pq = np.concatenate([pq[keep], q_start[nz]])
-    chi = np.concatenate([chi[keep], np.ones(nz.size)])
-    stable = np.concatenate([stable[keep], np.zeros(nz.size, dtype=bool)])
-    order = np.lexsort((pq, owner))
+    if neutral.any():
+        # neutral: V(q) = q identically (ReLU at sigma_w2 = 2, linear at 1, with sigma_b2 = 0)
+        status[neutral] = VarianceStatus.NEUTRAL.value
+        q_star[neutral] = q_start[neutral]
+        chi_q[neutral] = 1.0
+        growth[neutral] = 1.0
+        keep = ~neutral[owner]
+        nz = np.flatnonzero(neutral)
+        order = np.lexsort((np.concatenate([pq[keep], q_start[nz]]),
+                            np.concatenate([owner[keep], nz])))
+        owner = np.concatenate([owner[keep], nz])[order]
+        pq = np.concatenate([pq[keep], q_start[nz]])[order]
+        chi = np.concatenate([chi[keep], np.ones(nz.size)])[order]
+        stable = np.concatenate([stable[keep], np.zeros(nz.size, dtype=bool)])[order]
+    # (else the flat arrays stay as given: sorted by point and root)
     return VarianceSolution(status=status, q_start=q_start, q_star=q_star, chi_q=chi_q,
                             stable=reached_stable, growth_rate=growth, q_floor=q_lo,
-                            falls_below=falls, owner=owner[order], points_q=pq[order],
-                            points_chi=chi[order], points_stable=stable[order])
+                            falls_below=falls, owner=owner, points_q=pq,
+                            points_chi=chi, points_stable=stable)
 
 
 def large_variance(act: Activation, rule: QuadratureRule = DEFAULT_RULE) -> float:
