@@ -73,7 +73,8 @@ def second_moment(act: Activation, q: Any, rule: QuadratureRule = DEFAULT_RULE, 
     """
     rule = _scaled(act, rule)
     return gaussian_expectation(lambda x: act.value(x) ** 2, _q_array(q), act.breakpoints,
-                                rule=rule, what=f"{act.label}(x)^2", check_tails=check_tails)
+                                rule=rule, what=f"{act.label}(x)^2", check_tails=check_tails,
+                                fresh=True)
 
 
 def derivative_second_moment(act: Activation, q: Any, rule: QuadratureRule = DEFAULT_RULE) -> Array:

@@ -79,16 +79,18 @@ def hermite_coefficients(fn: Function, breakpoints: Sequence[float], q: Array, k
             f = np.asarray(fn(x), dtype=float)
         if not np.all(np.isfinite(f)):
             raise ComputationError(f"{what}(x) is not finite at a quadrature node")
-        z = x / np.sqrt(qs)[:, None]
+        sq = np.sqrt(qs)
         wf = w * f
         m2[sel] = np.einsum("ij,ij->i", wf, f)
         if all(bp == 0.0 for bp in bps):
             # no breakpoints but 0: every row has the same z-nodes (the grading depends on
             # the chunk's largest q only), so the Hermite values are one cached matrix
-            table = _hermite_table(kmax, rule, z[0])
+            # (the nodes of the first row, z = x / sqrt(q), are all it needs)
+            table = _hermite_table(kmax, rule, x[0] / sq[0])
             out = wf @ table.T
             b[sel] = out * out
             continue
+        z = x / sq[:, None]
         out = np.empty((qs.size, kmax + 1))
         out[:, 0] = wf.sum(axis=1)
         _project(wf, z, roots, kmax, out)

@@ -161,7 +161,7 @@ def _check_tails(fn: Callable[..., Array], mean: Array, q: Array, f: Array, tota
 def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequence[float] = (),
                          *, mean: Any = 0.0, rule: QuadratureRule = DEFAULT_RULE,
                          check_tails: bool = True, what: str = "the integrand",
-                         with_z: bool = False) -> Array:
+                         with_z: bool = False, fresh: bool = False) -> Array:
     """E[fn(mean + sqrt(q) z)] for z ~ N(0, 1), vectorised over ``q`` and ``mean``.
 
     Parameters
@@ -181,6 +181,10 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
     with_z : bool
         Call ``fn(x, z)`` with the standard-normal node z as well (for Stein-type
         weights such as ``z^2 - 1``); requires q > 0.
+    fresh : bool
+        ``fn`` returns a new array at every call (``phi(x) ** 2``, not ``phi`` itself),
+        so without ``check_tails`` its values may be overwritten by the weighted ones
+        (the same numbers, one large array fewer).
 
     Returns
     -------
@@ -213,7 +217,8 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
         for b in np.unique(bins):
             sel = bins == b
             out[sel] = gaussian_expectation(fn, q_b[sel], breakpoints, mean=mean_b[sel], rule=rule,
-                                            check_tails=check_tails, what=what, with_z=with_z)
+                                            check_tails=check_tails, what=what, with_z=with_z,
+                                            fresh=fresh)
         return out
     x, w = rule_nodes(mean, q, breakpoints, rule)
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
@@ -226,7 +231,7 @@ def gaussian_expectation(fn: Callable[[Array], Array], q: Any, breakpoints: Sequ
     if not _all_positive(w):
         f = np.where(w > 0, f, 0.0)
     _check_finite(f, x, what)
-    wf = w * f
+    wf = np.multiply(w, f, out=f) if fresh and not check_tails else w * f
     out = np.sum(wf, axis=-1)
     if check_tails:  # (wf is no longer needed: its absolute values in place)
         _check_tails(fn, mean_b, q_b, f, np.sum(np.abs(wf, out=wf), axis=-1), rule, what,
