@@ -181,6 +181,15 @@ def dropout_outputs(n: int, times: int = 8) -> dict:
         {"norm": "rms"}, dense(1.0, 0.0, n), {"dropout": {"keep_rate": 0.6}}, dense(1.0, 0.0, n)]}
 
 
+def norm_then_activation(n: int, times: int = 6) -> dict:
+    """Dense, layer norm, GELU (an MLP's block), then residual branches dense, RMS norm, tanh."""
+    return {"input_width": n, "blocks": [dense(1.0, 0.0, n), {"repeat": {"times": times, "blocks": [
+        {"norm": {"kind": "layer", "gain": 1.3}}, {"activation": "gelu"}, dense(1.7, 0.05, n)]}},
+        {"repeat": {"times": times, "blocks": [{"residual": {"branch": [
+            dense(1.0, 0.0, 2 * n), {"norm": "rms"}, {"activation": "tanh"}, dense(1.2, 0.0, n)],
+            "weight": 0.8}}]}}]}
+
+
 def relu_on_input(n: int, times: int = 10) -> dict:
     """Residual blocks straight on the input (the input is the first position)."""
     return {"input_width": n, "blocks": [{"repeat": {"times": times, "blocks": [
@@ -207,7 +216,8 @@ def _check(desc: dict, n: int, reps: int, seed: int) -> dict:
 
 
 @pytest.mark.parametrize("make", [residual_tanh, pre_norm, post_norm, with_eps, relu_on_input,
-                                  dropout_mlp, dropout_branches, dropout_outputs])
+                                  dropout_mlp, dropout_branches, dropout_outputs,
+                                  norm_then_activation])
 @pytest.mark.parametrize("n", [32, 128])
 def test_residual_and_norm_networks_against_seeded_networks(make, n):
     _check(make(n), n, 400, seed=n + 7)
@@ -261,6 +271,12 @@ def test_blocks_still_refused_name_their_path_and_reason():
         ([*stream, {"residual": {"branch": branch}}, {"activation": "tanh"}], "/blocks/2",
          "after a residual sum or a norm"),
         ([*stream, {"activation": "relu"}, {"norm": "layer"}], "/blocks/2", "centred variance"),
+        ([*stream, {"norm": {"kind": "rms", "eps": 0.1}}, {"activation": "relu"}], "/blocks/2",
+         "after a residual sum or a norm"),
+        ([*stream, {"norm": "rms"}, {"activation": "relu"}, {"dropout": {"keep_rate": 0.9}}],
+         "/blocks/3", "follows a norm and an activation"),
+        ([*stream, {"norm": "rms"}, {"activation": "relu"}, {"residual": {"branch": branch}}],
+         "/blocks/3", "without a dense block between"),
         ([*stream, {"residual": {"branch": [{"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": n,
                                                        "weights": "orthogonal"}}]}}],
          "/blocks/1/residual/branch/0", "orthogonal"),

@@ -46,6 +46,19 @@ noise of order 1/n^2 only (measured at width 16 and 64, 20000 seeded networks: -
 predicted, -0.0152 +- 0.0018 and -0.0149 +- 0.0018 measured at 64 for layer and RMS norms). So the norm removes the spread of q but passes the spread of the stream's Q
 on to the gradient, as ``-ln Q``.
 
+Norm then an activation (a layer or RMS norm with eps = 0 on a dense block's Gaussian output,
+then phi, then a dense block): the normalised units are y = g sqrt(n) z / |z| (centred first
+for the layer norm), whose direction is independent of |z| and of the mean. Expanding
+``mean_j phi(y_j)^2`` in the sample's second moment Q and mean around the Gaussian u = g z
+(Gaussian integration by parts twice, as finite_width's Stein identities) gives, per unit,
+``E = E[F] - E[F He4(z)] / (4 n)`` and ``n Var = Var F - E[F He2]^2 / 2 - [layer] E[F He1]^2``
+with F = phi(u)^2 (the norm removes the He1 and He2 directions); the same for G = phi'(u)^2
+in the backward ratio (relative noise ``3 E[G^2] / E[G]^2 - 1`` minus the same projections),
+and their covariance the product of the projections. The new layer's variance is independent of
+the past; the norm's backward projection on y takes ``E[phi'^2 z^2] / (E[phi'^2] n)`` instead
+of 1 / n (its incoming gradient ``phi' W^T g`` is not isotropic). (Ours; checked against
+seeded networks in tests/test_network_finite_width_blocks.py.)
+
 Dropout (inverted, keep rate p) between an activation and the next dense block (or the
 residual sum or RMS norm the activation feeds): each unit's terms carry the mask m / p^2 with
 E[m] = p and m^2 = m, so ``V = sigma_w2 E[phi^2] / p + sigma_b2`` (Schoenholz et al. 2017's
@@ -71,6 +84,7 @@ in vector form).
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass, field
 from typing import Any
@@ -80,7 +94,7 @@ import numpy as np
 from ..activations.base import Activation
 from ..errors import ComputationError
 from ..meanfield.maps import chi_1, variance_map
-from ..numerics.quadrature import QuadratureRule
+from ..numerics.quadrature import QuadratureRule, gaussian_expectation
 from .finite_width import _coefficients
 
 __all__ = ["BRANCH", "GRADIENT", "SAVED", "WORK", "Step", "Tape", "TapeLaws", "run_tape"]
@@ -255,9 +269,72 @@ class Tape:
         self.steps.append(Step(mean, jac, noise, n,
                                [(GRADIENT, BRANCH, BRANCH, theta * (1.0 - theta))], shift))
 
+    def normed_chain(self, act: Activation, sw: float, sb: float, n: int, target: int,
+                     gain: float, layer: bool, norm: Step, rule: QuadratureRule) -> None:
+        """A norm (eps = 0) of Gaussian units, phi, a dense block: module docstring, "Norm then
+        an activation". ``norm`` is the norm's step, whose gradient shift this corrects."""
+        moments = _sphere_moments(act, gain * gain, layer, rule)
+        mean = self.mean.copy()
+        mean[WORK] = sw * moments["F"] + sb
+        chi = sw * moments["G"]
+        if not (math.isfinite(mean[WORK]) and 1e-200 <= mean[WORK] <= 1e12 and chi > 0):
+            raise ComputationError(f"the mean-field variance or chi_1 after a norm leaves "
+                                   f"[1e-200, 1e12] ({mean[WORK]:.3g}, {chi:.3g})")
+        mean[target] += math.log(chi)
+        jac = np.eye(_DIM)
+        jac[WORK, WORK] = 0.0  # the normalised direction is independent of the past
+        noise = np.zeros((_DIM, _DIM))
+        noise[WORK, WORK] = sw * sw * moments["v"]
+        noise[target, target] = moments["kg"]
+        noise[WORK, target] = noise[target, WORK] = sw * moments["c"]
+        shift = np.zeros(_DIM)
+        shift[WORK] = sw * moments["dF"]
+        shift[target] = moments["dG"] - 0.5 * moments["kg"]
+        self.steps.append(Step(mean, jac, noise, n, [], shift))
+        norm.shift[target] += 1.0 - moments["proj"]  # E[(v . y)^2] / |v|^2 replaces 1 / n
+
     def record(self, n: int, sampled: bool) -> None:
         """The stream after the last step is a position (``sampled``: q = s chi^2_n / n)."""
         self.records.append((len(self.steps), n, sampled))
+
+
+def _sphere_moments(act: Activation, q: float, layer: bool, rule: QuadratureRule
+                    ) -> dict[str, float]:
+    """Moments of a normalised Gaussian vector's units u = g z (module docstring).
+
+    F = phi(u)^2, G = phi'(u)^2; projections remove the Hermite components He0, He2 / sqrt(2)
+    and, for the layer norm, He1 (the normalisation fixes the sample's second moment and mean).
+    """
+    if act.has_jumps:
+        raise ComputationError(f"{act.label} jumps: the gradient law is undefined")
+    scale = getattr(act, "scale", 1.0)
+    if rule.scale != scale:
+        rule = dataclasses.replace(rule, scale=scale)
+    phi, dphi, bps = act.value, act.derivative, act.breakpoints
+    qa = np.array([q])
+
+    def e(fn: Any) -> float:
+        return float(gaussian_expectation(fn, qa, bps, rule=rule, with_z=True)[0])
+
+    ef, eg = e(lambda x, z: phi(x) ** 2), e(lambda x, z: dphi(x) ** 2)
+    f1 = e(lambda x, z: phi(x) ** 2 * z) if layer else 0.0
+    g1 = e(lambda x, z: dphi(x) ** 2 * z) if layer else 0.0
+    f2 = e(lambda x, z: phi(x) ** 2 * (z * z - 1.0))
+    g2 = e(lambda x, z: dphi(x) ** 2 * (z * z - 1.0))
+    he4 = lambda z: (z * z - 6.0) * z * z + 3.0
+    f4, g4 = e(lambda x, z: phi(x) ** 2 * he4(z)), e(lambda x, z: dphi(x) ** 2 * he4(z))
+    ff, gg = e(lambda x, z: phi(x) ** 4), e(lambda x, z: dphi(x) ** 4)
+    fg = e(lambda x, z: (phi(x) * dphi(x)) ** 2)
+    gz2 = e(lambda x, z: dphi(x) ** 2 * z * z)
+    if eg <= 0:
+        raise ComputationError(f"E[{act.label}'(x)^2] = 0 after a norm: no gradient below it")
+    return {
+        "F": ef, "G": eg,
+        "v": max(ff - ef * ef - 0.5 * f2 * f2 - f1 * f1, 0.0),
+        "kg": max(3.0 * gg / (eg * eg) - 1.0 - 0.5 * (g2 / eg) ** 2 - (g1 / eg) ** 2, 0.0),
+        "c": fg / eg - ef - 0.5 * f2 * g2 / eg - f1 * g1 / eg,
+        "dF": -0.25 * f4, "dG": -0.25 * g4 / eg, "proj": gz2 / eg,
+    }
 
 
 def _dropped(c: dict[str, float], sw: float, sb: float, p: float) -> dict[str, float]:

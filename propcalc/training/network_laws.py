@@ -5,7 +5,8 @@ walks the described blocks, writes the transitions on a tape, and reads the resu
 form of :class:`~propcalc.training.finite_width.FiniteWidth`.
 
 Covered, every dense block giving its ``width`` and Gaussian weights: dense blocks after the
-input, an activation, a residual sum or a norm; an activation after a dense block; inverted
+input, an activation, a residual sum or a norm; an activation after a dense block, or after a
+layer or RMS norm (eps = 0) of a dense block's output when a dense block follows; inverted
 dropout after an activation or a dense block (at the end of a branch too); layer and RMS norms
 (gain, eps) after a dense block, a residual sum or a norm (an RMS norm also after an
 activation); residual blocks ``shortcut * x + weight * branch(x)`` whose branch is a chain of
@@ -19,8 +20,9 @@ not one input's), dropout after a residual sum or a norm (not derived), an activ
 dropout on a dense output, convolution, pooling and attention (the units of one position
 are not the whole layer), a branch that ends in an activation (its output has a mean and is
 not independent of the stream's direction), residual blocks inside a branch, an activation
-after a residual sum or a norm (the stream's units are not Gaussian given its second moment:
-the next layer depends on more than q), a layer norm right after an activation (the centred
+after a residual sum or a norm other than the above (the stream's units are not Gaussian given
+its second moment: the next layer depends on more than q), dropout, a residual sum or a norm
+right after a norm and an activation, a layer norm right after an activation (the centred
 variance of a post-activation stream is another law), two activations or two dense blocks in
 a row, orthogonal weights, dense blocks without a width.
 """
@@ -103,6 +105,8 @@ class _Walk:
         self.act: Activation | None = None
         self.keep = 1.0  # dropout pending after the activation
         self.linear = activation("linear")  # dropout on a dense output: phi the identity
+        self.normed: tuple[bool, float, Any] | None = None  # the norm step just written
+        self.after_norm: tuple[bool, float, Any] | None = None  # phi after such a norm
         self.n = n
         self.rule = rule
         self.first: Dense | None = None
@@ -114,6 +118,10 @@ class _Walk:
 
     def measured(self, where: str, target: int, centred: bool = False) -> None:
         """Bring the stream to its measured second moment."""
+        if self.after_norm is not None:
+            raise FiniteWidthUnsupportedError(
+                f"the block at {where} takes a norm's activated output without a dense block "
+                "between: not derived (norm, activation, dense is covered)")
         if self.kind == "gauss":
             self.tape.sample(self.n)
         elif self.kind == "phi":
@@ -129,8 +137,13 @@ class _Walk:
     def blocks(self, blocks: tuple[Block, ...], path: str, branch: dict[str, Any] | None) -> None:
         target = BRANCH if branch is not None else GRADIENT
         for where, b in _elementary(blocks, path, self.budget):
+            normed, self.normed = self.normed, None
             if isinstance(b, Dense):
                 self.dense(b, where, target, branch)
+            elif isinstance(b, ActivationBlock) and normed is not None:
+                # a norm (eps = 0) of Gaussian units, then phi (block_laws, "Norm then ...")
+                self.kind, self.act, self.after_norm = "phi", b.activation, normed
+                self.acts[b.activation.label] = None
             elif isinstance(b, ActivationBlock):
                 if self.kind != "gauss":
                     why = ("an activation after dropout on a dense block's output (the masked "
@@ -147,13 +160,20 @@ class _Walk:
                 if b.kind == "batch":
                     raise FiniteWidthUnsupportedError(f"the norm block at {where}: {_WHY['batch']}")
                 self.need_width(where)
+                gaussian = self.kind == "gauss"
                 self.measured(where, target, centred=b.kind == "layer")
                 self.tape.norm(b.kind == "layer", b.gain, b.eps, self.n, target)
+                if gaussian and b.eps == 0.0:
+                    self.normed = (b.kind == "layer", b.gain, self.tape.steps[-1])
                 if branch is None:
                     self.tape.record(self.n, False)
             elif isinstance(b, Residual):
                 self.residual(b, where, branch)
             elif isinstance(b, Dropout):
+                if self.after_norm is not None:
+                    raise FiniteWidthUnsupportedError(
+                        f"the dropout block at {where} follows a norm and an activation: not "
+                        "derived")
                 if self.kind == "gauss":  # phi the identity (block_laws, "Dropout")
                     self.kind, self.act = "phi", self.linear
                 elif self.kind != "phi":
@@ -186,7 +206,12 @@ class _Walk:
                 self.tape.records.clear()
         if self.tape.steps or self.kind != "measured":
             self.fan_ins.append(self.n)
-        if self.kind == "phi":
+        if self.after_norm is not None:
+            layer, gain, norm = self.after_norm
+            self.tape.normed_chain(self.act, b.sigma_w2, b.sigma_b2, self.n, target, gain, layer,
+                                   norm, self.rule)
+            self.after_norm = None
+        elif self.kind == "phi":
             self.tape.chain(self.act, b.sigma_w2, b.sigma_b2, self.n, target, self.rule,
                             keep=self.keep)
             self.keep = 1.0
