@@ -124,6 +124,7 @@ class Tape:
     start: np.ndarray
     steps: list[Step] = field(default_factory=list)
     records: list[tuple[int, int, bool]] = field(default_factory=list)  # (step count, width, sampled)
+    sphere: dict[tuple[Any, ...], dict[str, float]] = field(default_factory=dict)
 
     @property
     def mean(self) -> np.ndarray:
@@ -273,7 +274,10 @@ class Tape:
                      gain: float, layer: bool, norm: Step, rule: QuadratureRule) -> None:
         """A norm (eps = 0) of Gaussian units, phi, a dense block: module docstring, "Norm then
         an activation". ``norm`` is the norm's step, whose gradient shift this corrects."""
-        moments = _sphere_moments(act, gain * gain, layer, rule)
+        key = (id(act), gain, layer)
+        if key not in self.sphere:  # repeated blocks share their moments
+            self.sphere[key] = _sphere_moments(act, gain * gain, layer, rule)
+        moments = self.sphere[key]
         mean = self.mean.copy()
         mean[WORK] = sw * moments["F"] + sb
         chi = sw * moments["G"]
