@@ -290,6 +290,16 @@ def test_blocks_still_refused_name_their_path_and_reason():
         assert path in str(info.value)
 
 
+def test_a_residual_block_that_zeroes_the_stream_is_a_computation_error():
+    n = 16
+    desc = {"input_width": n, "blocks": [dense(1.0, 0.0, n), {"residual": {
+        "branch": [dense(1.0, 0.0, n)], "weight": 0.0, "shortcut": 0.0}}, dense(1.0, 0.0, n)]}
+    with pytest.raises(propcalc.PropcalcError, match="sets the stream to 0"):
+        network_finite_width(desc)
+    r = network_verdict(propcalc.network_propagation(desc)).reason("finite-width spread")
+    assert r.passes is None and "sets the stream to 0" in r.detail
+
+
 def test_the_network_verdict_has_the_finite_width_reasons_of_residual_networks():
     desc = pre_norm(64, times=24)
     fw = network_finite_width(desc)

@@ -246,6 +246,9 @@ class Tape:
         mean, jac = self.identity()
         ks, kl, kr = float(mean[SAVED]), float(mean[WORK]), float(mean[BRANCH])
         a2, w2, p = shortcut * shortcut, weight * weight, keep
+        if a2 == 0.0 and w2 == 0.0:
+            raise ComputationError("a residual block with shortcut 0 and weight 0 sets the stream "
+                                   "to 0: no finite-width expansion around it")
         noise = np.zeros((_DIM, _DIM))
         mean[WORK] = a2 * ks + w2 * kl / p
         jac[WORK] = 0.0
