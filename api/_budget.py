@@ -60,7 +60,8 @@ depth-scales image          the image + 150 (the critical sigma_w2) + the
                             n_points + 28 samples + 200 with a point
 network propagation        200 + 1.5 per unit of the engine's Network.cost (one
                             per activation block met, three where positions mix,
-                            0.02 per other block: an upper bound), twice per unit
+                            30 + 0.012 tokens per attention block whose logits
+                            spread, 0.02 per other block: an upper bound), twice per unit
                             with typed formulas; plus 50 per distinct formula
                             (read first); plus, where the Gaussian recursion
                             stops holding and the simulation is asked for,

@@ -334,7 +334,7 @@ def test_loss_gives_the_verdict_its_learning_rate_ceiling(tmp_path):
 def test_a_network_the_kernel_does_not_cover_says_why(tmp_path):
     desc = {"input_width": 16, "blocks": [
         {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 32}}, {"activation": "tanh"},
-        {"attention": {"tokens": 4, "query_key_scale": 1.0}},
+        {"attention": {"tokens": 4, "query_key_scale": 20.0}},  # beyond the checked spread
         {"pooling": {"kind": "global_average", "positions": 4}},
         {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 3}}]}
     code, out, err = run("network", write(tmp_path, desc), "--json", "--no-plan", "--loss", "mse",

@@ -15,7 +15,7 @@ NETWORKS = pathlib.Path(__file__).resolve().parents[1] / "propcalc" / "networks"
 
 #: a module may import only the modules of a lower rank
 RANK = {"fields": 0, "blocks": 0, "description": 1, "kernels": 1, "rules": 2, "mixing": 3, "walk": 4,
-        "sim_blocks": 2, "sim_grid": 1, "simulate": 3, "spatial": 2, "summary": 5, "propagate": 6,
+        "sim_blocks": 2, "softmax_moments": 1, "sim_grid": 1, "simulate": 3, "spatial": 2, "summary": 5, "propagate": 6,
         "targets": 7, "check": 7}
 #: the engine's lower layers (errors/results/domains -> numerics -> activations -> meanfield)
 BELOW = {"errors", "results", "domains", "caches", "jsonable", "numerics", "activations",

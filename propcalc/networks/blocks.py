@@ -337,7 +337,10 @@ class Network:
         network mixes positions: three correlations go through each activation), plus
         0.02 per other elementary block (arithmetic only). Copies after a bit-exact fixed
         point cost nothing, and repeated variances reuse cached moments, so this is an
-        upper bound; a unit is about 0.05-2 ms (one point of a correlation map).
+        upper bound; a unit is about 0.05-2 ms (one point of a correlation map). Attention
+        whose logits spread adds ``30 + 0.012 tokens``: four Monte Carlo moments of its
+        softmax weights (:mod:`propcalc.networks.softmax_moments`, 5-10 ms each up to 2048
+        tokens, about 0.003 ms per token beyond).
         """
         per_act = 3.0 if self.uses_positions() else 1.0
 
@@ -350,6 +353,8 @@ class Network:
                     total += 0.02 + walk(b.branch)
                 elif isinstance(b, ActivationBlock):
                     total += per_act
+                elif isinstance(b, Attention) and b.query_key_scale * b.query_key_sigma_w2 > 0:
+                    total += 30.0 + 0.012 * b.tokens
                 else:
                     total += 0.02
             return total

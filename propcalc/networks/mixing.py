@@ -11,9 +11,19 @@ from __future__ import annotations
 import math
 
 from .blocks import Attention, Pooling
-from .rules import GAUSSIAN, GENERAL, UNKNOWN, Step, Stream, passed, unknown, width_ratio
+from .rules import (
+    GAUSSIAN,
+    GENERAL,
+    UNKNOWN,
+    Step,
+    Stream,
+    passed,
+    unknown,
+    width_ratio,
+)
+from .softmax_moments import softmax_pair_moments
 
-__all__ = ["pooling", "attention", "logit_std", "LOGIT_SPREAD_NOTE"]
+__all__ = ["LOGIT_SPREAD_NOTE", "attention", "logit_std", "logit_variance", "pooling"]
 
 
 def _need_positions(stream: Stream, what: str) -> None:
@@ -52,6 +62,14 @@ def pooling(stream: Stream, block: Pooling) -> Step:
     return Step(out, ((n * inv, n * (n - 1.0) * inv), (0.0, n * n * inv)))
 
 
+def logit_variance(stream: Stream, block: Attention) -> float:
+    """Per-key variance of one query's logits around their common shift,
+    ``(query_key_scale query_key_sigma_w2)^2 q (q - kw)`` (derived as :func:`logit_std`)."""
+    assert stream.kw is not None
+    tau = block.query_key_scale * block.query_key_sigma_w2
+    return tau * tau * stream.q * max(stream.q - stream.kw, 0.0)
+
+
 def logit_std(stream: Stream, block: Attention) -> float:
     """Spread of one query's logits over the keys at initialisation.
 
@@ -66,30 +84,40 @@ def logit_std(stream: Stream, block: Attention) -> float:
     return block.query_key_scale * block.query_key_sigma_w2 * math.sqrt(spread)
 
 
-#: Above this logit spread the large-T lognormal approximation of the attention weights is
-#: off by more than a few percent (measured against seeded simulations at T = 16): a note.
+#: Above this logit spread the backward rule's query and key paths (to order tau^2) and the
+#: Gaussian law of the output with few heads are approximations (the forward moments are
+#: computed for Gaussian logits at any spread): a note.
 LOGIT_SPREAD_NOTE = 0.7
 
 
 def attention(stream: Stream, block: Attention) -> Step:
-    """Self-attention at initialisation, to second order in the logit spread.
+    """Self-attention at initialisation, the logits Gaussian (infinite width).
 
     With uniform weights (``query_key_scale = 0``) every output token is
     ``W_O W_V xbar + b``, xbar the mean of the T input tokens: the output is rank
     one (Noci et al. 2022, section 3), ``q' = kw' = S (q + (T - 1) kw) / T + sigma_b2``,
     ``k' = kb' = S (k + (T - 1) kb) / T + sigma_b2`` with ``S = sigma_v sigma_o``.
 
-    Logits of spread s (:func:`logit_std`) are Gaussian at infinite width; for
-    many tokens the softmax normaliser concentrates, so
-    ``E[A_ts A_t's'] ~ exp(cov(l_ts, l_t's')) / T^2`` (a lognormal moment). Then
-    ``E[out_t out_t'] = S (kw + (q - kw) sum_s E[A_ts A_t's])`` gives
-    ``q' = S (kw + (q - kw) e^{s^2} / T)``, ``kw' = S (kw + (q - kw) e^{r_w s^2} / T)``,
-    ``k' = S (kb + (k - kb) e^{r_k s^2} / T)``, ``kb' = S (kb + (k - kb) e^{r_b s^2} / T)``
-    (plus sigma_b2), with ``r_w = kw / q``, ``r_k = k (k - kb) / (q (q - kw))``,
-    ``r_b = kb (k - kb) / (q (q - kw))`` (derived here; exact at s = 0).
+    Logits of spread s (:func:`logit_std`) are Gaussian at infinite width: per key, around a
+    shift common to the keys (which the softmax ignores), of variance
+    ``v = (tau sigma_qk)^2 q (q - kw)``, and two rows (queries t, t' of inputs a, b) are
+    correlated key by key with ``rho = K(a t, b t') K1(a, b) / (q (q - kw))``, K1 the keys'
+    part that differs between keys (q - kw for one input, k - kb for two). The values are
+    independent of the logits, so ``E[out_t out_t'] = S (K0 + K1 m1(rho))`` with K0 the keys'
+    common part and ``m1 = E[sum_s A_ts A_t's]``
+    (:func:`propcalc.networks.softmax_moments.softmax_pair_moments`, seeded Monte Carlo over the
+    logits; exact at s = 0). That gives ``q' = S (kw + (q - kw) m1(1))``,
+    ``kw' = S (kw + (q - kw) m1(r_w))``, ``k' = S (kb + (k - kb) m1(r_k))``,
+    ``kb' = S (kb + (k - kb) m1(r_b))`` (plus sigma_b2), with ``r_w = kw / q``,
+    ``r_k = k (k - kb) / (q (q - kw))``, ``r_b = kb (k - kb) / (q (q - kw))`` (derived here).
+    For many tokens ``m1(rho) -> exp(rho v) / T`` (a lognormal moment, the rule's earlier
+    form, which overshot by 60% at T = 4, s = 1). The weights are shared by the units of a
+    head, so with few heads the output is a Gaussian scale mixture, not a Gaussian (Hron et al.
+    2020, "Infinite attention", take the number of heads to infinity for that reason): the
+    moments are exact, the law downstream an approximation.
 
     Backward (output gradient moments G, Gw): the value path passes
-    ``S (e^{s^2} G + (T - 1) e^{r_w s^2} Gw) / T``; the query and key paths add
+    ``S (T m1(1) G + (T - 1) T m1(r_w) Gw) / T``; the query and key paths add
     ``S tau^2 sigma_qk^2 (q - kw) ((2 q - kw) G + (T - 1) kw Gw) / T`` (tau the
     query_key_scale; derived here to order tau^2); the cross-position moment
     is that of uniform attention, ``S (G + (T - 1) Gw) / T``.
@@ -102,27 +130,30 @@ def attention(stream: Stream, block: Attention) -> Step:
     q, k, kw, kb = stream.q, stream.k, stream.kw, stream.kb
     big = block.value_sigma_w2 * block.output_sigma_w2
     spread = logit_std(stream, block)
-    s2 = spread * spread
     gap = q - kw
     if gap > 0.0 and q > 0.0:
         r_w, r_k, r_b = kw / q, k * (k - kb) / (q * gap), kb * (k - kb) / (q * gap)
     else:
         r_w = r_k = r_b = 0.0
+    v = logit_variance(stream, block)
+    m_q, m_w, m_k, m_b = (softmax_pair_moments(t, v, r).m1 for r in (1.0, r_w, r_k, r_b))
     sb = block.sigma_b2
-    q_new = big * (kw + gap * math.exp(s2) / t) + sb
-    kw_new = big * (kw + gap * math.exp(r_w * s2) / t) + sb
-    k_new = big * (kb + (k - kb) * math.exp(r_k * s2) / t) + sb
-    kb_new = big * (kb + (k - kb) * math.exp(r_b * s2) / t) + sb
+    q_new = big * (kw + gap * m_q) + sb
+    kw_new = big * (kw + gap * m_w) + sb
+    k_new = big * (kb + (k - kb) * m_k) + sb
+    kb_new = big * (kb + (k - kb) * m_b) + sb
     width = block.width if block.width is not None else stream.width
     out = Stream(q_new, k_new, 0.0, kw_new, kb_new, GAUSSIAN, width=width)
     notes: tuple[str, ...] = ()
     if spread > LOGIT_SPREAD_NOTE:
-        notes = (f"the query-key logits spread by more than {LOGIT_SPREAD_NOTE:g} (standard "
-                 "deviation over keys at initialisation, logit_std): the attention weights are "
-                 "far from uniform and the second-order prediction is an approximation; lower "
-                 "query_key_scale or query_key_sigma_w2, or check with propcalc.simulate",)
+        notes = ((f"the query-key logits spread by more than {LOGIT_SPREAD_NOTE:g} "
+                  "(standard deviation over keys at initialisation, logit_std): the attention "
+                  "weights are far from uniform; the moments are those of Gaussian logits, the "
+                  "gradient's query and key part is to second order in the spread and the "
+                  "output of few heads is not Gaussian downstream; lower query_key_scale or "
+                  "query_key_sigma_w2, or check with propcalc.simulate"),)
     f = big * width_ratio(stream, width) / t
     tau2 = (block.query_key_scale * block.query_key_sigma_w2) ** 2
-    g_g = f * (math.exp(s2) + tau2 * gap * (2.0 * q - kw))
-    g_w = f * (t - 1) * (math.exp(r_w * s2) + tau2 * gap * kw)
+    g_g = f * (t * m_q + tau2 * gap * (2.0 * q - kw))
+    g_w = f * (t - 1) * (t * m_w + tau2 * gap * kw)
     return Step(out, ((g_g, g_w), (f, f * (t - 1))), notes, {"logit_std": spread})

@@ -65,28 +65,26 @@ Rules (derivations written here, "derived here" where no source states them):
   ``pair' = (pair + (k - 1) between) / k``, ``within`` and ``between`` unchanged (windows that
   do not overlap, the forward rule's assumption); the global average keeps the first two and
   stops tracking positions. Max pooling: the stream's law is unknown (refused);
-* attention, in the uniform-attention limit only (logit spread 0: ``query_key_scale = 0``, or
-  tokens identical within each input): every output token is ``W_O W_V xbar + b`` (Noci et al.
+* attention: in the uniform-attention limit (logit spread 0: ``query_key_scale = 0``, or
+  tokens identical within each input) every output token is ``W_O W_V xbar + b`` (Noci et al.
   2022, section 3), ``xbar`` the mean of the T tokens, so with ``X(a, b) = (k + (T - 1) kb) / T``
   and ``Tbar(a, b) = (pair + (T - 1) between) / T``:
   ``Theta' = d sigma_v X + 1 + sigma_o n_in X + sigma_v sigma_o Tbar`` (the output weights, of
   fan-in d, see ``W_V xbar``; the output bias; the value weights, whose gradient is
-  ``W_O xbar``; the path), the same at every pair of tokens. The query and key weights have
-  zero gradient there: the logits carry the factor query_key_scale, and with identical tokens
-  the softmax's derivative multiplies ``v_s - mean v = 0``. With a logit spread the softmax
-  weights depend on the query and key weights, whose gradients enter the kernel at the same
-  order as the others: refused;
+  ``W_O xbar``; the path), the same at every pair of tokens. With a logit spread the query and
+  key weights enter at the same order: the rule and its derivation are in
+  :mod:`propcalc.training.network_ntk_attention` (it reduces to this one at spread 0);
 * residual ``a x + w F(x)``: ``a^2 Theta + w^2 Theta_F`` entry by entry (the cross terms have a
   fresh centred weight of the branch in them; Yang & Schoenholz 2017 for the forward pass).
 """
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 from ..networks.blocks import Attention, Convolution, Dense, Dropout, Norm, Pooling
 from ..networks.rules import Step, Stream
+from .network_ntk_attention import attention_kernel
 from .ntk import UnsupportedKernelError
 
 __all__ = [
@@ -208,33 +206,12 @@ def pooling(block: Pooling, theta: Kernel, where: str) -> Kernel:
 
 def attention(before: Stream, block: Attention, step: Step, theta: Kernel, where: str
               ) -> Kernel:
-    """Uniform attention (module docstring); a logit spread is refused with the reason."""
-    spread = step.detail.get("logit_std", math.nan)
-    if spread != 0.0:
-        raise UnsupportedKernelError(
-            f"block {where} (attention): the query-key logits spread by {spread:.3g} at "
-            "initialisation; the kernel is computed in the uniform-attention limit only "
-            "(query_key_scale = 0): with a spread, the softmax weights depend on the query and "
-            "key weights, whose gradients enter the kernel at the same order as the value "
-            "path's")
-    n_in = before.width
-    d = block.width if block.width is not None else n_in
-    if n_in is None or d is None:
-        raise UnsupportedKernelError(
-            f"block {where} (attention): the width of its input is not given (set "
-            "input_width and every dense, convolution and attention width): the kernel grows "
-            "with it")
-    assert before.kw is not None and before.kb is not None
+    """Self-attention, uniform or with a logit spread
+    (:mod:`propcalc.training.network_ntk_attention`, where the rule is derived)."""
     assert theta.within is not None and theta.between is not None
-    t = block.tokens
-    sv, so = block.value_sigma_w2, block.output_sigma_w2
-    x_aa = (before.q + (t - 1) * before.kw) / t
-    x_ab = (before.k + (t - 1) * before.kb) / t
-    t_aa = (theta.diag + (t - 1) * theta.within) / t
-    t_ab = (theta.pair + (t - 1) * theta.between) / t
-    aa = d * sv * x_aa + 1.0 + so * n_in * x_aa + sv * so * t_aa
-    ab = d * sv * x_ab + 1.0 + so * n_in * x_ab + sv * so * t_ab
-    return Kernel(aa, ab, aa, ab)
+    diag, pair, within, between = attention_kernel(
+        before, block, step, (theta.diag, theta.pair, theta.within, theta.between), where)
+    return Kernel(diag, pair, within, between)
 
 
 def residual(theta: Kernel, branch: Kernel, shortcut: float, weight: float) -> Kernel:
