@@ -411,7 +411,7 @@ def test_the_plan_carries_its_learning_rate_at_the_position_correlations(tmp_pat
 
 def test_a_plan_whose_kernel_is_refused_says_why_and_stays(tmp_path):
     desc = json.loads(json.dumps(TOKENS))
-    desc["blocks"][2]["residual"]["branch"][1]["attention"]["query_key_scale"] = 1.0
+    desc["blocks"][2]["residual"]["branch"][1]["attention"]["query_key_scale"] = 30.0  # logit std beyond 2
     path = write(tmp_path, desc)
     args = ("--c0-within", "0.4", "--target", "0.9", "--loss", "mse", "--batch-size", "16")
     code, out, err = run("network", path, "--json", *args)

@@ -7,8 +7,9 @@ query_key_scale values giving logit std 0.5, 1 and 2 (the forward rule's logit_s
 16 tokens; the softmax moments against scipy.integrate at two tokens (where the softmax is a
 logistic function of one Gaussian difference) and the exact uniform values. Band: 4 standard
 errors of the mean over seeds plus 8 / width of the diagonal for the O(1/width) bias ("8" is
-ours, no source: the largest mean deviation measured with 32-48 seeds was 1.9% at width 1024
-and 3.5% at width 256, both within 1.3 standard errors). With few heads the kernel of one
+ours, no source: up to logit std 2 the largest mean deviations measured with 32-48 seeds, 5.7%
+at width 1024 and 3.5% at width 256, were within 1.3 standard errors, so no bias was seen;
+docs/training.md has the table). With few heads the kernel of one
 network stays random at infinite width (the attention weights are shared by the units of a head),
 so the standard errors are 1-5% of the diagonal.
 """

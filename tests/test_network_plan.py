@@ -170,8 +170,8 @@ def conv(sw, width=8):
 
 
 REFUSED = [
-    # attention whose logits spread (query_key_scale 1, distinct tokens)
-    ([dense(1.0, width=32), act("tanh"), attention(1.0), mean_pool(), dense(1.0, width=3)],
+    # attention whose logits spread beyond logit std 2 (query_key_scale 30, distinct tokens)
+    ([dense(1.0, width=32), act("tanh"), attention(30.0), mean_pool(), dense(1.0, width=3)],
      "block /blocks/2 (attention): the query-key logits spread"),
     # max pooling
     ([conv(1.0), act("relu"), {"pooling": {"kind": "max", "window": 2}}, mean_pool(2),

@@ -70,7 +70,7 @@ __all__ = ["MAX_LOGIT_STD", "attention_kernel"]
 
 #: the largest logit spread (logit_std of the forward rule) for which the kernel is computed:
 #: against seeded torch (docs/training.md, tests/test_network_ntk_attention.py) it held within
-#: 1.3 standard errors up to 2 and drifted 10-16% off at 3-4 (width 1024, 32 seeds)
+#: 1.6 standard errors up to 2 and drifted 10-16% off at 3-4 (width 1024, 32 seeds)
 MAX_LOGIT_STD = 2.0
 
 
