@@ -35,6 +35,7 @@ from ..meanfield.edge import (
 from ..meanfield.report import Propagation, propagation
 from ..meanfield.maps import second_moment, variance_map_slope
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
+from ..training.finite_width import ORTHOGONAL_WHY
 from ..training.verdict import trainability
 from ..vocabulary import NEUTRAL_TOLERANCE
 from .layers import DISTRIBUTIONS, Layer, layer_init
@@ -96,9 +97,12 @@ def _with_verdict(plan: InitPlan, act: Activation, plan_layers: Sequence[Layer |
                   rule: QuadratureRule) -> InitPlan:
     """The plan with its full verdict: widths, learning rate and readout when the plan has them."""
     dense = all(layer is not None and layer.kind == "dense" for layer in plan_layers)
-    widths = [layer.fan_out for layer in plan_layers] if dense else None  # type: ignore[union-attr]
+    orthogonal = plan.distribution == "orthogonal"
+    widths = ([layer.fan_out for layer in plan_layers]  # type: ignore[union-attr]
+              if dense and not orthogonal else None)
     missing = ("no widths given (recommend(..., widths=...))" if plan_layers[0] is None
-               else "convolutional layers: units within a channel are not independent")
+               else "convolutional layers: units within a channel are not independent"
+               if not dense else ORTHOGONAL_WHY)
     loss = getattr(plan, "loss", None)
     logit_variance = None
     if loss is not None and plan.q_star is not None:
@@ -107,7 +111,7 @@ def _with_verdict(plan: InitPlan, act: Activation, plan_layers: Sequence[Layer |
                        else plan.propagation.q_input)
         logit_variance = last.sigma_w2 * penultimate + last.sigma_b2
     verdict = trainability(act, plan.propagation, plan.depth, widths=widths,
-                           widths_missing=None if dense else missing,
+                           widths_missing=None if widths is not None else missing,
                            learning_rate=getattr(plan, "learning_rate_details", None),
                            loss=loss, n_classes=getattr(plan, "n_classes", None),
                            logit_variance=logit_variance, rule=rule)

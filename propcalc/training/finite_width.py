@@ -76,6 +76,7 @@ __all__ = [
     "GRADIENT_SPREAD_LIMIT",
     "DRIFT_LIMIT",
     "MAX_LAYERS",
+    "ORTHOGONAL_WHY",
     "LayerFluctuations",
     "FiniteWidth",
     "layer_fluctuations",
@@ -96,6 +97,9 @@ GRADIENT_SPREAD_LIMIT = 2.0
 DRIFT_LIMIT = 0.25
 #: the deepest stack analysed (one coefficient set per layer is kept)
 MAX_LAYERS = 100_000
+#: why orthogonal weights get no finite-width laws: a Haar-orthogonal matrix keeps the norm of
+#: its input exactly, so the per-layer sampling is not the Gaussian one of the chain
+ORTHOGONAL_WHY = "orthogonal weights: the per-layer sampling is not the Gaussian one these laws use"
 #: relative variance Var(s_l) / K_l^2 (or relative drift) beyond which the Taylor expansion of
 #: the maps around K_l is outside its range (ours, no source)
 _EXPANSION_RANGE = 0.25

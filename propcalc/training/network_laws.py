@@ -55,6 +55,7 @@ from .finite_width import (
     DRIFT_LIMIT,
     GRADIENT_SPREAD_LIMIT,
     MAX_LAYERS,
+    ORTHOGONAL_WHY,
     SPREAD_LIMIT,
     FiniteWidth,
     _message,
@@ -76,8 +77,7 @@ _WHY = {
     "convolution": "a convolution: the units of one position are not the whole layer",
     "pooling": "pooling: the units of one position are not the whole layer",
     "attention": "attention mixes positions: the units of one token are not the whole layer",
-    "orthogonal": "orthogonal weights: the per-layer sampling is not the Gaussian one these "
-                  "laws use",
+    "orthogonal": ORTHOGONAL_WHY,
 }
 
 
