@@ -185,6 +185,7 @@ COSTS = {
     "network_plan": 300.0,
     "network_plan_unit": 2.5,
     "network_plan_target_unit": 40.0,
+    "network_plan_readout_unit": 0.3,
     "network_simulation_position": 0.6,
     "network_simulation_element": 5e-7,
     "shape": 400.0,

@@ -202,6 +202,9 @@ def build_network_schemas(limits: Limits, strict: type[Schema],
         momentum = FiniteNumber(validate=Interval(0, 1, high_open=True), load_default=0.0,
                                 metadata=d("with a loss: heavy-ball momentum, the ceiling is "
                                            "2 (1 + momentum) / lambda_max"))
+        scale_output = StrictBoolean(load_default=True, metadata=d(
+            "with a loss and a plan: scale the readout (a dense last block) for the loss; "
+            "false keeps the hidden scale"))
 
         @validates_schema
         def _training(self, data: dict[str, Any], **kwargs: Any) -> None:
@@ -212,8 +215,13 @@ def build_network_schemas(limits: Limits, strict: type[Schema],
                         errors[name] = ["is only read with a loss (give loss)"]
                 if data.get("momentum"):
                     errors["momentum"] = ["is only read with a loss (give loss)"]
+                if data.get("scale_output") is False:
+                    errors["scale_output"] = ["is only read with a loss (give loss)"]
             elif data.get("batch_size") is None:
                 errors["batch_size"] = [f"is required with loss {data['loss']}"]
+            if data.get("scale_output") is False and data.get("plan") is None and (
+                    "scale_output" not in errors):
+                errors["scale_output"] = ["is only read with a plan (plan is null)"]
             if errors:
                 raise ValidationError(errors)
 

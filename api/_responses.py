@@ -13,9 +13,10 @@ from typing import Any
 
 from marshmallow import fields
 
-from propcalc import Phase
+from propcalc import OutputLayerScale, Phase
 
 from ._fields import Choice, ExtNumber, FiniteNumber, JSONInteger, StrictBoolean, StrictString
+from ._result_schemas import use_schema
 from ._schema_base import DISTRIBUTIONS, TARGETS, VARIANCE_STATUSES, StrictSchema, _d, _r
 # the service's own bodies, listed in RESPONSE_SCHEMAS with the rest
 from ._service_schemas import (HealthSchema, LimitRefSchema, LimitsInfoSchema,  # noqa: F401
@@ -414,6 +415,10 @@ class OutputLayerScaleSchema(StrictSchema):
     max_probability_at_scale = _r(fields.Nested(MaxProbabilitySchema))
     current = _r(fields.Nested(InitialLossSchema, allow_none=True))
     notes = notes_field()
+
+
+# the network plan's readout (a derived schema) nests this one (one name in the document)
+use_schema(OutputLayerScale, OutputLayerScaleSchema)
 
 class LearningRateCeilingSchema(StrictSchema):
     """The top curvature of the loss at initialisation and the learning rates it allows."""

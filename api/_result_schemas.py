@@ -39,7 +39,7 @@ from marshmallow import Schema, fields
 from ._fields import Choice, ExtNumber, JSONInteger, StrictBoolean, StrictString
 from ._schema_base import StrictSchema
 
-__all__ = ["result_schema"]
+__all__ = ["result_schema", "use_schema"]
 
 _SCHEMAS: dict[type, type[Schema]] = {}
 
@@ -110,6 +110,13 @@ def _field(tp: Any, allow_none: bool = False, description: str = "") -> fields.F
         inner.required = False
         return fields.Dict(keys=StrictString(), values=inner, **kw)
     return _AnyValue(**{**kw, "allow_none": True})
+
+
+def use_schema(cls: type, schema: type[Schema]) -> None:
+    """Use a hand-written response schema for ``cls`` where a derived schema would nest it
+    (one schema per name in the OpenAPI document; the field check covers the hand-written one).
+    """
+    _SCHEMAS[cls] = schema
 
 
 def result_schema(cls: type) -> type[Schema]:

@@ -426,3 +426,33 @@ def test_a_plan_whose_kernel_is_refused_says_why_and_stays(tmp_path):
     assert "not computed (note below)" in out
     assert "note: learning rate not computed: the tangent kernel is not computed" in out
     assert "residual branch weight" in out
+
+
+READOUT = {"input_width": 16, "blocks": [
+    {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 32}}, {"activation": "tanh"},
+    {"dense": {"sigma_w2": 1.0, "sigma_b2": 0.0, "width": 4}}]}
+
+
+def test_the_plan_shows_its_readout_scaled_for_the_loss(tmp_path):
+    # the reference is the Python API, whose readout is checked by seeded torch sampling and
+    # Poole et al. 2016, eq. 3 (tests/test_network_plan_readout.py)
+    path = write(tmp_path, READOUT)
+    code, out, err = run("network", path, "--json", "--loss", "cross_entropy",
+                         "--batch-size", "8")
+    assert code == 0, err
+    ref = propcalc.network_plan(READOUT, loss="cross_entropy", batch_size=8)
+    plan = strict_json(out)["plan"]
+    assert plan["output_layer"] == ref.output_layer
+    assert plan["blocks"][-1]["sigma_w2"] == pytest.approx(ref.blocks[-1].sigma_w2, rel=1e-12)
+    code, out, err = run("network", path, "--loss", "mse", "--batch-size", "8")
+    assert code == 0, err
+    assert "planned: output layer" in out and "scaled for MSE: sigma_w2 = " in out
+    code, out, err = run("network", path, "--loss", "mse", "--batch-size", "8",
+                         "--no-scale-output")
+    assert code == 0, err
+    assert "as the hidden layers (scale_output=False)" in out
+    code, out, err = run("network", path, "--no-scale-output")
+    assert code == 2 and "--no-scale-output only matter with a loss" in err
+    code, out, err = run("network", path, "--loss", "mse", "--batch-size", "8", "--no-plan",
+                         "--no-scale-output")
+    assert code == 2 and "--no-scale-output only shapes the plan" in err

@@ -15,7 +15,8 @@ import pytest
 INIT = pathlib.Path(__file__).resolve().parents[1] / "propcalc" / "init"
 
 #: a module may import only the modules of a lower rank
-RANK = {"layers": 0, "draw": 1, "plan": 2, "training_plan": 2, "gains": 3, "planner": 3, "recommend": 4,
+RANK = {"layers": 0, "draw": 1, "plan": 2, "training_plan": 2, "gains": 3, "planner": 3, "network_readout_plan": 3,
+        "recommend": 4,
         "torch_adapter": 4, "network_plan": 4, "torch_ops": 4, "torch_links": 5, "torch_walk": 6,
         "torch_attention": 7, "torch_dispatch": 8, "torch_reader": 9, "torch_measure": 10,
         "torch_network": 10}

@@ -55,6 +55,8 @@ from ..results import OMIT, Result
 from ..training.learning_rate import LearningRateCeiling
 from ..training.network_ntk import network_learning_rate_ceiling
 from ..training.ntk import UnsupportedKernelError
+from ..variants.output_layer import OutputLayerScale
+from .network_readout_plan import plan_readout
 from .plan import InitPlan
 from .planner import recommend
 from .training_plan import refuse_without_loss
@@ -127,6 +129,14 @@ class NetworkPlan(Result):
         planned stands.
     learning_rate_details : LearningRateCeiling or None
         The curvature behind them (Python only; the notes say the numbers).
+    output_layer : str or None
+        With a loss: how the readout (the last block, when it is a dense block) is planned, as
+        the plain plan's ``output_layer`` says it ("scaled for cross-entropy: ...", "scaled for
+        MSE: ...", "as the hidden layers (scale_output=False)"), or "not scaled: " and why
+        (the last block is not a dense readout...). None without a loss.
+    output_layer_scale : OutputLayerScale or None
+        The cross-entropy analysis of the readout (expected initial loss, largest class
+        probability, what the hidden scale gives), as in the plain plan.
     """
 
     blocks: tuple[BlockInit, ...]
@@ -142,6 +152,8 @@ class NetworkPlan(Result):
     learning_rate_note: str | None = None
     learning_rate_details: LearningRateCeiling | None = field(default=None, repr=False,
                                                              metadata=OMIT)
+    output_layer: str | None = None
+    output_layer_scale: OutputLayerScale | None = None
 
 
 class _Planner:
@@ -317,7 +329,7 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
                  loss: str | None = None, n_classes: int | None = None,
                  batch_size: int | None = None, momentum: float = 0.0,
                  input_correlation: float | None = None, c0_within: float = 0.0,
-                 c0_between: float = 0.0) -> NetworkPlan:
+                 c0_between: float = 0.0, scale_output: bool = True) -> NetworkPlan:
     """Plan the initialisation of every weight block of a network (and its residual weight).
 
     Parameters
@@ -342,18 +354,24 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
     q_star : float, optional
         Preferred variance fixed point on the edge of chaos (as for recommend).
     loss : str, optional
-        "cross_entropy" or "mse": the plan then carries the learning-rate ceiling of the
-        planned network (:func:`propcalc.training.network_learning_rate_ceiling`), or, where
-        its tangent kernel is not computed, ``learning_rate_note`` saying why by path (the
-        plan itself is still made). The last layer is not rescaled here (unlike recommend).
+        "cross_entropy" or "mse": the plan then scales the readout for the loss (unless
+        ``scale_output`` is False) when the last block is a dense block, with the plain plan's
+        rule (:mod:`propcalc.init.network_readout_plan`; ``output_layer`` says how, or why
+        not), and carries the learning-rate ceiling of the planned network, readout included
+        (:func:`propcalc.training.network_learning_rate_ceiling`), or, where its tangent kernel
+        is not computed, ``learning_rate_note`` saying why by path (the plan itself is still
+        made). With ``target`` the residual weight is searched with the readout at the hidden
+        scale, then the readout is scaled.
     n_classes : int, optional
-        Must equal the output width when given.
+        Must equal the output width when given (default: the readout's width).
     batch_size : int, optional
         Required with a loss.
     momentum : float
         Heavy-ball momentum in [0, 1).
     input_correlation : float, optional
         The inputs' pairwise correlation for the batch kernel (default c0).
+    scale_output : bool
+        With a loss, scale the readout for it (default True); False keeps the hidden scale.
 
     Returns
     -------
@@ -387,13 +405,26 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
             notes.append("the residual weights are kept as described")
     planned, inits = _planned(net, q0, c0, pos, distribution, convolution, q_star)
     result = network_propagation(planned, q0, c0, simulate=False, **pos)
-    ceiling, why = None, None
+    ceiling, why, readout = None, None, None
     if loss is None:
         refuse_without_loss(momentum, n_classes=n_classes, batch_size=batch_size,
                             input_correlation=input_correlation)
+        if scale_output is not True:
+            raise InvalidParameterError("scale_output", "True when no loss is given (give loss=)",
+                                        scale_output)
     else:
         if batch_size is None:
             raise InvalidParameterError("batch_size", "given when a loss is given", None)
+        if not isinstance(scale_output, bool):
+            raise InvalidParameterError("scale_output", "True or False", scale_output)
+        # the readout first: the ceiling is that of the network with its planned readout
+        readout = plan_readout(net, planned, result, inits, loss, n_classes,
+                               scale_output=scale_output)
+        notes.append(f"output layer: {readout.description}")
+        notes.extend(readout.notes)
+        if readout.changed:
+            planned, inits = readout.network, list(readout.inits)
+            result = network_propagation(planned, q0, c0, simulate=False, **pos)
         options = dict(loss=loss, batch_size=batch_size, n_classes=n_classes, q0=q0,
                        input_correlation=c0 if input_correlation is None else input_correlation,
                        momentum=momentum, **pos)
@@ -411,7 +442,9 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
     return NetworkPlan(tuple(inits), found, planned.describe(), result.summary, result.c[-1],
                        result.gradient[0], tuple(notes), loss,
                        None if ceiling is None else ceiling.learning_rate_ceiling,
-                       None if ceiling is None else ceiling.learning_rate, why, ceiling)
+                       None if ceiling is None else ceiling.learning_rate, why, ceiling,
+                       None if readout is None else readout.description,
+                       None if readout is None else readout.scale)
 
 
 def _refusal(net: Network, options: dict[str, Any]) -> str | None:

@@ -265,13 +265,16 @@ def plan_module(module: Any, example: Any, *, target: float | None = None, q0: f
                 c0: float = 0.0, max_gradient: float | None = 10.0,
                 distribution: str = "gaussian", convolution: str = "gaussian",
                 q_star: float | None = None, seed: SeedLike = None,
-                scales: str = "measured") -> ModulePlan:
+                scales: str = "measured", loss: str | None = None,
+                n_classes: int | None = None, batch_size: int | None = None,
+                momentum: float = 0.0, scale_output: bool = True) -> ModulePlan:
     """Read a module, plan its network and write the plan into it, in place.
 
     Parameters are those of :func:`propcalc.read_module` (``example``, ``scales``),
     :func:`propcalc.network_plan` (``target``, ``q0``, ``c0``, ``max_gradient``,
-    ``distribution``, ``convolution``, ``q_star``) and :func:`apply_network_plan`
-    (``seed``).
+    ``distribution``, ``convolution``, ``q_star``; with ``loss`` and ``batch_size`` the
+    readout is scaled for the loss unless ``scale_output`` is False, and the plan carries
+    its learning rate) and :func:`apply_network_plan` (``seed``).
 
     Returns
     -------
@@ -280,7 +283,9 @@ def plan_module(module: Any, example: Any, *, target: float | None = None, q0: f
     reading = read_module(module, example, scales=scales)
     plan = network_plan(reading.network, q0=q0, c0=c0, target=target,
                         max_gradient=max_gradient, distribution=distribution,
-                        convolution=convolution, q_star=q_star)
+                        convolution=convolution, q_star=q_star, loss=loss,
+                        n_classes=n_classes, batch_size=batch_size, momentum=momentum,
+                        scale_output=scale_output)
     parse_network(plan.description)
     layers = apply_network_plan(module, plan, reading, seed)
     return ModulePlan(reading, plan, layers)

@@ -31,7 +31,8 @@ from ..training.ntk import UnsupportedKernelError
 from ..variants.output_layer import OutputLayerScale, output_layer_scale
 from .layers import Layer
 
-__all__ = ["MSE_OUTPUT_VARIANCE", "LossPlan", "plan_for_loss", "refuse_without_loss"]
+__all__ = ["MSE_OUTPUT_VARIANCE", "LossPlan", "OutputLayerRule", "output_layer_rule", "plan_for_loss",
+           "refuse_without_loss"]
 
 #: the planned variance of each output for MSE (common practice, no source)
 MSE_OUTPUT_VARIANCE = 0.01
@@ -47,6 +48,84 @@ class LossPlan:
     output_scale: OutputLayerScale | None
     ceiling: LearningRateCeiling
     notes: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class OutputLayerRule:
+    """The last layer planned for a loss (an internal carrier, not a result).
+
+    Attributes
+    ----------
+    sigma_w2, sigma_b2 : float
+        The last layer's variances (the hidden scale when not scaled).
+    description : str
+        What the plan says of its output layer (``InitPlan.output_layer``,
+        ``NetworkPlan.output_layer``).
+    scale : OutputLayerScale or None
+        The cross-entropy analysis (None for MSE or when not scaled).
+    notes : tuple of str
+    """
+
+    sigma_w2: float
+    sigma_b2: float
+    description: str
+    scale: OutputLayerScale | None
+    notes: tuple[str, ...]
+
+
+def output_layer_rule(loss: str, n_classes: int | None, penultimate: float,
+                      fan_in: int | None, sigma_w2: float, sigma_b2: float, *,
+                      scale_output: bool,
+                      rule: QuadratureRule = DEFAULT_RULE) -> OutputLayerRule:
+    """The last layer's (sigma_w2, sigma_b2) for a loss: the one rule of plain and network plans.
+
+    Parameters
+    ----------
+    loss : {"cross_entropy", "mse"}
+    n_classes : int or None
+        K (needed for cross-entropy).
+    penultimate : float
+        The second moment per unit of what feeds the last layer (``E[phi(h)^2]`` in a plain
+        stack); the output variance is ``sigma_w2 penultimate + sigma_b2`` (Poole et al. 2016,
+        eq. 3, without an activation after it).
+    fan_in : int or None
+        The last layer's fan-in (for the weight std of the cross-entropy analysis).
+    sigma_w2, sigma_b2 : float
+        The last layer at the hidden scale (kept when not scaled; reported beside).
+    scale_output : bool
+        False keeps the hidden scale.
+
+    Returns
+    -------
+    OutputLayerRule
+        Cross-entropy: the largest sigma_w2 whose expected initial loss is within 1% of ln K
+        (:func:`propcalc.variants.output_layer.output_layer_scale`), sigma_b2 = 0; MSE:
+        ``sigma_w2 = MSE_OUTPUT_VARIANCE / penultimate``, sigma_b2 = 0 (module docstring).
+    """
+    notes: list[str] = []
+    scale: OutputLayerScale | None = None
+    sw, sb = sigma_w2, sigma_b2
+    if not scale_output:
+        description = "as the hidden layers (scale_output=False)"
+    elif penultimate <= 0.0:
+        description = "as the hidden layers (the penultimate activations are 0)"
+    elif loss == "cross_entropy":
+        k = int(n_classes or 0)
+        scale = output_layer_scale(k, penultimate, None, 0.0, fan_in, sigma_w2, sigma_b2,
+                                   rule=rule)
+        description = (f"scaled for cross-entropy: sigma_w2 = {scale.sigma_w2:.6g}, sigma_b2 = 0, "
+                       f"logit variance {scale.max_logit_variance:.4g}, expected initial loss "
+                       f"within {scale.margin:.4g} nats of ln {k} (common practice, no source)")
+        sw, sb = scale.sigma_w2, 0.0
+        if scale.current is not None:
+            notes.append(f"at the hidden layers' scale the last layer would give logit variance "
+                         f"{scale.current.logit_variance:.4g} and an expected initial loss "
+                         f"{scale.current.excess:+.4g} nats from ln {k}")
+    else:
+        sw, sb = MSE_OUTPUT_VARIANCE / penultimate, 0.0
+        description = (f"scaled for MSE: sigma_w2 = {sw:.6g}, sigma_b2 = 0, output variance "
+                       f"{MSE_OUTPUT_VARIANCE:g} per output (common practice, no source)")
+    return OutputLayerRule(sw, sb, description, scale, tuple(notes))
 
 
 def _widths(layers: Sequence[Layer | None], widths: Sequence[int] | None) -> list[int]:
@@ -114,26 +193,10 @@ def plan_for_loss(act: Activation, layers: Sequence[Layer | None], widths: Seque
         for i in range(1, n - 1):
             q = float(variance_map(act, q, sw[i], sb[i], rule))
         m2 = float(second_moment(act, q, rule))
-    notes: list[str] = []
-    scale: OutputLayerScale | None = None
-    if not scale_output:
-        description = "as the hidden layers (scale_output=False)"
-    elif m2 <= 0.0:
-        description = "as the hidden layers (the penultimate activations are 0)"
-    elif loss == "cross_entropy":
-        scale = output_layer_scale(k, m2, None, 0.0, ws[-2], sw[-1], sb[-1], rule=rule)
-        description = (f"scaled for cross-entropy: sigma_w2 = {scale.sigma_w2:.6g}, sigma_b2 = 0, "
-                       f"logit variance {scale.max_logit_variance:.4g}, expected initial loss "
-                       f"within {scale.margin:.4g} nats of ln {k} (common practice, no source)")
-        sw[-1], sb[-1] = scale.sigma_w2, 0.0
-    else:
-        sw[-1], sb[-1] = MSE_OUTPUT_VARIANCE / m2, 0.0
-        description = (f"scaled for MSE: sigma_w2 = {sw[-1]:.6g}, sigma_b2 = 0, output variance "
-                       f"{MSE_OUTPUT_VARIANCE:g} per output (common practice, no source)")
-    if scale is not None and scale.current is not None:
-        notes.append(f"at the hidden layers' scale the last layer would give logit variance "
-                     f"{scale.current.logit_variance:.4g} and an expected initial loss "
-                     f"{scale.current.excess:+.4g} nats from ln {k}")
+    out = output_layer_rule(loss, k, m2, ws[-2], sw[-1], sb[-1], scale_output=scale_output,
+                            rule=rule)
+    sw[-1], sb[-1] = out.sigma_w2, out.sigma_b2
+    notes = list(out.notes)
     ceiling = learning_rate_ceiling(
         act, ws, sw, sb, loss=loss, batch_size=b, n_classes=k, q0=q_input,
         input_correlation=0.0 if input_correlation is None else input_correlation,
@@ -142,4 +205,4 @@ def plan_for_loss(act: Activation, layers: Sequence[Layer | None], widths: Seque
                  f"(2 (1 + momentum) / lambda_max, lambda_max = {ceiling.lambda_max:.4g} for "
                  f"{loss}, batch {b}, {ceiling.optimiser}); recommended "
                  f"{ceiling.learning_rate:.4g} ({ceiling.learning_rate_rule})")
-    return LossPlan(sw[-1], sb[-1], description, scale, ceiling, tuple(notes))
+    return LossPlan(sw[-1], sb[-1], out.description, out.scale, ceiling, tuple(notes))

@@ -364,3 +364,37 @@ def test_a_plan_whose_kernel_is_refused_says_why(client, strict_json):
         plan["learning_rate_note"])
     lr = next(r for r in body["verdict"]["reasons"] if r["name"] == "learning rate")
     assert lr["value"] is None and "/blocks/1 (norm)" in lr["detail"]
+
+
+# the plan's readout scaled for the loss (issue 15 part 3); the reference is the Python API, whose
+# readout is checked against the stated margin by seeded torch sampling and against Poole et al.
+# 2016, eq. 3 for MSE (tests/test_network_plan_readout.py)
+READOUT = {"input_width": 16, "blocks": [dense(1.0, width=32), {"activation": "tanh"},
+                                         dense(1.0, width=32), {"activation": "tanh"},
+                                         dense(1.0, width=4)]}
+
+
+def test_the_plan_scales_its_readout_for_the_loss(client, strict_json):
+    body = post(client, {"network": READOUT, "loss": "cross_entropy", "batch_size": 8},
+                strict_json)
+    ref = propcalc.network_plan(READOUT, loss="cross_entropy", batch_size=8)
+    assert body["plan"] == jsonable(ref.to_dict())
+    plan = body["plan"]
+    assert plan["output_layer"].startswith("scaled for cross-entropy: sigma_w2 = ")
+    assert plan["output_layer_scale"]["sigma_w2"] == plan["blocks"][-1]["sigma_w2"]
+    assert plan["description"]["blocks"][-1]["dense"]["sigma_w2"] == plan["blocks"][-1]["sigma_w2"]
+    body = post(client, {"network": READOUT, "loss": "mse", "batch_size": 8,
+                         "scale_output": False}, strict_json)
+    assert body["plan"]["output_layer"] == "as the hidden layers (scale_output=False)"
+    assert body["plan"] == jsonable(propcalc.network_plan(
+        READOUT, loss="mse", batch_size=8, scale_output=False).to_dict())
+
+
+def test_scale_output_is_refused_where_it_is_not_read(client):
+    body = problem(client.post("/v1/network", json={"network": READOUT, "scale_output": False}),
+                   422, INVALID)
+    assert pointers(body) == ["/scale_output"]
+    body = problem(client.post("/v1/network", json={
+        "network": READOUT, "plan": None, "loss": "mse", "batch_size": 8,
+        "scale_output": False}), 422, INVALID)
+    assert pointers(body) == ["/scale_output"] and "plan" in body["detail"] + str(body)

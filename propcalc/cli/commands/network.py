@@ -191,7 +191,8 @@ def _plan_text(plan: Any, out: TextIO) -> None:
     if plan.loss is not None:
         pairs += [("planned: learning-rate ceiling", plan.learning_rate_ceiling
                    if plan.learning_rate_note is None else "not computed (note below)"),
-                  ("planned: learning rate", plan.learning_rate)]
+                  ("planned: learning rate", plan.learning_rate),
+                  ("planned: output layer", plan.output_layer)]
     out.write(format_pairs(pairs) + "\n")
     out.writelines(f"  {line}\n" for line in _summary_lines(plan.summary))
     out.writelines(f"note: {note}\n" for note in plan.notes)
@@ -268,13 +269,17 @@ def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
                                  simulation_width=args.width)
     if args.loss is None:
         given = [o for o, v in (("--n-classes", args.n_classes), ("--batch-size", args.batch_size),
-                                ("--momentum", args.momentum or None)) if v is not None]
+                                ("--momentum", args.momentum or None),
+                                ("--no-scale-output", args.no_scale_output or None))
+                 if v is not None]
         if given:
             raise UsageError(f"{', '.join(given)} only matter with a loss: give "
                              "--loss cross_entropy|mse too")
     elif args.batch_size is None:
         raise UsageError("--loss needs --batch-size (inputs per step): the learning-rate "
                          "ceiling depends on it")
+    if args.no_plan and args.no_scale_output:
+        raise UsageError("--no-scale-output only shapes the plan: drop --no-plan")
     verdict = network_verdict(result, loss=args.loss, n_classes=args.n_classes,
                               batch_size=args.batch_size, momentum=args.momentum)
     check = None
@@ -291,7 +296,8 @@ def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
                                 max_gradient=args.max_gradient, distribution=args.distribution,
                                 convolution=args.convolution, loss=args.loss,
                                 n_classes=args.n_classes, batch_size=args.batch_size,
-                                momentum=args.momentum)
+                                momentum=args.momentum,
+                                scale_output=not args.no_scale_output)
         except PropcalcError as exc:  # the propagation stands without it
             plan_error = str(exc)
     if args.json:
@@ -362,12 +368,16 @@ def register(sub: Any) -> None:
     p.add_argument("--loss", choices=["cross_entropy", "mse"],
                    help="verdict: the learning-rate ceiling of the described network for this "
                         "loss (needs --batch-size) and its output-layer reason; plan: the "
-                        "planned network's ceiling and learning rate (or why not)")
+                        "readout scaled for the loss (a dense last block) and the planned "
+                        "network's ceiling and learning rate (or why not)")
     p.add_argument("--n-classes", type=int,
                    help="with --loss: outputs K (default: the readout's width)")
     p.add_argument("--batch-size", type=int, help="with --loss: inputs per step B")
     p.add_argument("--momentum", type=finite_float, default=0.0,
                    help="with --loss: heavy-ball momentum of the ceiling (default 0)")
+    p.add_argument("--no-scale-output", action="store_true",
+                   help="plan with --loss: keep the readout (a dense last block) at the hidden "
+                        "scale instead of scaling it for the loss")
     p.add_argument("--no-plan", action="store_true", help="skip the initialisation plan")
     p.add_argument("--check", action="store_true",
                    help="also measure seeded finite-width networks of the description and "
