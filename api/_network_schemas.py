@@ -31,11 +31,24 @@ from propcalc.networks import (
 from propcalc.shaping.solve import MAX_DEPTH as SHAPING_MAX_DEPTH
 from propcalc.shaping.solve import METHODS as SHAPING_METHODS
 
-from ._config import PLAN_Q_INPUT_MIN, Q_STAR_MAX, Q_STAR_MIN, SEED_MAX, VARIANCE_MAX, Limits
+from ._config import (
+    PLAN_Q_INPUT_MIN,
+    Q_STAR_MAX,
+    Q_STAR_MIN,
+    SEED_MAX,
+    VARIANCE_MAX,
+    Limits,
+)
 from ._fields import Choice, FiniteNumber, Interval, JSONInteger, StrictBoolean
 from ._responses import VerdictSchema
 from ._result_schemas import result_schema
-from ._schema_base import MAX_SIZE
+from ._schema_base import (
+    batch_size_field,
+    loss_field,
+    momentum_field,
+    n_classes_field,
+    scale_output_field,
+)
 
 __all__ = ["build_network_schemas", "network_components", "NetworkField", "DESCRIPTION_COMPONENT",
            "NETWORK_LIMITS", "SHAPE_PLOT_POINTS"]
@@ -178,7 +191,6 @@ def build_network_schemas(limits: Limits, strict: type[Schema],
             "no number there"))
         seed = seed_field()
 
-    from ._schemas import PLAN_MAX_CLASSES, PLAN_READOUT_SAMPLES  # built after it loads
 
     class NetworkRequestSchema(NetworkInputsSchema):
         """Signal propagation through a described network, its summary and its plan."""
@@ -188,23 +200,17 @@ def build_network_schemas(limits: Limits, strict: type[Schema],
                                  "plan options (default: a plan without a target); null: no "
                                  "plan"))
         # training (issue 15): the verdict's learning-rate ceiling and output-layer reason
-        loss = Choice(["cross_entropy", "mse"], load_default=None, allow_none=True, metadata=d(
+        loss = loss_field(
             "cross_entropy (softmax) or mse: the verdict then has the learning-rate ceiling of "
             "the described network (propcalc.training.network_learning_rate_ceiling; needs "
-            "batch_size) and its output-layer reason"))
-        n_classes = JSONInteger(validate=Interval(2, PLAN_MAX_CLASSES), load_default=None,
-                                allow_none=True, metadata=d(
-                                    "with a loss: K, the outputs (default: the readout's "
-                                    f"width); at most {PLAN_MAX_CLASSES}: the readout's check "
-                                    f"draws {PLAN_READOUT_SAMPLES} samples of K logits"))
-        batch_size = JSONInteger(validate=Interval(1, MAX_SIZE), load_default=None,
-                                 allow_none=True, metadata=d("B, inputs per step (with a loss)"))
-        momentum = FiniteNumber(validate=Interval(0, 1, high_open=True), load_default=0.0,
-                                metadata=d("with a loss: heavy-ball momentum, the ceiling is "
-                                           "2 (1 + momentum) / lambda_max"))
-        scale_output = StrictBoolean(load_default=True, metadata=d(
+            "batch_size) and its output-layer reason")
+        n_classes = n_classes_field("with a loss: K, the outputs (default: the readout's width)")
+        batch_size = batch_size_field()
+        momentum = momentum_field("with a loss: heavy-ball momentum, the ceiling is "
+                                  "2 (1 + momentum) / lambda_max")
+        scale_output = scale_output_field(
             "with a loss and a plan: scale the readout (a dense last block) for the loss; "
-            "false keeps the hidden scale"))
+            "false keeps the hidden scale")
 
         @validates_schema
         def _training(self, data: dict[str, Any], **kwargs: Any) -> None:

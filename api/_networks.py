@@ -39,6 +39,7 @@ from propcalc.networks.simulate import measure_network, simulation_work
 
 from ._budget import COSTS, FORMULA_FACTOR, check_budget, max_probability_cost
 from ._fields import format_number
+from ._schema_base import PLAN_READOUT_SAMPLES
 
 __all__ = [
     "SLOPE_FORM_BASES",
@@ -143,8 +144,6 @@ def readout_estimate(net: Network, loss: str, n_classes: int, formulas: bool = F
     the output-layer scale: its root in the logit variance and the Monte Carlo check of the
     largest class probability (as the plain plan's, PLAN_READOUT_SAMPLES draws of K logits).
     """
-    from ._schemas import PLAN_READOUT_SAMPLES  # built after this module loads
-
     units = net.cost * (FORMULA_FACTOR if formulas else 1.0)
     # the moments are cached by the first propagation: the second costs about a fifth
     # (measured 0.03 s against 0.11 s cold, 205 positions)

@@ -6,26 +6,31 @@ One spelling of each constraint (sigma_w2, sigma_b2, q, q*), shared by the reque
 
 from __future__ import annotations
 
+import inspect
 from typing import Any
 
 from marshmallow import RAISE, Schema, ValidationError, fields
 
 from propcalc import DEFAULT_EDGE_Q_STARS as _ENGINE_EDGE_Q_STARS
-from propcalc import Distribution, Target, VarianceStatus
+from propcalc import Distribution, Target, VarianceStatus, output_layer_scale
 from propcalc.domains import DOMAINS
 
 from ._config import (
     BIAS_MIN_POSITIVE,
-    SIGMA_W2_MIN,
+    MC_MAX_ELEMENTS,
     Q_STAR_MAX,
     Q_STAR_MIN,
+    SIGMA_W2_MIN,
     VARIANCE_MAX,
     Limits,
 )
 from ._fields import (
+    Choice,
     FiniteNumber,
     Interval,
+    JSONInteger,
     MaxItems,
+    StrictBoolean,
     format_number,
 )
 
@@ -33,7 +38,8 @@ __all__ = ["StrictSchema", "DISTRIBUTIONS", "TARGETS", "DEFAULT_EDGE_Q_STARS",
            "PARAM_NAME_PATTERN", "MAX_SIZE", "MAX_KERNEL", "MAX_KERNEL_DIMS",
            "VARIANCE_STATUSES", "DROPOUT_MAX_RATES", "ISOMETRY_DEFAULTS",
            "PLOT_MAX_ITERATIONS", "sigma_w2_field", "sigma_b2_field", "q_input_field",
-           "q_star_field"]
+           "q_star_field", "PLAN_READOUT_SAMPLES", "PLAN_MAX_CLASSES", "loss_field",
+           "n_classes_field", "batch_size_field", "momentum_field", "scale_output_field"]
 
 #: weight distributions of a plan (the engine's names)
 DISTRIBUTIONS = tuple(d.value for d in Distribution)
@@ -57,6 +63,10 @@ PLOT_MAX_ITERATIONS = 100
 #: defaults of the isometry advice (those of propcalc.dynamical_isometry): the target
 #: normalised spectral variance (common practice, no source) and the scanned q* range
 ISOMETRY_DEFAULTS = {"max_variance": 0.25, "q_star_min": 1e-6, "q_star_max": 100.0}
+#: samples of K logits the readout's check draws (the engine's default), and the most classes
+#: that keeps the draw within MC_MAX_ELEMENTS
+PLAN_READOUT_SAMPLES = int(inspect.signature(output_layer_scale).parameters["n_samples"].default)
+PLAN_MAX_CLASSES = MC_MAX_ELEMENTS // PLAN_READOUT_SAMPLES
 
 
 class StrictSchema(Schema):
@@ -102,6 +112,33 @@ def q_input_field(minimum: float = 0.0, description: str = "mean squared input c
 def q_star_field(description: str = "variance fixed point q* on the edge-of-chaos line",
                  **kw: Any) -> FiniteNumber:
     return FiniteNumber(validate=Interval(Q_STAR_MIN, Q_STAR_MAX), metadata=_d(description), **kw)
+
+
+# the training options of a plan (issue 15): the plain plan's and the network's
+def loss_field(description: str) -> Choice:
+    return Choice(["cross_entropy", "mse"], load_default=None, allow_none=True,
+                  metadata=_d(description))
+
+
+def n_classes_field(description: str) -> JSONInteger:
+    return JSONInteger(validate=Interval(2, PLAN_MAX_CLASSES), load_default=None,
+                       allow_none=True, metadata=_d(
+                           f"{description}; at most {PLAN_MAX_CLASSES}: the readout's check "
+                           f"draws {PLAN_READOUT_SAMPLES} samples of K logits"))
+
+
+def batch_size_field() -> JSONInteger:
+    return JSONInteger(validate=Interval(1, MAX_SIZE), load_default=None, allow_none=True,
+                       metadata=_d("B, inputs per step (with a loss)"))
+
+
+def momentum_field(description: str) -> FiniteNumber:
+    return FiniteNumber(validate=Interval(0, 1, high_open=True), load_default=0.0,
+                        metadata=_d(description))
+
+
+def scale_output_field(description: str) -> StrictBoolean:
+    return StrictBoolean(load_default=True, metadata=_d(description))
 
 
 def _numbers(item: fields.Field, limits: Limits, text: str) -> fields.List:

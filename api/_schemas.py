@@ -13,13 +13,12 @@ body back through its schema before sending it.
 
 from __future__ import annotations
 
-import inspect
 from dataclasses import dataclass
 from typing import Any
 
 from marshmallow import Schema, ValidationError, fields, validates_schema
 
-from propcalc import alpha_dropout, builtin_names, output_layer_scale
+from propcalc import alpha_dropout, builtin_names
 
 from ._config import (
     ALPHA_PRIME_ABS_MAX,
@@ -30,20 +29,20 @@ from ._config import (
     MARGIN_MIN,
     MAX_CLASSES,
     MAX_SAMPLES,
-    MC_MAX_ELEMENTS,
     MAXOUT_MAX_RANK,
+    MC_MAX_ELEMENTS,
     MEAN_ABS_MAX,
     OMEGA_ABS_MAX,
     PARAM_ABS_MAX,
     PLAN_Q_INPUT_MIN,
+    Q_STAR_MAX,
+    Q_STAR_MIN,
     SEED_MAX,
     SIMULATION_MAX_PAIRS,
     SIMULATION_MAX_REPETITIONS,
     SIMULATION_MAX_WIDTH,
     SMALL_VARIANCE_MIN,
     SPECTRAL_VARIANCE_MAX,
-    Q_STAR_MAX,
-    Q_STAR_MIN,
     TOLERANCE_MIN,
     VARIANCE_MAX,
     Limits,
@@ -62,18 +61,36 @@ from ._fields import (
 )
 from ._network_schemas import build_network_schemas
 from ._plot_schemas import build_plot_schemas
-from ._schema_base import (
-    DEFAULT_EDGE_Q_STARS, DISTRIBUTIONS, DROPOUT_MAX_RATES, ISOMETRY_DEFAULTS, MAX_KERNEL,
-    MAX_KERNEL_DIMS, MAX_SIZE, PARAM_NAME_PATTERN, PLOT_MAX_ITERATIONS, TARGETS,
-    VARIANCE_STATUSES, StrictSchema, _any_of, _at_most_one, _d, _exactly_one, _numbers,
-    _one_of, q_input_field, q_star_field, sigma_b2_field, sigma_w2_field,
-)
 from ._responses import RESPONSE_SCHEMAS
-
-#: the readout check of a plan with cross_entropy draws output_layer_scale's default number of
-#: samples of K logits, and samples x K is at most MC_MAX_ELEMENTS (propcalc.variants.output_layer)
-PLAN_READOUT_SAMPLES = int(inspect.signature(output_layer_scale).parameters["n_samples"].default)
-PLAN_MAX_CLASSES = MC_MAX_ELEMENTS // PLAN_READOUT_SAMPLES
+from ._schema_base import (
+    DEFAULT_EDGE_Q_STARS,
+    DISTRIBUTIONS,
+    DROPOUT_MAX_RATES,
+    ISOMETRY_DEFAULTS,
+    MAX_KERNEL,
+    MAX_KERNEL_DIMS,
+    MAX_SIZE,
+    PARAM_NAME_PATTERN,
+    PLOT_MAX_ITERATIONS,
+    TARGETS,
+    VARIANCE_STATUSES,
+    StrictSchema,
+    _any_of,
+    _at_most_one,
+    _d,
+    _exactly_one,
+    _numbers,
+    _one_of,
+    batch_size_field,
+    loss_field,
+    momentum_field,
+    n_classes_field,
+    q_input_field,
+    q_star_field,
+    scale_output_field,
+    sigma_b2_field,
+    sigma_w2_field,
+)
 
 __all__ = ["StrictSchema", "Schemas", "build_schemas", "DISTRIBUTIONS", "TARGETS",
            "DEFAULT_EDGE_Q_STARS", "PARAM_NAME_PATTERN", "MAX_SIZE", "VARIANCE_STATUSES",
@@ -301,24 +318,18 @@ def build_schemas(limits: Limits) -> Schemas:
             allow_none=True)
         q_input = q_input_field(PLAN_Q_INPUT_MIN, load_default=1.0)
         # training (issue 15): the loss sets the readout's scale and the learning-rate ceiling
-        loss = Choice(["cross_entropy", "mse"], load_default=None, allow_none=True, metadata=_d(
+        loss = loss_field(
             "cross_entropy (softmax) or mse: the plan then scales the last layer for the loss "
-            "and carries learning_rate_ceiling and learning_rate (needs widths or dense layers)"))
-        n_classes = JSONInteger(validate=Interval(2, PLAN_MAX_CLASSES), load_default=None,
-                                allow_none=True, metadata=_d(
-                                    "K, the outputs (cross_entropy: required, the last width); "
-                                    f"at most {PLAN_MAX_CLASSES}: the readout's check draws "
-                                    f"{PLAN_READOUT_SAMPLES} samples of K logits"))
-        batch_size = JSONInteger(validate=Interval(1, MAX_SIZE), load_default=None,
-                                 allow_none=True, metadata=_d("B, inputs per step (with a loss)"))
-        momentum = FiniteNumber(validate=Interval(0, 1, high_open=True), load_default=0.0,
-                                metadata=_d("heavy-ball momentum: the ceiling is 2 (1 + momentum) "
-                                            "/ lambda_max"))
+            "and carries learning_rate_ceiling and learning_rate (needs widths or dense layers)")
+        n_classes = n_classes_field("K, the outputs (cross_entropy: required, the last width)")
+        batch_size = batch_size_field()
+        momentum = momentum_field("heavy-ball momentum: the ceiling is 2 (1 + momentum) "
+                                  "/ lambda_max")
         input_correlation = FiniteNumber(validate=Interval(-1, 1), load_default=None,
                                          allow_none=True, metadata=_d(
                                              "the inputs' pairwise correlation (default 0)"))
-        scale_output = StrictBoolean(load_default=True, metadata=_d(
-            "with a loss, scale the last layer for it; false keeps the hidden scale"))
+        scale_output = scale_output_field(
+            "with a loss, scale the last layer for it; false keeps the hidden scale")
 
         @validates_schema
         def _size(self, data: dict[str, Any], **kwargs: Any) -> None:

@@ -62,7 +62,7 @@ from ._fields import format_number
 from ._json import canonical_dumps
 from ._networks import NetworkComputations
 from ._problems import TYPE_INVALID_FIELDS, Problem, WorkBudgetExceeded
-from ._schemas import DEFAULT_EDGE_Q_STARS, PLAN_READOUT_SAMPLES
+from ._schema_base import DEFAULT_EDGE_Q_STARS, PLAN_READOUT_SAMPLES
 
 __all__ = ["Computations", "expand_grid", "default_samples", "DEFAULT_SAMPLES"]
 
