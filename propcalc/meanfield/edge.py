@@ -131,7 +131,7 @@ def _critical(act: Activation, q: float, rule: QuadratureRule,
     if act.has_jumps:
         return CriticalPoint(act.label, q, None, None, None, False, False,
                              f"{act.label} jumps, so chi_1 is infinite: there is no edge of chaos")
-    sw, sb = (float(v) for v in edge_line(act, np.asarray(q), rule))
+    sw, sb = (float(v) for v in edge_line(act, np.float64(q), rule))  # (a scalar: fast paths)
     if not math.isfinite(sw):
         return CriticalPoint(act.label, q, None, None, None, False, False,
                              f"E[phi'^2] = 0 at q* = {q:.6g}: no gradient passes, no edge of chaos")
@@ -205,7 +205,7 @@ def edge_of_chaos_at_bias(act: Activation | str, sigma_b2: float,
     gap = sb_line - sb
 
     def gfun(q: float) -> float:
-        return float(edge_line(act, np.asarray(q), rule)[1]) - sb
+        return float(edge_line(act, np.float64(q), rule)[1]) - sb
 
     out: list[CriticalPoint] = []
     if np.all(np.abs(gap[ok]) <= 1e-10 * (grid[ok] + sb)) and ok.any():
