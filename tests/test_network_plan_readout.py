@@ -146,6 +146,12 @@ def test_scale_output_is_refused_without_a_loss():
     assert plan.output_layer is None and plan.output_layer_scale is None
 
 
+def test_a_misspelt_loss_is_named_before_the_missing_batch_size():
+    # the error contract: loss="cross-entropie" was answered "batch_size must be given"
+    with pytest.raises(propcalc.PropcalcError, match="loss must be one of"):
+        propcalc.network_plan(mlp(), loss="cross-entropie")
+
+
 torch = pytest.importorskip("torch")
 
 

@@ -321,3 +321,10 @@ def test_network_verdict_refuses_bad_arguments_by_name():
             pc.network_verdict(r, loss="cross_entropy", n_classes=3, **kwargs)
     with pytest.raises(pc.PropcalcError, match="result must be a NetworkPropagation"):
         pc.network_verdict("x")
+    # every option takes effect or is refused (DEVELOPERS.md, "Input at the boundary"):
+    # n_classes without a loss and momentum without batch_size were read and ignored
+    for kwargs, needle in (({"n_classes": 3}, "n_classes must be absent when no loss is given"),
+                           ({"loss": "mse", "momentum": 0.9},
+                            "momentum must be 0 unless batch_size is given")):
+        with pytest.raises(pc.PropcalcError, match=needle):
+            pc.network_verdict(r, **kwargs)

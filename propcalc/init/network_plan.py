@@ -52,7 +52,7 @@ from ..networks.targets import (
 )
 from ..networks.walk import Trace, trace
 from ..results import OMIT, Result
-from ..training.learning_rate import LearningRateCeiling
+from ..training.learning_rate import LOSSES, LearningRateCeiling
 from ..training.network_ntk import network_learning_rate_ceiling
 from ..training.ntk import UnsupportedKernelError
 from ..variants.output_layer import OutputLayerScale
@@ -413,6 +413,8 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
             raise InvalidParameterError("scale_output", "True when no loss is given (give loss=)",
                                         scale_output)
     else:
+        if loss not in LOSSES:  # before batch_size: a misspelt loss is named first
+            raise InvalidParameterError("loss", f"one of {', '.join(LOSSES)}", loss)
         if batch_size is None:
             raise InvalidParameterError("batch_size", "given when a loss is given", None)
         if not isinstance(scale_output, bool):

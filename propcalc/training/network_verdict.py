@@ -69,6 +69,14 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None, *,
         raise InvalidParameterError("result", "a NetworkPropagation (propcalc."
                                     "network_propagation(...))", type(result).__name__)
     _check_options(learning_rate, output_margin)
+    # every option takes effect or is refused: without a loss n_classes is unused, and momentum
+    # only shapes the ceiling computed here (with batch_size)
+    if loss is None and n_classes is not None:
+        raise InvalidParameterError("n_classes", "absent when no loss is given (give loss=)",
+                                    n_classes)
+    if batch_size is None and momentum != 0.0:
+        raise InvalidParameterError("momentum", "0 unless batch_size is given (it only shapes "
+                                    "the learning-rate ceiling computed here)", momentum)
     lr_why = None
     if batch_size is not None:
         if loss is None:
