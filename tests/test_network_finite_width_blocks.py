@@ -300,6 +300,20 @@ def test_a_residual_block_that_zeroes_the_stream_is_a_computation_error():
     assert r.passes is None and "sets the stream to 0" in r.detail
 
 
+
+def test_a_norm_with_gain_0_is_a_computation_error_not_a_math_domain_error():
+    # the error contract (DEVELOPERS.md): a layer norm of gain 0 raised ValueError("math domain
+    # error") from ln(gain^2), in network_finite_width and in the network verdict
+    n = 16
+    desc = {"input_width": n, "blocks": [dense(1.0, 0.0, n), {"norm": {"kind": "layer",
+                                                                       "gain": 0.0}},
+                                         dense(1.0, 0.0, n)]}
+    with pytest.raises(propcalc.PropcalcError, match="norm with gain 0 sets the stream to 0"):
+        network_finite_width(desc)
+    r = network_verdict(propcalc.network_propagation(desc)).reason("finite-width spread")
+    assert r.passes is None and "gain 0" in r.detail
+
+
 def test_the_network_verdict_has_the_finite_width_reasons_of_residual_networks():
     desc = pre_norm(64, times=24)
     fw = network_finite_width(desc)

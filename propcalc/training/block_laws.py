@@ -211,6 +211,10 @@ class Tape:
 
     def norm(self, layer: bool, gain: float, eps: float, n: int, target: int) -> None:
         """A layer or RMS norm on a measured stream of n units."""
+        if gain == 0.0:  # ln(gain^2) below: the stream is 0 after it, as a residual of 0 and 0
+            raise ComputationError(f"a {'layer' if layer else 'RMS'} norm with gain 0 sets the "
+                                   "stream to 0: no finite-width expansion around it (gain "
+                                   f"must be nonzero for the finite-width laws, got {gain!r})")
         mean, jac = self.identity()
         k = float(mean[WORK])
         t = k + eps
