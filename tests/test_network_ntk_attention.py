@@ -163,6 +163,12 @@ def test_the_softmax_moments_are_exact_and_uniform_without_spread():
     # m2 -> 1 + 1 - 2 = 0
     m = softmax_pair_moments(8, 1e6, 1.0)
     assert 0.99 < m.m1 <= 1.0 and abs(m.m2) < 0.01
+    # the error contract: tokens 0 raised ZeroDivisionError, a NaN variance a RuntimeWarning
+    for args, needle in (((0, 1.0, 0.3), "tokens must be an integer >= 1, got 0"),
+                         ((4, float("nan"), 0.3), "variance must be a finite real number"),
+                         ((4, 1.0, float("inf")), "rho must be a finite real number")):
+        with pytest.raises(propcalc.PropcalcError, match=needle):
+            softmax_pair_moments(*args)
 
 
 def test_beyond_the_checked_spread_the_kernel_is_refused_by_path():

@@ -32,7 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..caches import BoundedCache
-from ..errors import PropcalcError
+from ..errors import PropcalcError, check_finite, check_int
 
 __all__ = ["SEED", "SoftmaxMoments", "samples", "softmax_pair_moments"]
 
@@ -81,10 +81,15 @@ def softmax_pair_moments(tokens: int, variance: float, rho: float) -> SoftmaxMom
     Returns
     -------
     SoftmaxMoments
+
+    Raises
+    ------
+    InvalidParameterError
+        For ``tokens`` below 1 or a variance or rho that is not a finite number.
     """
-    t = int(tokens)
-    v = max(float(variance), 0.0)
-    r = min(max(float(rho), -1.0), 1.0)
+    t = check_int("tokens", tokens, 1)
+    v = max(check_finite("variance", variance), 0.0)
+    r = min(max(check_finite("rho", rho), -1.0), 1.0)
     if t <= 1 or v == 0.0:
         return SoftmaxMoments(1.0 / t, (t - 1.0) / (t * t), 0.0, 0.0, 0)
     key = (t, v, r)
