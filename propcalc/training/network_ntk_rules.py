@@ -95,6 +95,7 @@ __all__ = [
     "norm",
     "pooling",
     "residual",
+    "start",
     "weight_block",
 ]
 
