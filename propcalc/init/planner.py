@@ -11,6 +11,7 @@ a gain g means ``std = g / sqrt(fan_in)``, i.e. ``sigma_w2 = g^2``.
 from __future__ import annotations
 
 import dataclasses
+import itertools
 import math
 from collections.abc import Sequence
 from typing import Any
@@ -32,8 +33,8 @@ from ..meanfield.edge import (
     edge_of_chaos_at_bias,
     edge_of_chaos_line_arrays,
 )
-from ..meanfield.report import Propagation, propagation
 from ..meanfield.maps import second_moment, variance_map_slope
+from ..meanfield.report import propagation
 from ..numerics.quadrature import DEFAULT_RULE, QuadratureRule
 from ..training.finite_width import ORTHOGONAL_WHY
 from ..training.verdict import trainability
@@ -115,7 +116,9 @@ def _with_verdict(plan: InitPlan, act: Activation, plan_layers: Sequence[Layer |
                            learning_rate=getattr(plan, "learning_rate_details", None),
                            loss=loss, n_classes=getattr(plan, "n_classes", None),
                            logit_variance=logit_variance, rule=rule)
-    return dataclasses.replace(plan, verdict=verdict)
+    # depth_ok: the correlation-depth reason (always the first; it reads only the propagation
+    # and the depth, so the verdict is built once, here)
+    return dataclasses.replace(plan, verdict=verdict, depth_ok=bool(verdict.reasons[0].passes))
 
 
 def recommend(act: Activation | str, depth: int | None = None, *,
@@ -199,7 +202,7 @@ def recommend(act: Activation | str, depth: int | None = None, *,
         ws = [check_int(f"widths[{i}]", w, 1) for i, w in enumerate(widths)]
         if len(ws) < 2:
             raise InvalidParameterError("widths", "a list of at least 2 sizes", list(widths))
-        plan_layers = [Layer.dense(a, b) for a, b in zip(ws[:-1], ws[1:])]
+        plan_layers = [Layer.dense(a, b) for a, b in itertools.pairwise(ws)]
     elif layers is not None:
         plan_layers = list(layers)
         if not plan_layers:
@@ -278,8 +281,7 @@ def recommend(act: Activation | str, depth: int | None = None, *,
     # the first layer starts the pre-activations at q* (see below), so report from there
     q_in_eff = (q_target - sb) / sw if q_target > sb else qi
     p = propagation(act, sw, sb, depth=n, q_input=q_in_eff, rule=rule)
-    verdict = trainability(act, p, n, rule=rule)  # completed by _with_verdict below
-    ok = bool(verdict.reasons[0].passes)
+    verdict, ok = None, False  # the verdict and depth_ok are filled in by _with_verdict below
     # first layer: its inputs are data, not activations; pick sigma_w2 so that q_1 = q*
     first_sw = (q_target - sb) / qi if q_target > sb else sw
     if q_target > sb and abs(first_sw - sw) > 1e-12 * sw:
