@@ -7,13 +7,17 @@ activation, ``E[phi'(s_a) phi'(s_b)]``), in the standard parametrisation
 rule of every block kind, its derivation and its assumptions are in
 :mod:`propcalc.training.network_ntk_rules`: dense, activation, residual (``shortcut^2 Theta +
 weight^2 Theta_branch``), layer / RMS / batch norm, dropout, convolution, average pooling, and
-attention in the uniform-attention limit; repeats are written out.
+attention (uniform, or with query-key logits of spread up to
+:data:`~propcalc.training.network_ntk_attention.MAX_LOGIT_STD`, derived in
+:mod:`propcalc.training.network_ntk_attention`); repeats are written out.
 
 Refused with :class:`~propcalc.training.ntk.UnsupportedKernelError` naming the block's path:
-attention whose query-key logits spread (``query_key_scale != 0`` with distinct tokens), batch
-norm of a stream with several positions, max pooling and every block after a stream whose law is unknown (an activation after a residual sum
-of non-Gaussian parts or after dropout), a missing width. The ceiling also refuses an output
-with several positions (no global average pooling before the readout). A plain stack gives
+attention whose query-key logits spread by more than
+:data:`~propcalc.training.network_ntk_attention.MAX_LOGIT_STD` (the forward rule's
+logit_std), batch norm of a stream with several positions, max pooling and every block after a
+stream whose law is unknown (an activation after a residual sum of non-Gaussian parts or after
+dropout), a missing width. The ceiling also refuses an output with several positions (no global
+average pooling before the readout). A plain stack gives
 exactly :func:`propcalc.training.ntk.tangent_kernel` (tested).
 """
 
@@ -193,8 +197,8 @@ def network_tangent_kernel(network: Any, q0: float = 1.0, c0: float = 0.0, *,
     Raises
     ------
     UnsupportedKernelError
-        For max pooling, attention with a logit spread, a missing width, or a stream whose law
-        is unknown.
+        For max pooling, attention with a logit spread beyond ``MAX_LOGIT_STD``, a missing
+        width, or a stream whose law is unknown.
     """
     return _kernel(network, q0, c0, c0_within, c0_between)[0]
 
