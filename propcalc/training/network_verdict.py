@@ -37,8 +37,8 @@ def network_verdict(result: NetworkPropagation, learning_rate: Any = None, *,
     power law along repeated blocks otherwise), ``gradient growth`` (the input's gradient against
     the output's, within GROWTH_LIMIT either way). The finite-width reasons come from
     :func:`propcalc.training.network_finite_width` where the network's dense blocks give their
-    widths and its blocks are dense, activation, residual or layer / RMS norm blocks (the forms
-    of :mod:`propcalc.training.network_laws`); for other networks they are "not computed" with
+    widths and its blocks are dense, activation, dropout, residual or layer / RMS norm blocks
+    (the forms of :mod:`propcalc.training.network_laws`); for other networks they are "not computed" with
     the block and the reason (``propcalc network --check`` measures a network's finite-width
     deviations in seeded networks). The output layer: with ``loss`` and a dense last block (the
     readout, :mod:`propcalc.training.network_readout`), as for a plain plan.
