@@ -84,8 +84,8 @@ def logit_std(stream: Stream, block: Attention) -> float:
     return block.query_key_scale * block.query_key_sigma_w2 * math.sqrt(spread)
 
 
-#: Above this logit spread the Gaussian law of the output with few heads is an approximation (the forward moments are
-#: computed for Gaussian logits at any spread): a note.
+#: Above this logit spread the Gaussian law of the output with few heads is an approximation
+#: (the forward moments are computed for Gaussian logits at any spread): a note.
 LOGIT_SPREAD_NOTE = 0.7
 
 
