@@ -20,11 +20,18 @@ from typing import Any
 
 from flask.json.provider import JSONProvider
 
+from propcalc.networks import MAX_NESTING as NETWORK_NESTING
+
 __all__ = ["StrictJSONProvider", "JSONBodyError", "MAX_NESTING", "canonical_dumps", "strict_loads",
            "nesting_depth"]
 
-#: deepest nesting of arrays and objects accepted in a request body
-MAX_NESTING = 16
+#: deepest nesting of arrays and objects accepted in a request body: never less than a valid
+#: request needs. A network description at the engine's deepest residual/repeat nesting takes 3
+#: levels per level (the block object, its options, its block list) and 6 around them (the body,
+#: its network member, the outer block list; the innermost block, its options, a list or a
+#: parameter object in them): 54 for 16 levels (tests/api/test_api_network.py builds it). One
+#: network level more is admitted (57), so that the engine's refusal names the block's path.
+MAX_NESTING = 3 * (NETWORK_NESTING + 1) + 6
 
 
 class JSONBodyError(ValueError):

@@ -19,7 +19,9 @@ from numpy.testing import assert_allclose
 
 import propcalc
 from propcalc import jsonable
-from propcalc.networks import MAX_POSITIONS
+from propcalc.networks import MAX_NESTING, MAX_POSITIONS
+from propcalc_api._json import MAX_NESTING as JSON_MAX_NESTING
+from propcalc_api._json import nesting_depth
 from propcalc.networks.fields import MAX_REPEAT_TIMES
 
 PROBLEM = "application/problem+json"
@@ -201,6 +203,30 @@ def test_the_engines_limits_are_the_services(client):
     body = problem(client.post("/v1/network", json={"network": nested}), 422, INVALID)
     assert pointers(body) == ["/network/blocks"]
     assert f"at most {MAX_POSITIONS} stream positions" in body["errors"][0]["detail"]
+
+
+def test_the_deepest_description_passes_the_json_framing(client):
+    # Found by fuzzing /v1/network from its own OpenAPI document: a description nested
+    # MAX_NESTING levels (valid for the engine) was refused with 400 "JSON nested deeper than
+    # 16 levels" by the body's framing. The framing must admit every body the schema admits:
+    # here the deepest nesting with the deepest innermost blocks (a formula with parameters, a
+    # kernel list), JSON depth 54; one level more (57) is the engine's 422 naming the path.
+    inner = [{"activation": {"formula": "a * tanh(x)", "params": {"a": 1.0}}},
+             {"convolution": {"sigma_w2": 1.0, "sigma_b2": 0.0, "kernel": [3], "width": 8}},
+             {"pooling": {"kind": "average", "window": 2}}, dense(1.0)]
+
+    def nested(levels):
+        blocks = inner
+        for i in range(levels):
+            blocks = ([{"repeat": {"times": 1, "blocks": blocks}}] if i % 2
+                      else [{"residual": {"branch": blocks, "weight": 0.1}}])
+        return {"network": {"blocks": blocks}}
+
+    assert nesting_depth(nested(MAX_NESTING)) == 54
+    assert nesting_depth(nested(MAX_NESTING + 1)) == JSON_MAX_NESTING
+    assert client.post("/v1/network", json=nested(MAX_NESTING)).status_code == 200
+    body = problem(client.post("/v1/network", json=nested(MAX_NESTING + 1)), 422, INVALID)
+    assert "nested at most" in body["errors"][0]["detail"]
 
 
 def test_the_work_budget(client, strict_json):
