@@ -193,12 +193,13 @@ def test_the_verdict_gets_a_learning_rate_for_a_transformer_with_spread_logits()
 
 @pytest.mark.parametrize("tokens,scale", [(1, 1.0), (2, 1.0), (4, 1.0)])
 def test_the_backward_rule_of_attention_agrees_with_seeded_torch(tokens, scale):
-    # seeded float64 torch (tests/torch_networks.py, exact autograd): the mean squared input
-    # gradient of one attention block for a Gaussian output gradient independent across tokens
-    # (G = 1, Gw = 0) and one shared by the tokens (G = Gw = 1), against the forward rule's 2x2
-    # backward matrix. At one token the softmax is constant, so the gradient cannot depend on
-    # query_key_scale (closed form: S = 1); the earlier rule gave 2.19 there and overshot
-    # torch by 13-19 and 4-7 standard errors at 2 and 4 tokens. Band as _check's.
+    # seeded float64 torch (tests/torch_networks.py, exact autograd): the input gradients' moments
+    # of one attention block, per unit at one token and between two tokens, for a Gaussian
+    # output gradient independent across tokens (G = 1, Gw = 0) and one shared by the tokens
+    # (G = Gw = 1), against the forward rule's 2x2 backward matrix. At one token the softmax is
+    # constant, so the gradient cannot depend on query_key_scale (closed form: S = 1); the
+    # earlier rule gave 2.19 there, overshot torch by 13-19 and 4-7 standard errors at 2 and 4
+    # tokens, and its uniform cross-token row by 10-15 and 5-12. Band as _check's.
     torch = pytest.importorskip("torch")
     torch.set_num_threads(1)
     from torch_networks import TorchNetwork, exchangeable_inputs
@@ -209,13 +210,13 @@ def test_the_backward_rule_of_attention_agrees_with_seeded_torch(tokens, scale):
     desc = {"input_width": n, "blocks": [{"attention": {
         "tokens": tokens, "query_key_scale": scale, "heads": 4, "width": n}}]}
     q, k, kw, kb = 1.0, 0.2, 0.3, 0.1
-    (g_g, g_w), _ = attention_rule(Stream(q, k, 0.0, kw, kb, GAUSSIAN, width=n),
-                                   propcalc.network(desc).blocks[0]).matrix
+    (g_g, g_w), (h_g, h_w) = attention_rule(Stream(q, k, 0.0, kw, kb, GAUSSIAN, width=n),
+                                            propcalc.network(desc).blocks[0]).matrix
     if tokens == 1:
         assert g_g == pytest.approx(1.0, rel=1e-12)
     x = exchangeable_inputs(1, tokens, n, q, k, kw, kb)
-    for shared, pred in ((False, g_g), (True, g_g + g_w)):
-        vals = []
+    for shared in (False, True):
+        diag, cross = [], []
         for seed in range(seeds):
             xt = torch.tensor(x, requires_grad=True)
             y = TorchNetwork(desc, seed)(xt)
@@ -223,6 +224,14 @@ def test_the_backward_rule_of_attention_agrees_with_seeded_torch(tokens, scale):
             shape = (1, 1, n) if shared else tuple(y.shape)
             g = torch.randn(shape, generator=gen, dtype=torch.float64).expand(y.shape)
             (y * g).sum().backward()
-            vals.append(float(xt.grad.square().mean()))
-        mean, se = np.mean(vals), np.std(vals, ddof=1) / math.sqrt(seeds)
-        assert abs(mean - pred) <= 4 * se + 8.0 / n * pred, (tokens, shared, mean, se, pred)
+            gram = (xt.grad[0] @ xt.grad[0].T / n).numpy()
+            diag.append(np.trace(gram) / tokens)
+            if tokens > 1:
+                cross.append((gram.sum() - np.trace(gram)) / (tokens * (tokens - 1)))
+        pairs = [(diag, g_g + (g_w if shared else 0.0))]
+        if tokens > 1:
+            pairs.append((cross, h_g + (h_w if shared else 0.0)))
+        for vals, pred in pairs:
+            mean, se = np.mean(vals), np.std(vals, ddof=1) / math.sqrt(seeds)
+            assert abs(mean - pred) <= 4 * se + 8.0 / n * abs(pred), (tokens, shared, mean, se,
+                                                                      pred)
