@@ -28,7 +28,7 @@ def test_brent_finds_sqrt_two_and_handles_the_ends():
 @pytest.mark.parametrize("n", [1, 3, roots.SCALAR_LIMIT, 50])
 def test_find_roots_elementwise_matches_lambert_w(n):
     # x e^x = a  <=>  x = W(a) (scipy.special.lambertw, principal branch); both the
-    # one-by-one path (n <= SCALAR_LIMIT) and scipy's elementwise find_root
+    # one-by-one path (n <= SCALAR_LIMIT) and the elementwise Chandrupatla iteration
     a = np.geomspace(0.1, 50.0, n)
 
     def f(x, a):
@@ -36,6 +36,32 @@ def test_find_roots_elementwise_matches_lambert_w(n):
 
     got = roots.find_roots(f, np.zeros(n), np.full(n, 5.0), (a,))
     assert_allclose(got, special.lambertw(a).real, rtol=2 * roots.ROOT_RTOL)
+
+
+def test_elementwise_iteration_is_scipys_find_root():
+    # The elementwise path is Chandrupatla's method written as scipy.optimize.elementwise.
+    # find_root computes it (scipy >= 1.15, the reference library; numerics/roots.py says why
+    # it is not called): the same roots, to the last bit, on 200 seeded brackets of three
+    # families (smooth, kinked, flat near the root)
+    elementwise = pytest.importorskip("scipy.optimize.elementwise")
+    rng = np.random.default_rng(20261205)
+    n = 200
+    lo = rng.uniform(-3.0, -0.1, n)
+    hi = rng.uniform(0.1, 3.0, n)
+    shift = rng.uniform(-0.09, 0.09, n)
+    kind = rng.integers(0, 3, n).astype(float)
+
+    def f(x, shift, kind):
+        return np.where(kind == 0, np.tanh(2 * x) - shift,
+                        np.where(kind == 1, np.abs(x) + 2 * x - shift, (x - shift) ** 3))
+
+    got = roots.find_roots(f, lo, hi, (shift, kind))
+    ref = elementwise.find_root(f, (lo, hi), args=(shift, kind),
+                                tolerances={"xrtol": roots.ROOT_RTOL,
+                                            "xatol": 4 * np.finfo(float).tiny,
+                                            "fatol": 0.0, "frtol": 0.0})
+    assert np.all(ref.success)
+    np.testing.assert_array_equal(got, ref.x)
 
 
 def test_find_roots_returns_ends_for_bad_brackets():
