@@ -35,6 +35,7 @@ __all__ = [
     "point",
     "conv_layer",
     "check_depth",
+    "refuse_loss_options",
     "with_act",
     "with_json",
     "with_plot",
@@ -52,6 +53,20 @@ _INVALID_CHOICE = re.compile(r"invalid choice: '([^']*)' \(choose from (.*)\)$")
 
 class UsageError(Exception):
     """Bad command-line input (exit status 2)."""
+
+
+def refuse_loss_options(args: argparse.Namespace, *extra: tuple[str, Any]) -> None:
+    """Refuse the loss options given without ``--loss`` (they would be ignored), naming them.
+
+    ``extra`` are further ``(option, value)`` pairs of the command, listed after --batch-size.
+    """
+    pairs = (("--n-classes", args.n_classes), ("--batch-size", args.batch_size), *extra,
+             ("--momentum", args.momentum or None),
+             ("--no-scale-output", args.no_scale_output or None))
+    given = [option for option, value in pairs if value is not None]
+    if given:
+        raise UsageError(f"{', '.join(given)} only matter with a loss: give "
+                         "--loss cross_entropy|mse too")
 
 
 class Parser(argparse.ArgumentParser):

@@ -27,7 +27,15 @@ from ... import (
     network_verdict,
     simulate_network,
 )
-from ..options import EXIT_OK, UsageError, finite_float, int_list, with_json, with_plot
+from ..options import (
+    EXIT_OK,
+    UsageError,
+    finite_float,
+    int_list,
+    refuse_loss_options,
+    with_json,
+    with_plot,
+)
 from ..output import (
     emit_json,
     format_number,
@@ -268,13 +276,7 @@ def _cmd_network(args: argparse.Namespace, out: TextIO) -> int:
                                  c0_between=args.c0_between, seed=args.seed,
                                  simulation_width=args.width)
     if args.loss is None:
-        given = [o for o, v in (("--n-classes", args.n_classes), ("--batch-size", args.batch_size),
-                                ("--momentum", args.momentum or None),
-                                ("--no-scale-output", args.no_scale_output or None))
-                 if v is not None]
-        if given:
-            raise UsageError(f"{', '.join(given)} only matter with a loss: give "
-                             "--loss cross_entropy|mse too")
+        refuse_loss_options(args)
     elif args.batch_size is None:
         raise UsageError("--loss needs --batch-size (inputs per step): the learning-rate "
                          "ceiling depends on it")

@@ -13,6 +13,7 @@ from ..options import (
     conv_layer,
     finite_float,
     int_list,
+    refuse_loss_options,
     with_act,
     with_json,
 )
@@ -43,14 +44,7 @@ def _cmd_plan(args: argparse.Namespace, out: TextIO) -> int:
         if args.input_correlation is not None:
             training["input_correlation"] = args.input_correlation
     else:
-        given = [o for o, v in (("--n-classes", args.n_classes), ("--batch-size", args.batch_size),
-                                ("--input-correlation", args.input_correlation),
-                                ("--momentum", args.momentum or None),
-                                ("--no-scale-output", args.no_scale_output or None))
-                 if v is not None]
-        if given:
-            raise UsageError(f"{', '.join(given)} only matter with a loss: give "
-                             "--loss cross_entropy|mse too")
+        refuse_loss_options(args, ("--input-correlation", args.input_correlation))
     plan = recommend(act, args.depth, widths=args.widths, layers=layers,
                      distribution=args.distribution, target=args.target,
                      sigma_b2=args.sigma_b2, q_star=args.q_star, q_input=args.q_input,
