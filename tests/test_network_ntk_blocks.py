@@ -150,8 +150,23 @@ def test_layer_and_rms_norm_scale_the_kernel_by_the_inverse_variance():
      r"block /blocks/1 \(norm\): batch norm of a stream with several positions"),
 ])
 def test_what_is_still_refused_is_refused_by_path(blocks, match):
+    desc = {"input_width": 4, "blocks": blocks}
+    # c0_within is read only where the stream has positions (refused elsewhere, below)
+    within = 0.3 if propcalc.network(desc).has_positions() else 0.0
     with pytest.raises(UnsupportedKernelError, match=match):
-        network_tangent_kernel({"input_width": 4, "blocks": blocks}, 1.0, 0.2, c0_within=0.3)
+        network_tangent_kernel(desc, 1.0, 0.2, c0_within=within)
+
+
+def test_position_correlations_of_a_one_position_network_are_refused():
+    # an option takes effect or is refused: a dense network has no positions to correlate
+    desc = {"blocks": [_dense(2.0, 0.0, 8), {"activation": "relu"}]}
+    for name in ("c0_within", "c0_between"):
+        with pytest.raises(propcalc.PropcalcError, match=f"^{name} must be 0 for a network of "
+                                                         "one position"):
+            network_tangent_kernel(desc, 1.0, 0.2, **{name: 0.1})
+        with pytest.raises(propcalc.PropcalcError, match=f"^{name} must be 0"):
+            propcalc.network_propagation(desc, 1.0, 0.2, **{name: 0.1})
+    assert propcalc.network_propagation(desc, 1.0, 0.2, c0_within=0.0).c[-1] > 0.2
 
 
 def test_the_ceiling_needs_one_output_vector_per_input():

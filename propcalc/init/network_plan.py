@@ -383,7 +383,8 @@ def network_plan(network: Any, *, q0: float = 1.0, c0: float = 0.0, target: floa
     if convolution not in ("gaussian", "delta_orthogonal"):
         raise InvalidParameterError("convolution", 'one of "gaussian", "delta_orthogonal"',
                                     convolution)
-    q0, c0, cw, cb = check_inputs(q0, c0, c0_within, c0_between, net.uses_positions())
+    q0, c0, cw, cb = check_inputs(q0, c0, c0_within, c0_between, net.uses_positions(),
+                                  net.has_positions())
     pos = {"c0_within": cw, "c0_between": cb}
     check_max_gradient(max_gradient)  # checked even without a target (where it is unused)
     notes: list[str] = []

@@ -275,7 +275,8 @@ def measure_module(modules: Any, example: Any, *, q0: float = 1.0, c0: float = 0
     shape_src = tuple(example.shape) if isinstance(example, torch.Tensor) else tuple(example)
     readings = [read_module(m, shape_src, scales=scales) for m in mods]
     positions = readings[0].network.uses_positions()
-    q0, c0, cw, cb = check_inputs(q0, c0, c0_within, c0_between, positions)
+    q0, c0, cw, cb = check_inputs(q0, c0, c0_within, c0_between, positions,
+                                  readings[0].network.has_positions())
     if not positions:
         cw = cb = c0_between = c0_within = 0.0
     if c0 < -1.0 / (n_in - 1):

@@ -388,9 +388,16 @@ class Network:
 
     def uses_positions(self) -> bool:
         """Whether any block mixes positions (pooling or attention)."""
+        return self._holds(Pooling, Attention)
+
+    def has_positions(self) -> bool:
+        """Whether the stream has several positions anywhere (convolution, pooling, attention)."""
+        return self._holds(Convolution, Pooling, Attention)
+
+    def _holds(self, *kinds: type) -> bool:
         def walk(blocks: tuple[Block, ...]) -> bool:
             for b in blocks:
-                if isinstance(b, (Pooling, Attention)):
+                if isinstance(b, kinds):
                     return True
                 if isinstance(b, Repeat) and walk(b.blocks):
                     return True

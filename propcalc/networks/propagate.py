@@ -128,8 +128,8 @@ class NetworkPropagation(Result):
 
 
 def check_inputs(q0: Any, c0: Any, c0_within: Any, c0_between: Any,
-                 positions: bool) -> tuple[float, float, float, float]:
-    """Validate the input pair (and the position correlations when they matter)."""
+                 positions: bool, spatial: bool = True) -> tuple[float, float, float, float]:
+    """Validate the input pair and the position correlations (refused where they do not matter)."""
     q = check_positive("q0", q0)
     if q > 1e12:
         raise InvalidParameterError("q0", "<= 1e12", q0)
@@ -147,6 +147,12 @@ def check_inputs(q0: Any, c0: Any, c0_within: Any, c0_between: Any,
                                         c0_between)
         if abs(c - cb) > 1.0 - cw + 1e-15:
             raise InvalidParameterError("c0_between", "within 1 - c0_within of c0", c0_between)
+    elif not spatial:  # one position everywhere: refused rather than ignored
+        for name, value, given in (("c0_within", cw, c0_within), ("c0_between", cb, c0_between)):
+            if value != 0.0:
+                raise InvalidParameterError(
+                    name, "0 for a network of one position (it is read only with "
+                          "convolution, pooling or attention blocks)", given)
     return q, c, cw, cb
 
 
@@ -191,7 +197,8 @@ def network_propagation(network: Any, q0: float = 1.0, c0: float = 0.0, *,
     (1.0, 41)
     """
     net = parse_network(network)
-    q0, c0, cw, cb = check_inputs(q0, c0, c0_within, c0_between, net.uses_positions())
+    q0, c0, cw, cb = check_inputs(q0, c0, c0_within, c0_between, net.uses_positions(),
+                                  net.has_positions())
     tr = trace(net, q0, c0, c0_within=cw, c0_between=cb)
     streams = tr.streams
     n = len(streams) - 1

@@ -155,7 +155,8 @@ def branch_weight(network: Any, target: float = 0.9, *, max_gradient: float | No
     if not -1.0 < t < 1.0:
         raise InvalidParameterError("target", "in (-1, 1)", target)
     bound = check_max_gradient(max_gradient)
-    q0, c0, cw, cb = check_inputs(q0, c0, c0_within, c0_between, net.uses_positions())
+    q0, c0, cw, cb = check_inputs(q0, c0, c0_within, c0_between, net.uses_positions(),
+                                  net.has_positions())
     n = residual_count(net.blocks)
     if n == 0:
         raise InvalidParameterError("network", "a network with residual blocks", "none found")

@@ -208,7 +208,7 @@ def _kernel(network: Any, q0: float, c0: float, c0_within: float, c0_between: fl
     """The kernel, and where its output's positions come from (None: one position)."""
     net = network if isinstance(network, Network) else read_network(network)
     q0, c0, c0_within, c0_between = check_inputs(q0, c0, c0_within, c0_between,
-                                                 net.uses_positions())
+                                                 net.uses_positions(), net.has_positions())
     tr = trace(net, q0, c0, c0_within=c0_within, c0_between=c0_between,
                derivative_pairs=True)
     carry = _Carry(iter(v.step for v in tr.visits), tr.start, tr.start.kw is not None)
