@@ -42,7 +42,7 @@ from typing import Any
 
 import numpy as np
 
-from .errors import InvalidParameterError
+from .errors import ComputationError, InvalidParameterError
 
 __all__ = [
     "Domain",
@@ -56,6 +56,7 @@ __all__ = [
     "domain",
     "check",
     "check_array",
+    "check_planned",
     "domain_table",
     "format_bound",
     "check_signal",
@@ -352,6 +353,21 @@ def check(name: str, value: Any, field: str | None = None) -> Any:
 def check_array(name: str, values: Any, field: str | None = None) -> np.ndarray:
     """Check every entry of ``values`` against the domain ``name``; see :meth:`Domain.check_array`."""
     return domain(name).check_array(values, field)
+
+
+def check_planned(name: str, value: float, where: str, cause: str) -> float:
+    """A value a planner computed, checked against the domain ``name`` before it is handed out.
+
+    A plan must be usable as given (its description read back, its layers drawn): a value
+    outside the domain is a :class:`~propcalc.errors.ComputationError` saying where it arose
+    and the input that led there (``cause``), e.g. inputs of second moment 1e-8 asking layer 1
+    for sigma_w2 = 1e8.
+    """
+    dom = domain(name)
+    if not bool(_inside(np.array([float(value)]), dom)[0]):
+        raise ComputationError(f"{where}: the planned {name} = {value:.6g} is outside its "
+                               f"domain ({dom.constraint}) because {cause}")
+    return value
 
 
 def domain_table() -> tuple[dict[str, Any], ...]:

@@ -225,3 +225,29 @@ def test_the_torch_adapter_draws_the_planned_readout():
                                   scale_output=False)
     assert hidden.layers[-1].sigma_w2 == pytest.approx(
         propcalc.plan_module(module, (8, 64), seed=0).layers[-1].sigma_w2, rel=1e-12)
+
+
+def test_plans_outside_the_weight_domain_are_refused_with_the_cause():
+    # A plan must be usable as given: its description read back by propcalc.network (found in
+    # review: q0 = 1e-8 planned layer 1 at sigma_w2 = 1e8, which the plan's own description then
+    # failed). sigma_w2 = (q* - sigma_b2) / q_in (Poole et al. 2016, eq. 3): ReLU's plan aims at
+    # q* = 1 with no bias, so inputs of mean square 1e-8 need 1e8, outside [1e-6, 1e4]
+    stack = {"blocks": [dense(2.0, width=8), {"activation": "relu"}, dense(2.0, width=8)]}
+    with pytest.raises(propcalc.ComputationError,
+                       match=r"^/blocks/0: the planned sigma_w2 = 1e\+08 is outside its domain "
+                             r"\(in \[1e-6, 10000\]\) because the stream entering it has second "
+                             r"moment 1e-08"):
+        propcalc.network_plan(stack, q0=1e-8)
+    with pytest.raises(propcalc.ComputationError,
+                       match=r"^layer 1: the planned sigma_w2 = 1e\+08 .* q_input = 1e-08"):
+        propcalc.recommend("relu", widths=[8, 8, 8], q_input=1e-8)
+    # a norm of tiny gain before the readout: the cross-entropy readout would need ~5e6
+    tiny = {"blocks": [dense(2.0, width=8), {"activation": "relu"},
+                       {"norm": {"kind": "rms", "gain": 1e-4}}, dense(2.0, width=10)]}
+    with pytest.raises(propcalc.ComputationError, match=r"^/blocks/3: the planned sigma_w2"):
+        propcalc.network_plan(tiny, loss="cross_entropy", batch_size=8)
+    kept = propcalc.network_plan(tiny, loss="cross_entropy", batch_size=8, scale_output=False)
+    propcalc.network(kept.description)  # usable as given
+    # within the domain nothing changes: q0 = 1e-3 gives layer 1 sigma_w2 = 1000
+    plan = propcalc.network_plan(stack, q0=1e-3)
+    assert plan.description["blocks"][0]["dense"]["sigma_w2"] == pytest.approx(1000.0)

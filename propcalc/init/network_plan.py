@@ -28,6 +28,7 @@ import math
 from dataclasses import dataclass, field, replace
 from typing import Any
 
+from .. import domains
 from ..activations.base import Activation
 from ..errors import InvalidParameterError, PropcalcError
 from ..networks.blocks import (
@@ -190,7 +191,8 @@ class _Planner:
             elif isinstance(b, ActivationBlock):
                 prev = b.activation
             elif isinstance(b, (Dense, Convolution)):
-                self.values[(path, copies)] = self.rule(b, blocks[j + 1:], streams[i], prev)
+                self.values[(path, copies)] = self.rule(b, blocks[j + 1:], streams[i], prev,
+                                                        path)
                 prev = None
             elif not isinstance(b, Dropout):
                 prev = None
@@ -198,7 +200,7 @@ class _Planner:
         return i, prev
 
     def rule(self, b: Dense | Convolution, after: tuple[Block, ...], stream: Stream,
-             prev: Activation | None) -> tuple[float, float, str]:
+             prev: Activation | None, path: str) -> tuple[float, float, str]:
         if prev is not None:
             p = self.plan(prev)
             return (p.sigma_w2, p.sigma_b2,
@@ -213,7 +215,11 @@ class _Planner:
                     "it is not known: the Gaussian recursion does not hold there)"))
         if p.q_star is None or q_in <= 0.0 or p.q_star <= p.sigma_b2:
             return b.sigma_w2, b.sigma_b2, "kept (no variance fixed point to aim at)"
-        return ((p.q_star - p.sigma_b2) / q_in, p.sigma_b2,
+        sw = domains.check_planned(
+            "sigma_w2", (p.q_star - p.sigma_b2) / q_in, path,
+            f"the stream entering it has second moment {q_in:.3g} (q0 or a norm's gain) and "
+            f"its output should start at q* = {p.q_star:.4g}")
+        return (sw, p.sigma_b2,
                 (f"first layer before {nxt.label}: its output starts at q* = {p.q_star:.4g} "
                  f"for an input of second moment {q_in:.4g}"))
 

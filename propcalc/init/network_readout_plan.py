@@ -25,6 +25,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass, replace
 from typing import Any
 
+from .. import domains
 from ..networks.blocks import Block, Dense, Network, Repeat
 from ..networks.propagate import NetworkPropagation
 from ..training.network_readout import network_readout
@@ -133,6 +134,10 @@ def plan_readout(given: Network, planned: Network, result: NetworkPropagation,
                              last.sigma_w2, last.sigma_b2, scale_output=scale_output)
     if not scale_output or (rule.sigma_w2, rule.sigma_b2) == (last.sigma_w2, last.sigma_b2):
         return replace(same, description=rule.description, scale=rule.scale, notes=rule.notes)
+    domains.check_planned("sigma_w2", rule.sigma_w2, path,
+                          f"the stream feeding the readout has second moment "
+                          f"{readout.penultimate:.3g} (scale_output=False keeps the readout as "
+                          "described)")
     records = list(inits)
     if index is not None:
         old = records[index]

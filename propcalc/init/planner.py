@@ -18,6 +18,7 @@ from typing import Any
 
 import numpy as np
 
+from .. import domains
 from ..activations.base import Activation
 from ..activations.resolver import resolve
 from ..errors import (
@@ -290,6 +291,9 @@ def recommend(act: Activation | str, depth: int | None = None, *,
                      f"{qi:g}")
     elif q_target <= sb:
         first_sw = sw
+    domains.check_planned("sigma_w2", first_sw, "layer 1",
+                          f"the inputs have mean square q_input = {qi:.3g} and the first layer's "
+                          f"output should start at q* = {q_target:.4g}")
     inits = tuple(layer_init(i + 1, layer, first_sw if i == 0 else sw, sb, distribution)
                   for i, layer in enumerate(plan_layers))
     if loss is None:
