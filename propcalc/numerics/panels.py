@@ -376,3 +376,30 @@ def _rule_nodes(mean: Any, q: Any, breakpoints: Sequence[float],
     z *= sq[..., None]
     z += mean[..., None]
     return z, w
+
+
+# -- checks shared by the 1-D and 2-D expectations --------------------------------------
+def _validate(values: Array, field: str, lower: float | None = None, upper: float | None = None,
+              strict: bool = False) -> None:
+    """Raise InvalidParameterError naming ``field`` for non-finite or out-of-range entries."""
+    ok = np.isfinite(values)
+    if lower is not None:
+        ok &= (values > lower) if strict else (values >= lower)
+    if upper is not None:
+        ok &= values <= upper
+    if not np.all(ok):
+        bad = float(np.asarray(values)[~ok].ravel()[0])
+        parts = ["finite"]
+        if lower is not None:
+            parts.append(f"{'>' if strict else '>='} {lower:g}")
+        if upper is not None:
+            parts.append(f"<= {upper:g}")
+        raise InvalidParameterError(field, " and ".join(parts), bad)
+
+
+def _check_finite(values: Array, x: Array, what: str) -> None:
+    ok = np.isfinite(values)
+    if not ok.all():
+        where = float(np.ravel(x)[np.flatnonzero(~np.ravel(ok))[0]])
+        raise ComputationError(
+            f"{what} is not finite at x = {where:.6g}, a point the Gaussian integral reaches")
